@@ -1,0 +1,265 @@
+//! Run-based connected-component labelling with hole filling.
+//!
+//! Each row is cut into maximal runs of foreground (`pixel > t`) and, when holes
+//! are filled, background. Runs are joined with a union-find: foreground under the
+//! chosen connectivity, background under the complementary one. Background
+//! components that do not touch the frame border are holes; each is merged with
+//! every foreground component it touches, which is exactly "fill holes, then
+//! label" (holes = background regions not connected to the border under the
+//! complementary connectivity). Components are numbered in raster order of their
+//! first pixel. Measurements are left to [`crate::analysis::measure`].
+
+/// A horizontal run `[x0, x1)` on row `y`.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub struct Run {
+    pub y: u32,
+    pub x0: u32,
+    pub x1: u32,
+}
+
+/// The labelled components of one mask, as runs.
+#[derive(Debug, Clone, Default)]
+pub struct Components {
+    /// Runs of every component (foreground and filled holes), raster order.
+    pub runs: Vec<Run>,
+    /// Component index (0-based, raster order of first pixel) of each run.
+    pub component: Vec<u32>,
+    /// Number of components.
+    pub count: usize,
+}
+
+struct UnionFind {
+    parent: Vec<u32>,
+}
+
+impl UnionFind {
+    fn find(&mut self, mut i: u32) -> u32 {
+        while self.parent[i as usize] != i {
+            let p = self.parent[i as usize];
+            self.parent[i as usize] = self.parent[p as usize];
+            i = p;
+        }
+        i
+    }
+
+    fn union(&mut self, a: u32, b: u32) {
+        let (ra, rb) = (self.find(a), self.find(b));
+        // The smaller index (earlier in raster order) becomes the root.
+        match ra.cmp(&rb) {
+            std::cmp::Ordering::Less => self.parent[rb as usize] = ra,
+            std::cmp::Ordering::Greater => self.parent[ra as usize] = rb,
+            std::cmp::Ordering::Equal => {}
+        }
+    }
+}
+
+/// Labels the foreground `pixels > threshold` of a `width × height` image.
+///
+/// `connectivity` is 4 or 8 (8 = diagonal neighbours join). With `fill_holes`,
+/// enclosed background is added to the component that encloses it.
+///
+/// ```
+/// use framewarden::analysis::label::label;
+/// // A ring with a hole, and a diagonal pair: 8-connected, filled.
+/// let img: Vec<u16> = vec![
+///     9, 9, 9, 0, 0,
+///     9, 0, 9, 0, 0,
+///     9, 9, 9, 0, 9,
+///     0, 0, 0, 9, 0,
+/// ];
+/// let c = label(&img, 5, 4, 0, 8, true);
+/// assert_eq!(c.count, 2); // the ring (9 px once filled) and the diagonal pair
+/// let area0: u32 = c.runs.iter().zip(&c.component).filter(|(_, &k)| k == 0).map(|(r, _)| r.x1 - r.x0).sum();
+/// assert_eq!(area0, 9);
+/// // 4-connected: the pair splits in two.
+/// assert_eq!(label(&img, 5, 4, 0, 4, true).count, 3);
+/// ```
+pub fn label(
+    pixels: &[u16],
+    width: usize,
+    height: usize,
+    threshold: u16,
+    connectivity: u8,
+    fill_holes: bool,
+) -> Components {
+    debug_assert_eq!(pixels.len(), width * height);
+    let fg8 = connectivity == 8;
+    // Background uses the complementary connectivity.
+    let bg8 = !fg8;
+    let mut runs: Vec<Run> = Vec::new();
+    let mut is_fg: Vec<bool> = Vec::new();
+    let mut uf = UnionFind { parent: Vec::new() };
+    // (foreground run, background run) pairs that touch 4-wise.
+    let mut contacts: Vec<(u32, u32)> = Vec::new();
+    let mut prev = 0..0usize;
+    for y in 0..height {
+        let row = &pixels[y * width..(y + 1) * width];
+        let start = runs.len();
+        let mut x = 0;
+        while x < width {
+            let fg = row[x] > threshold;
+            let x0 = x;
+            while x < width && (row[x] > threshold) == fg {
+                x += 1;
+            }
+            if fg || fill_holes {
+                let id = runs.len() as u32;
+                runs.push(Run {
+                    y: y as u32,
+                    x0: x0 as u32,
+                    x1: x as u32,
+                });
+                is_fg.push(fg);
+                uf.parent.push(id);
+                // Horizontal neighbours alternate kinds when both kinds are kept.
+                if fill_holes && id as usize > start {
+                    let left = id - 1;
+                    contacts.push(if fg { (id, left) } else { (left, id) });
+                }
+            }
+        }
+        let cur = start..runs.len();
+        // Join with the previous row: two pointers over runs sorted by x0.
+        let mut i = prev.start;
+        for j in cur.clone() {
+            let b = runs[j];
+            // Runs of the previous row that end more than one pixel left of b
+            // cannot touch b or any later run of this row.
+            while i < prev.end && runs[i].x1 < b.x0 {
+                i += 1;
+            }
+            let mut k = i;
+            while k < prev.end && runs[k].x0 <= b.x1 {
+                let a = runs[k];
+                let overlap4 = a.x0 < b.x1 && b.x0 < a.x1;
+                match (is_fg[k], is_fg[j]) {
+                    (true, true) if overlap4 || fg8 => uf.union(k as u32, j as u32),
+                    (false, false) if overlap4 || bg8 => uf.union(k as u32, j as u32),
+                    (true, false) if overlap4 => contacts.push((k as u32, j as u32)),
+                    (false, true) if overlap4 => contacts.push((j as u32, k as u32)),
+                    _ => {}
+                }
+                k += 1;
+            }
+        }
+        prev = cur;
+    }
+
+    if fill_holes {
+        // Background components touching the border are "outside"; the rest are holes.
+        let mut outside = vec![false; runs.len()];
+        for (id, r) in runs.iter().enumerate() {
+            if !is_fg[id]
+                && (r.y == 0 || r.y as usize == height - 1 || r.x0 == 0 || r.x1 as usize == width)
+            {
+                let root = uf.find(id as u32);
+                outside[root as usize] = true;
+            }
+        }
+        let is_outside = |uf: &mut UnionFind, id: u32| outside[uf.find(id) as usize];
+        let holes: Vec<(u32, u32)> = contacts
+            .into_iter()
+            .filter(|&(_, bg)| !is_outside(&mut uf, bg))
+            .collect();
+        // Decide "outside" before any merge, then merge each hole with its surroundings.
+        let hole_runs: Vec<bool> = (0..runs.len() as u32)
+            .map(|id| !is_fg[id as usize] && !is_outside(&mut uf, id))
+            .collect();
+        for (fg, bg) in holes {
+            uf.union(fg, bg);
+        }
+        for (id, hole) in hole_runs.into_iter().enumerate() {
+            is_fg[id] = is_fg[id] || hole;
+        }
+    }
+
+    // Number components in raster order of their first run and keep only
+    // foreground (and filled-hole) runs.
+    let mut number = vec![u32::MAX; runs.len()];
+    let mut out = Components::default();
+    for (id, run) in runs.iter().enumerate() {
+        if !is_fg[id] {
+            continue;
+        }
+        let root = uf.find(id as u32) as usize;
+        if number[root] == u32::MAX {
+            number[root] = out.count as u32;
+            out.count += 1;
+        }
+        out.runs.push(*run);
+        out.component.push(number[root]);
+    }
+    out
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn areas(c: &Components) -> Vec<u32> {
+        let mut a = vec![0; c.count];
+        for (r, &k) in c.runs.iter().zip(&c.component) {
+            a[k as usize] += r.x1 - r.x0;
+        }
+        a
+    }
+
+    fn img(rows: &[&str]) -> (Vec<u16>, usize, usize) {
+        let w = rows[0].len();
+        let px = rows
+            .iter()
+            .flat_map(|r| r.bytes().map(|b| u16::from(b == b'#')))
+            .collect();
+        (px, w, rows.len())
+    }
+
+    #[test]
+    fn diagonal_joins_only_under_8_connectivity() {
+        let (px, w, h) = img(&["#..", ".#.", "..#"]);
+        assert_eq!(label(&px, w, h, 0, 8, false).count, 1);
+        assert_eq!(label(&px, w, h, 0, 4, false).count, 3);
+    }
+
+    #[test]
+    fn numbering_follows_the_first_pixel_in_raster_order() {
+        // The U's first pixel (0,0) precedes the dot (3,0); its arms meet on row 2.
+        let (px, w, h) = img(&["#.#.#", "#.#..", "###.."]);
+        let c = label(&px, w, h, 0, 8, false);
+        assert_eq!(c.count, 2);
+        assert_eq!(areas(&c), vec![7, 1]);
+    }
+
+    #[test]
+    fn holes_are_filled_and_border_background_is_not() {
+        // A closed ring (hole of 1 px) and an open ring (its gap reaches the border).
+        let (px, w, h) = img(&["###.###", "#.#.#..", "###.###"]);
+        let c = label(&px, w, h, 0, 8, true);
+        assert_eq!(areas(&c), vec![9, 7]);
+        assert_eq!(areas(&label(&px, w, h, 0, 8, false)), vec![8, 7]);
+    }
+
+    #[test]
+    fn a_hole_leaking_diagonally_is_a_hole_for_8_connected_objects_only() {
+        // The centre's only exit is a diagonal gap: a hole when background is
+        // 4-connected (objects 8-connected), not a hole the other way round.
+        let (px, w, h) = img(&["####.", "#..#.", "#.#..", "###.."]);
+        assert_eq!(areas(&label(&px, w, h, 0, 8, true)), vec![14]);
+        let four = label(&px, w, h, 0, 4, true);
+        assert_eq!(areas(&four).iter().sum::<u32>(), 11);
+    }
+
+    #[test]
+    fn an_object_inside_a_hole_merges_with_its_ring() {
+        let (px, w, h) = img(&["#####", "#...#", "#.#.#", "#...#", "#####"]);
+        let c = label(&px, w, h, 0, 8, true);
+        assert_eq!(areas(&c), vec![25]);
+        assert_eq!(label(&px, w, h, 0, 8, false).count, 2);
+    }
+
+    #[test]
+    fn threshold_is_strictly_greater() {
+        let px = vec![5u16, 6, 5, 6];
+        assert_eq!(areas(&label(&px, 4, 1, 5, 8, false)), vec![1, 1]);
+        assert_eq!(label(&px, 4, 1, 6, 8, false).count, 0);
+    }
+}

@@ -1,0 +1,249 @@
+//! Per-frame quality measures: background level, saturation, focus and the
+//! fitted illumination field. Turning them into flags is left to the quality
+//! control of the run.
+
+use crate::analysis::threshold::Histogram;
+use crate::frame::Frame;
+
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct FrameQuality {
+    pub background_level: f64,
+    pub saturation_fraction: f64,
+    pub focus: f64,
+    pub illumination_change: f64,
+}
+
+/// Grid of blocks for the illumination fit (per side, at most).
+const GRID: usize = 16;
+
+/// Measures `raw`; `segmented` is the frame the threshold `t` applies to
+/// (`None` when it is `raw` itself), so background pixels are `segmented <= t`.
+pub fn assess(
+    raw: &Frame,
+    raw_hist: &Histogram,
+    segmented: Option<&Frame>,
+    t: u16,
+) -> FrameQuality {
+    let n = raw.len().max(1) as f64;
+    let saturation_fraction = raw_hist.counts[usize::from(raw.max_value())] as f64 / n;
+    let (w, h) = (raw.width, raw.height);
+    let (gx, gy) = (GRID.min(w).max(1), GRID.min(h).max(1));
+    let mut block_sum = vec![0u64; gx * gy];
+    let mut block_n = vec![0u64; gx * gy];
+    // Background histogram of raw values, needed only when segmentation ran on a
+    // corrected frame (otherwise the raw histogram below t is it).
+    let mut bg_hist = segmented.map(|_| vec![0u64; raw.levels()]);
+    let (mut lap_sum, mut lap_sq) = (0i128, 0u128);
+    for y in 0..h {
+        let row = raw.row(y);
+        let seg_row = segmented.map_or(row, |s| s.row(y));
+        let by = y * gy / h;
+        for x in 0..w {
+            if seg_row[x] <= t {
+                let b = by * gx + x * gx / w;
+                block_sum[b] += u64::from(row[x]);
+                block_n[b] += 1;
+                if let Some(hist) = bg_hist.as_mut() {
+                    hist[usize::from(row[x])] += 1;
+                }
+            }
+        }
+        if y >= 1 && y + 1 < h && w >= 3 {
+            let (up, down) = (raw.row(y - 1), raw.row(y + 1));
+            let (mut s, mut s2) = (0i64, 0u64);
+            for x in 1..w - 1 {
+                let lap = i64::from(up[x])
+                    + i64::from(down[x])
+                    + i64::from(row[x - 1])
+                    + i64::from(row[x + 1])
+                    - 4 * i64::from(row[x]);
+                s += lap;
+                s2 += (lap * lap) as u64;
+            }
+            lap_sum += i128::from(s);
+            lap_sq += u128::from(s2);
+        }
+    }
+    let interior = (w.saturating_sub(2) * h.saturating_sub(2)) as f64;
+    let focus = if interior > 0.0 {
+        let mean = lap_sum as f64 / interior;
+        (lap_sq as f64 / interior - mean * mean).max(0.0)
+    } else {
+        0.0
+    };
+    let background_level = match &bg_hist {
+        Some(counts) => Histogram {
+            total: counts.iter().sum(),
+            counts: counts.clone(),
+        }
+        .median_upto(counts.len() - 1),
+        None => raw_hist.median_upto(usize::from(t)),
+    }
+    .unwrap_or(0.0);
+    let illumination_change = illumination(&block_sum, &block_n, gx, gy, w * h / (gx * gy));
+    FrameQuality {
+        background_level,
+        saturation_fraction,
+        focus,
+        illumination_change,
+    }
+}
+
+/// Fits `z = a + b·u + c·v + d·u² + e·v² + f·u·v` (u, v in [-1, 1] across the
+/// frame) to the mean background of each block that is at least a quarter
+/// background, by least squares, and returns (max − min) / mean of the fitted
+/// surface over the frame. Falls back to a plane with fewer than 12 usable
+/// blocks, and to 0 with fewer than 3.
+pub fn illumination(
+    block_sum: &[u64],
+    block_n: &[u64],
+    gx: usize,
+    gy: usize,
+    block_px: usize,
+) -> f64 {
+    let coord = |i: usize, g: usize| {
+        if g > 1 {
+            2.0 * i as f64 / (g - 1) as f64 - 1.0
+        } else {
+            0.0
+        }
+    };
+    let points: Vec<(f64, f64, f64)> = (0..gx * gy)
+        .filter(|&b| block_n[b] > 0 && block_n[b] * 4 >= block_px as u64)
+        .map(|b| {
+            (
+                coord(b % gx, gx),
+                coord(b / gx, gy),
+                block_sum[b] as f64 / block_n[b] as f64,
+            )
+        })
+        .collect();
+    let terms: usize = match points.len() {
+        0..=2 => return 0.0,
+        3..=11 => 3,
+        _ => 6,
+    };
+    let basis = |u: f64, v: f64| [1.0, u, v, u * u, v * v, u * v];
+    let mut ata = [[0.0f64; 6]; 6];
+    let mut atb = [0.0f64; 6];
+    for &(u, v, z) in &points {
+        let phi = basis(u, v);
+        for i in 0..terms {
+            atb[i] += phi[i] * z;
+            for j in 0..terms {
+                ata[i][j] += phi[i] * phi[j];
+            }
+        }
+    }
+    let Some(coef) = solve(&mut ata, &mut atb, terms) else {
+        return 0.0;
+    };
+    let steps = 32;
+    let (mut lo, mut hi, mut sum) = (f64::INFINITY, f64::NEG_INFINITY, 0.0);
+    for i in 0..=steps {
+        for j in 0..=steps {
+            let (u, v) = (coord(i, steps + 1), coord(j, steps + 1));
+            let phi = basis(u, v);
+            let z: f64 = (0..terms).map(|k| coef[k] * phi[k]).sum();
+            lo = lo.min(z);
+            hi = hi.max(z);
+            sum += z;
+        }
+    }
+    let mean = sum / ((steps + 1) * (steps + 1)) as f64;
+    // A dark background (mean under one grey level) has no meaningful relative change.
+    if mean < 1.0 {
+        return 0.0;
+    }
+    (hi - lo) / mean
+}
+
+/// Gaussian elimination with partial pivoting on the leading `n × n` system.
+fn solve(a: &mut [[f64; 6]; 6], b: &mut [f64; 6], n: usize) -> Option<[f64; 6]> {
+    for col in 0..n {
+        let pivot = (col..n).max_by(|&i, &j| a[i][col].abs().total_cmp(&a[j][col].abs()))?;
+        if a[pivot][col].abs() < 1e-12 {
+            return None;
+        }
+        a.swap(col, pivot);
+        b.swap(col, pivot);
+        for row in col + 1..n {
+            let f = a[row][col] / a[col][col];
+            for k in col..n {
+                a[row][k] -= f * a[col][k];
+            }
+            b[row] -= f * b[col];
+        }
+    }
+    let mut x = [0.0f64; 6];
+    for row in (0..n).rev() {
+        let s: f64 = (row + 1..n).map(|k| a[row][k] * x[k]).sum();
+        x[row] = (b[row] - s) / a[row][row];
+    }
+    Some(x)
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn frame16(w: usize, h: usize, f: impl Fn(usize, usize) -> u16) -> Frame {
+        Frame {
+            width: w,
+            height: h,
+            bit_depth: 16,
+            pixels: (0..w * h).map(|i| f(i % w, i / w)).collect(),
+        }
+    }
+
+    #[test]
+    fn flat_frame_has_no_illumination_change_and_no_focus() {
+        let f = frame16(64, 48, |_, _| 1000);
+        let q = assess(&f, &Histogram::of(&f), None, 1000);
+        assert_eq!(
+            (q.focus, q.background_level, q.saturation_fraction),
+            (0.0, 1000.0, 0.0)
+        );
+        assert!(q.illumination_change.abs() < 1e-12);
+    }
+
+    #[test]
+    fn linear_ramp_is_fitted_exactly() {
+        // Background rises from 1000 to 1000 + 63·10 = 1630 across x. The fitted
+        // surface is the ramp sampled at block means: per block of 4 columns the
+        // mean is 1000 + 10·(4i + 1.5), from 1015 to 1615; the surface spans exactly
+        // that, mean 1315: change = 600 / 1315.
+        let f = frame16(64, 64, |x, _| 1000 + 10 * x as u16);
+        let q = assess(&f, &Histogram::of(&f), None, u16::MAX);
+        assert!(
+            (q.illumination_change - 600.0 / 1315.0).abs() < 1e-9,
+            "{}",
+            q.illumination_change
+        );
+        // Laplacian of a linear ramp is 0 everywhere inside.
+        assert_eq!(q.focus, 0.0);
+    }
+
+    #[test]
+    fn focus_is_the_variance_of_the_laplacian_by_hand() {
+        // 3x3 frame, one interior pixel: Laplacian = 4 neighbours - 4·centre.
+        // Single value -> variance 0. A 4x3 frame with interior (1,1), (2,1):
+        // rows [0 0 0 0],[0 8 0 0],[0 0 0 0]: lap(1,1) = 0 - 32 = -32, lap(2,1) = 8.
+        // mean -12, variance ((−20)² + 20²)/2 = 400.
+        let f = Frame {
+            width: 4,
+            height: 3,
+            bit_depth: 8,
+            pixels: vec![0, 0, 0, 0, 0, 8, 0, 0, 0, 0, 0, 0],
+        };
+        assert_eq!(assess(&f, &Histogram::of(&f), None, 255).focus, 400.0);
+    }
+
+    #[test]
+    fn saturation_and_background_median() {
+        let f = Frame::from_rows_u8(&[&[255, 10, 12], &[14, 200, 255]]);
+        let q = assess(&f, &Histogram::of(&f), None, 100);
+        assert!((q.saturation_fraction - 2.0 / 6.0).abs() < 1e-12);
+        assert_eq!(q.background_level, 12.0); // median of 10, 12, 14
+    }
+}

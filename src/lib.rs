@@ -1,0 +1,12 @@
+//! framewarden: watches a microscope acquisition overnight, segments and
+//! measures every frame, and keeps the results in one SQLite file.
+//!
+//! The analysis core ([`analysis`]) is pure; decoding ([`decode`]), the file
+//! pipeline ([`pipeline`]) and the command line live at the edges.
+
+pub mod analysis;
+pub mod decode;
+pub mod frame;
+pub mod pipeline;
+pub mod settings;
+pub mod synth;
