@@ -1,0 +1,340 @@
+//! The SQLite store: one file, WAL mode, a versioned schema with migrations, and
+//! the identity of a frame (path + size + mtime).
+//!
+//! Writing belongs to the single writer thread in [`writer`]; reading for `status`
+//! lives in [`crate::status`]. This file only opens connections, migrates, and
+//! answers the watcher's "is this version of this file already recorded?".
+
+pub mod writer;
+
+use std::path::{Path, PathBuf};
+use std::time::{Duration, SystemTime, UNIX_EPOCH};
+
+use rusqlite::{Connection, OpenFlags, OptionalExtension};
+
+/// `PRAGMA application_id` of a framewarden database ("FWD1"): tells our files
+/// apart from any other SQLite file.
+pub const APPLICATION_ID: i32 = 0x4657_4431;
+
+/// Schema migrations, in order; `PRAGMA user_version` counts the applied ones.
+/// Append only: a released migration is never edited.
+const MIGRATIONS: &[&str] = &[include_str!("schema_v1.sql")];
+
+/// The schema version this build writes and reads.
+pub const SCHEMA_VERSION: i32 = MIGRATIONS.len() as i32;
+
+/// Errors opening or using the database, with what to do about them.
+#[derive(Debug, thiserror::Error)]
+pub enum StoreError {
+    #[error("no database at {0}: start `framewarden watch` first, or pass --db FILE")]
+    Missing(PathBuf),
+    #[error("{0} is not a framewarden database (wrong or missing application id); pass the file `framewarden watch` writes")]
+    Foreign(PathBuf),
+    #[error("{path} has schema version {found}, newer than this framewarden understands ({SCHEMA_VERSION}); upgrade framewarden")]
+    TooNew { path: PathBuf, found: i32 },
+    #[error("{path}: {source}")]
+    Sqlite {
+        path: PathBuf,
+        source: rusqlite::Error,
+    },
+    #[error("cannot create the database folder {path}: {source}")]
+    Folder {
+        path: PathBuf,
+        source: std::io::Error,
+    },
+}
+
+impl StoreError {
+    fn sqlite(path: &Path) -> impl FnOnce(rusqlite::Error) -> StoreError + '_ {
+        move |source| StoreError::Sqlite {
+            path: path.to_path_buf(),
+            source,
+        }
+    }
+}
+
+/// The identity of one version of one file: a rewrite changes size or mtime and
+/// so makes a new frame; an unchanged file keeps its identity.
+#[derive(Debug, Clone, PartialEq, Eq, Hash)]
+pub struct FrameKey {
+    /// The path as text (lossy for non-UTF-8 names).
+    pub path: String,
+    pub size_bytes: u64,
+    /// Modification time in nanoseconds since the Unix epoch.
+    pub mtime_ns: i64,
+}
+
+impl FrameKey {
+    /// The identity of `path` as it is on disk now.
+    ///
+    /// # Errors
+    /// The I/O error of `metadata` (missing file, no permission).
+    pub fn of(path: &Path) -> std::io::Result<FrameKey> {
+        let meta = std::fs::metadata(path)?;
+        Ok(FrameKey::from_metadata(path, &meta))
+    }
+
+    pub fn from_metadata(path: &Path, meta: &std::fs::Metadata) -> FrameKey {
+        let mtime_ns = meta.modified().ok().map_or(0, |t| {
+            t.duration_since(UNIX_EPOCH)
+                .map_or(0, |d| i64::try_from(d.as_nanos()).unwrap_or(i64::MAX))
+        });
+        FrameKey {
+            path: path.to_string_lossy().into_owned(),
+            size_bytes: meta.len(),
+            mtime_ns,
+        }
+    }
+}
+
+/// Where a recorded frame stands.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum FrameStatus {
+    /// Judged complete and handed to a worker; not finished yet (redone after a crash).
+    Queued,
+    Done,
+    Failed,
+}
+
+impl FrameStatus {
+    pub fn as_str(self) -> &'static str {
+        match self {
+            FrameStatus::Queued => "queued",
+            FrameStatus::Done => "done",
+            FrameStatus::Failed => "failed",
+        }
+    }
+
+    fn parse(s: &str) -> Option<FrameStatus> {
+        match s {
+            "queued" => Some(FrameStatus::Queued),
+            "done" => Some(FrameStatus::Done),
+            "failed" => Some(FrameStatus::Failed),
+            _ => None,
+        }
+    }
+}
+
+/// Milliseconds since the Unix epoch, the unit of every `*_at_ms` column.
+pub fn now_ms() -> i64 {
+    SystemTime::now()
+        .duration_since(UNIX_EPOCH)
+        .map_or(0, |d| i64::try_from(d.as_millis()).unwrap_or(i64::MAX))
+}
+
+/// Opens (creating if needed) the database for writing and migrates it.
+///
+/// # Errors
+/// [`StoreError::Foreign`] for a SQLite file of another program,
+/// [`StoreError::TooNew`] for a newer schema, SQLite errors otherwise.
+pub fn open_for_writing(path: &Path) -> Result<Connection, StoreError> {
+    if let Some(folder) = path.parent().filter(|p| !p.as_os_str().is_empty()) {
+        std::fs::create_dir_all(folder).map_err(|source| StoreError::Folder {
+            path: folder.to_path_buf(),
+            source,
+        })?;
+    }
+    let mut conn = Connection::open(path).map_err(StoreError::sqlite(path))?;
+    conn.busy_timeout(Duration::from_secs(10))
+        .map_err(StoreError::sqlite(path))?;
+    // WAL: readers (status, the watcher's look-ups) never block the writer.
+    // synchronous=NORMAL stays consistent; the last commits may be lost on power
+    // loss, which the idempotent, re-runnable recording absorbs.
+    conn.pragma_update(None, "journal_mode", "WAL")
+        .map_err(StoreError::sqlite(path))?;
+    conn.pragma_update(None, "synchronous", "NORMAL")
+        .map_err(StoreError::sqlite(path))?;
+    conn.pragma_update(None, "foreign_keys", "ON")
+        .map_err(StoreError::sqlite(path))?;
+    migrate(&mut conn, path)?;
+    Ok(conn)
+}
+
+/// Opens an existing database read-only, checking it is ours and not newer.
+///
+/// # Errors
+/// [`StoreError::Missing`], [`StoreError::Foreign`], [`StoreError::TooNew`].
+pub fn open_read_only(path: &Path) -> Result<Connection, StoreError> {
+    if !path.is_file() {
+        return Err(StoreError::Missing(path.to_path_buf()));
+    }
+    let conn = Connection::open_with_flags(
+        path,
+        OpenFlags::SQLITE_OPEN_READ_ONLY | OpenFlags::SQLITE_OPEN_NO_MUTEX,
+    )
+    .map_err(StoreError::sqlite(path))?;
+    conn.busy_timeout(Duration::from_secs(10))
+        .map_err(StoreError::sqlite(path))?;
+    let app_id: i32 = conn
+        .pragma_query_value(None, "application_id", |r| r.get(0))
+        .map_err(|e| match e {
+            rusqlite::Error::SqliteFailure(f, _) if f.code == rusqlite::ErrorCode::NotADatabase => {
+                StoreError::Foreign(path.to_path_buf())
+            }
+            other => StoreError::Sqlite {
+                path: path.to_path_buf(),
+                source: other,
+            },
+        })?;
+    if app_id != APPLICATION_ID {
+        return Err(StoreError::Foreign(path.to_path_buf()));
+    }
+    let version: i32 = conn
+        .pragma_query_value(None, "user_version", |r| r.get(0))
+        .map_err(StoreError::sqlite(path))?;
+    if version > SCHEMA_VERSION {
+        return Err(StoreError::TooNew {
+            path: path.to_path_buf(),
+            found: version,
+        });
+    }
+    Ok(conn)
+}
+
+fn migrate(conn: &mut Connection, path: &Path) -> Result<(), StoreError> {
+    let tx = conn
+        .transaction_with_behavior(rusqlite::TransactionBehavior::Immediate)
+        .map_err(StoreError::sqlite(path))?;
+    let app_id: i32 = tx
+        .pragma_query_value(None, "application_id", |r| r.get(0))
+        .map_err(|e| match e {
+            rusqlite::Error::SqliteFailure(f, _) if f.code == rusqlite::ErrorCode::NotADatabase => {
+                StoreError::Foreign(path.to_path_buf())
+            }
+            other => StoreError::Sqlite {
+                path: path.to_path_buf(),
+                source: other,
+            },
+        })?;
+    let version: i32 = tx
+        .pragma_query_value(None, "user_version", |r| r.get(0))
+        .map_err(StoreError::sqlite(path))?;
+    let tables: i64 = tx
+        .query_row("SELECT count(*) FROM sqlite_master", [], |r| r.get(0))
+        .map_err(StoreError::sqlite(path))?;
+    if app_id != APPLICATION_ID && (app_id != 0 || tables > 0) {
+        return Err(StoreError::Foreign(path.to_path_buf()));
+    }
+    if version > SCHEMA_VERSION {
+        return Err(StoreError::TooNew {
+            path: path.to_path_buf(),
+            found: version,
+        });
+    }
+    for (i, sql) in MIGRATIONS
+        .iter()
+        .enumerate()
+        .skip(usize::try_from(version).unwrap_or(0))
+    {
+        tx.execute_batch(sql).map_err(StoreError::sqlite(path))?;
+        tx.pragma_update(None, "user_version", i as i32 + 1)
+            .map_err(StoreError::sqlite(path))?;
+    }
+    tx.pragma_update(None, "application_id", APPLICATION_ID)
+        .map_err(StoreError::sqlite(path))?;
+    tx.commit().map_err(StoreError::sqlite(path))
+}
+
+/// The recorded status of exactly this version of a file, if any.
+///
+/// # Errors
+/// SQLite errors.
+pub fn lookup(conn: &Connection, key: &FrameKey) -> rusqlite::Result<Option<FrameStatus>> {
+    let mut stmt = conn.prepare_cached(
+        "SELECT status FROM frames WHERE path = ?1 AND size_bytes = ?2 AND mtime_ns = ?3",
+    )?;
+    let status: Option<String> = stmt
+        .query_row(
+            rusqlite::params![key.path, key.size_bytes as i64, key.mtime_ns],
+            |r| r.get(0),
+        )
+        .optional()?;
+    Ok(status.as_deref().and_then(FrameStatus::parse))
+}
+
+/// Every frame left `queued` (in flight when the last process stopped).
+///
+/// # Errors
+/// SQLite errors.
+pub fn queued_frames(conn: &Connection) -> rusqlite::Result<Vec<FrameKey>> {
+    let mut stmt = conn.prepare(
+        "SELECT path, size_bytes, mtime_ns FROM frames WHERE status = 'queued' ORDER BY id",
+    )?;
+    let rows = stmt.query_map([], |r| {
+        Ok(FrameKey {
+            path: r.get(0)?,
+            size_bytes: r.get::<_, i64>(1)? as u64,
+            mtime_ns: r.get(2)?,
+        })
+    })?;
+    rows.collect()
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn migrates_once_and_marks_the_file_as_ours() {
+        let dir = tempfile::tempdir().unwrap();
+        let db = dir.path().join("sub/fw.db");
+        drop(open_for_writing(&db).unwrap());
+        // A second open finds the schema current and applies nothing twice.
+        drop(open_for_writing(&db).unwrap());
+        let conn = open_read_only(&db).unwrap();
+        let v: i32 = conn
+            .pragma_query_value(None, "user_version", |r| r.get(0))
+            .unwrap();
+        assert_eq!(v, SCHEMA_VERSION);
+        let mode: String = conn
+            .pragma_query_value(None, "journal_mode", |r| r.get(0))
+            .unwrap();
+        assert_eq!(mode, "wal");
+    }
+
+    #[test]
+    fn foreign_and_missing_files_are_named() {
+        let dir = tempfile::tempdir().unwrap();
+        let missing = dir.path().join("none.db");
+        assert!(matches!(
+            open_read_only(&missing),
+            Err(StoreError::Missing(_))
+        ));
+
+        let other = dir.path().join("other.db");
+        Connection::open(&other)
+            .unwrap()
+            .execute_batch("CREATE TABLE t(x)")
+            .unwrap();
+        assert!(matches!(
+            open_read_only(&other),
+            Err(StoreError::Foreign(_))
+        ));
+        assert!(matches!(
+            open_for_writing(&other),
+            Err(StoreError::Foreign(_))
+        ));
+
+        let text = dir.path().join("notes.db");
+        std::fs::write(&text, "this is not a database at all, just some text....").unwrap();
+        assert!(matches!(open_read_only(&text), Err(StoreError::Foreign(_))));
+    }
+
+    #[test]
+    fn newer_schema_is_refused() {
+        let dir = tempfile::tempdir().unwrap();
+        let db = dir.path().join("fw.db");
+        let conn = open_for_writing(&db).unwrap();
+        conn.pragma_update(None, "user_version", SCHEMA_VERSION + 1)
+            .unwrap();
+        drop(conn);
+        assert!(matches!(
+            open_read_only(&db),
+            Err(StoreError::TooNew { .. })
+        ));
+        assert!(matches!(
+            open_for_writing(&db),
+            Err(StoreError::TooNew { .. })
+        ));
+    }
+}

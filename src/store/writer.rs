@@ -1,0 +1,635 @@
+//! The single writer: one thread owns the write connection and records frames in
+//! batched IMMEDIATE transactions, fed by a bounded channel.
+//!
+//! Every write is idempotent on the frame identity (path + size + mtime), so a
+//! crash and restart redoes at most the frames in flight and never duplicates a
+//! row. Deciding *what* to record is the watcher's job; this file only records.
+
+use std::collections::BTreeMap;
+use std::path::PathBuf;
+use std::thread::JoinHandle;
+use std::time::Duration;
+
+use crossbeam_channel::{Receiver, Sender};
+use rusqlite::{params, Connection, OptionalExtension, Transaction, TransactionBehavior};
+
+use super::{now_ms, FrameKey};
+use crate::pipeline::FileAnalysis;
+
+/// Parts of a file name picked out by the configured pattern.
+#[derive(Debug, Clone, Default, PartialEq, Eq)]
+pub struct NameParts {
+    pub well: Option<String>,
+    pub site: Option<String>,
+    pub time_point: Option<String>,
+    pub channel: Option<String>,
+    /// Every named part, including the four above.
+    pub all: BTreeMap<String, String>,
+}
+
+/// One thing to record.
+#[derive(Debug)]
+pub enum StoreOp {
+    /// A file judged completely written and handed to a worker.
+    Queued {
+        key: FrameKey,
+        detected_at_ms: i64,
+        ready_at_ms: i64,
+        names: NameParts,
+    },
+    /// The analysis of a queued frame.
+    Done {
+        key: FrameKey,
+        attempts: u32,
+        analysis: Box<FileAnalysis>,
+    },
+    /// A queued frame that produced no result, with the reason.
+    Failed {
+        key: FrameKey,
+        attempts: u32,
+        reason: String,
+    },
+    /// A queued frame whose file changed or went away before it was analysed;
+    /// its new version (if any) is recorded under its own identity.
+    Withdrawn { key: FrameKey },
+}
+
+impl StoreOp {
+    /// The identity this op finishes, if it takes a frame out of the pipeline.
+    fn finished_key(&self) -> Option<&FrameKey> {
+        match self {
+            StoreOp::Queued { .. } => None,
+            StoreOp::Done { key, .. }
+            | StoreOp::Failed { key, .. }
+            | StoreOp::Withdrawn { key } => Some(key),
+        }
+    }
+}
+
+/// How the writer picks the run that new frames belong to.
+#[derive(Debug, Clone)]
+pub struct RunPolicy {
+    pub folders: Vec<PathBuf>,
+    /// Snapshot of the settings in force, stored with a new run.
+    pub settings: String,
+    /// Start a new run even when the last one could be continued.
+    pub force_new: bool,
+    /// A frame detected after this long without frames starts a new run.
+    pub idle_gap_ms: i64,
+}
+
+/// Called after each commit with the identities that left the pipeline.
+pub type CommitHook = Box<dyn FnMut(&[FrameKey]) + Send>;
+
+/// Handle on the writer thread. Dropping every [`StoreOp`] sender ends it:
+/// it commits what is left, marks the run ended, and returns.
+pub struct Writer {
+    thread: JoinHandle<()>,
+    pub run_id: i64,
+}
+
+impl Writer {
+    /// Picks (continues or starts) the run, then starts the writer thread.
+    ///
+    /// # Errors
+    /// SQLite errors while choosing the run.
+    pub fn start(
+        mut conn: Connection,
+        policy: RunPolicy,
+        capacity: usize,
+        max_batch: usize,
+        on_commit: CommitHook,
+    ) -> rusqlite::Result<(Writer, Sender<StoreOp>)> {
+        let run = choose_run(&mut conn, &policy)?;
+        let (ops_tx, ops_rx) = crossbeam_channel::bounded(capacity.max(1));
+        let mut state = WriterState {
+            conn,
+            policy,
+            run,
+            on_commit,
+            max_batch: max_batch.max(1),
+        };
+        let run_id = state.run.id;
+        let thread = std::thread::Builder::new()
+            .name("store-writer".into())
+            .spawn(move || state.run_loop(&ops_rx))
+            .map_err(|e| rusqlite::Error::ToSqlConversionFailure(Box::new(e)))?;
+        Ok((Writer { thread, run_id }, ops_tx))
+    }
+
+    /// Waits for the thread to flush and end (after all senders are dropped).
+    pub fn join(self) {
+        if self.thread.join().is_err() {
+            tracing::error!("the store writer thread panicked");
+        }
+    }
+}
+
+#[derive(Debug, Clone, Copy)]
+struct Run {
+    id: i64,
+    last_frame_at_ms: i64,
+}
+
+struct WriterState {
+    conn: Connection,
+    policy: RunPolicy,
+    run: Run,
+    on_commit: CommitHook,
+    max_batch: usize,
+}
+
+impl WriterState {
+    fn run_loop(&mut self, ops_rx: &Receiver<StoreOp>) {
+        // Group commit: block for one op, then take whatever else is already
+        // waiting. Under load batches grow; when quiet a frame commits at once,
+        // so batching never adds latency.
+        while let Ok(first) = ops_rx.recv() {
+            let mut batch = vec![first];
+            while batch.len() < self.max_batch {
+                match ops_rx.try_recv() {
+                    Ok(op) => batch.push(op),
+                    Err(_) => break,
+                }
+            }
+            self.commit_with_retry(&batch);
+            let finished: Vec<FrameKey> = batch
+                .iter()
+                .filter_map(StoreOp::finished_key)
+                .cloned()
+                .collect();
+            (self.on_commit)(&finished);
+        }
+        let ended = self.conn.execute(
+            "UPDATE runs SET ended_at_ms = ?1 WHERE id = ?2",
+            params![now_ms(), self.run.id],
+        );
+        if let Err(e) = ended {
+            tracing::error!("cannot mark run {} ended: {e}", self.run.id);
+        }
+    }
+
+    fn commit_with_retry(&mut self, batch: &[StoreOp]) {
+        const ATTEMPTS: u32 = 5;
+        for attempt in 1..=ATTEMPTS {
+            match self.commit(batch) {
+                Ok(()) => return,
+                Err(e) if attempt < ATTEMPTS => {
+                    tracing::warn!(
+                        "store: commit of {} ops failed ({e}); retrying",
+                        batch.len()
+                    );
+                    std::thread::sleep(Duration::from_millis(200 * u64::from(attempt)));
+                }
+                Err(e) => {
+                    // Nothing is lost for good: the frames stay unrecorded or
+                    // queued, and the next start's catch-up scan redoes them.
+                    tracing::error!("store: giving up on a batch of {} ops: {e}", batch.len());
+                }
+            }
+        }
+    }
+
+    fn commit(&mut self, batch: &[StoreOp]) -> rusqlite::Result<()> {
+        let tx = self
+            .conn
+            .transaction_with_behavior(TransactionBehavior::Immediate)?;
+        let mut run = self.run;
+        for op in batch {
+            match op {
+                StoreOp::Queued {
+                    key,
+                    detected_at_ms,
+                    ready_at_ms,
+                    names,
+                } => {
+                    if *detected_at_ms - run.last_frame_at_ms > self.policy.idle_gap_ms {
+                        run = start_run(&tx, &self.policy, *detected_at_ms)?;
+                        tracing::info!("no frames for a while: started run {}", run.id);
+                    }
+                    run.last_frame_at_ms = run.last_frame_at_ms.max(*detected_at_ms);
+                    insert_queued(&tx, run.id, key, *detected_at_ms, *ready_at_ms, names)?;
+                }
+                StoreOp::Done {
+                    key,
+                    attempts,
+                    analysis,
+                } => record_done(&tx, key, *attempts, analysis)?,
+                StoreOp::Failed {
+                    key,
+                    attempts,
+                    reason,
+                } => record_failed(&tx, key, *attempts, reason)?,
+                StoreOp::Withdrawn { key } => {
+                    tx.prepare_cached(
+                        "DELETE FROM frames WHERE path = ?1 AND size_bytes = ?2 AND mtime_ns = ?3 AND status = 'queued'",
+                    )?
+                    .execute(params![key.path, key.size_bytes as i64, key.mtime_ns])?;
+                }
+            }
+        }
+        tx.execute(
+            "UPDATE runs SET last_frame_at_ms = ?1, ended_at_ms = NULL WHERE id = ?2",
+            params![run.last_frame_at_ms, run.id],
+        )?;
+        tx.commit()?;
+        self.run = run;
+        Ok(())
+    }
+}
+
+/// Continues the last run when it watched the same folders and saw a frame
+/// within the idle gap (a restart mid-acquisition); starts a new one otherwise.
+fn choose_run(conn: &mut Connection, policy: &RunPolicy) -> rusqlite::Result<Run> {
+    let tx = conn.transaction_with_behavior(TransactionBehavior::Immediate)?;
+    let now = now_ms();
+    let last: Option<(i64, String, i64)> = tx
+        .query_row(
+            "SELECT id, folders, last_frame_at_ms FROM runs ORDER BY id DESC LIMIT 1",
+            [],
+            |r| Ok((r.get(0)?, r.get(1)?, r.get(2)?)),
+        )
+        .optional()?;
+    let run = match last {
+        Some((id, folders, last_frame_at_ms))
+            if !policy.force_new
+                && folders == folders_json(policy)
+                && now - last_frame_at_ms <= policy.idle_gap_ms =>
+        {
+            tx.execute("UPDATE runs SET ended_at_ms = NULL WHERE id = ?1", [id])?;
+            tracing::info!("continuing run {id}");
+            Run {
+                id,
+                last_frame_at_ms,
+            }
+        }
+        _ => {
+            let run = start_run(&tx, policy, now)?;
+            tracing::info!("started run {}", run.id);
+            run
+        }
+    };
+    tx.commit()?;
+    Ok(run)
+}
+
+fn folders_json(policy: &RunPolicy) -> String {
+    let folders: Vec<String> = policy
+        .folders
+        .iter()
+        .map(|f| f.to_string_lossy().into_owned())
+        .collect();
+    serde_json::Value::from(folders).to_string()
+}
+
+fn start_run(tx: &Transaction<'_>, policy: &RunPolicy, at_ms: i64) -> rusqlite::Result<Run> {
+    tx.execute(
+        "UPDATE runs SET ended_at_ms = ?1 WHERE ended_at_ms IS NULL",
+        [at_ms],
+    )?;
+    tx.execute(
+        "INSERT INTO runs (folders, started_at_ms, last_frame_at_ms, settings) VALUES (?1, ?2, ?2, ?3)",
+        params![folders_json(policy), at_ms, policy.settings],
+    )?;
+    Ok(Run {
+        id: tx.last_insert_rowid(),
+        last_frame_at_ms: at_ms,
+    })
+}
+
+fn insert_queued(
+    tx: &Transaction<'_>,
+    run_id: i64,
+    key: &FrameKey,
+    detected_at_ms: i64,
+    ready_at_ms: i64,
+    names: &NameParts,
+) -> rusqlite::Result<()> {
+    let name_parts =
+        (!names.all.is_empty()).then(|| serde_json::to_string(&names.all).unwrap_or_default());
+    // DO NOTHING on a known identity: re-queueing after a restart, or a second
+    // sighting of the same version, leaves the existing row alone.
+    tx.prepare_cached(
+        "INSERT INTO frames (run_id, path, size_bytes, mtime_ns, version, status, detected_at_ms, ready_at_ms,
+                             well, site, time_point, channel, name_parts)
+         VALUES (?1, ?2, ?3, ?4, (SELECT COALESCE(MAX(version), 0) + 1 FROM frames WHERE path = ?2),
+                 'queued', ?5, ?6, ?7, ?8, ?9, ?10, ?11)
+         ON CONFLICT (path, size_bytes, mtime_ns) DO NOTHING",
+    )?
+    .execute(params![
+        run_id,
+        key.path,
+        key.size_bytes as i64,
+        key.mtime_ns,
+        detected_at_ms,
+        ready_at_ms,
+        names.well,
+        names.site,
+        names.time_point,
+        names.channel,
+        name_parts,
+    ])?;
+    Ok(())
+}
+
+fn record_done(
+    tx: &Transaction<'_>,
+    key: &FrameKey,
+    attempts: u32,
+    analysis: &FileAnalysis,
+) -> rusqlite::Result<()> {
+    let r = &analysis.result;
+    let now = now_ms();
+    let frame_id: Option<i64> = tx
+        .prepare_cached(
+            "UPDATE frames SET status = 'done', error = NULL, attempts = ?4, analysed_at_ms = ?5,
+                 latency_ms = MAX(0, ?5 - ready_at_ms),
+                 width = ?6, height = ?7, bit_depth = ?8, method = ?9, threshold = ?10, separability = ?11,
+                 object_count = ?12, foreground_fraction = ?13, background_level = ?14,
+                 saturation_fraction = ?15, focus = ?16, illumination_change = ?17,
+                 pixel_size_um = ?18, pixel_size_source = ?19
+             WHERE path = ?1 AND size_bytes = ?2 AND mtime_ns = ?3 AND status <> 'done'
+             RETURNING id",
+        )?
+        .query_row(
+            params![
+                key.path,
+                key.size_bytes as i64,
+                key.mtime_ns,
+                attempts,
+                now,
+                r.width as i64,
+                r.height as i64,
+                r.bit_depth,
+                r.method,
+                r.threshold,
+                r.separability,
+                r.object_count as i64,
+                r.foreground_fraction,
+                r.background_level,
+                r.saturation_fraction,
+                r.focus,
+                r.illumination_change,
+                r.pixel_size_um,
+                analysis.pixel_size_source.map(|s| s.as_str()),
+            ],
+            |row| row.get(0),
+        )
+        .optional()?;
+    let Some(frame_id) = frame_id else {
+        tracing::warn!("store: {} has no queued row to complete; skipped", key.path);
+        return Ok(());
+    };
+    tx.prepare_cached("DELETE FROM objects WHERE frame_id = ?1")?
+        .execute([frame_id])?;
+    let mut insert = tx.prepare_cached(
+        "INSERT INTO objects (frame_id, label, area_px, area_um2, centroid_x, centroid_y,
+             bbox_x_min, bbox_y_min, bbox_x_max, bbox_y_max, mean_intensity, integrated_intensity,
+             max_intensity, perimeter_px, circularity, major_axis_px, minor_axis_px, eccentricity, channels)
+         VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9, ?10, ?11, ?12, ?13, ?14, ?15, ?16, ?17, ?18, ?19)",
+    )?;
+    for o in &r.objects {
+        let channels = (!o.channels.is_empty())
+            .then(|| serde_json::to_string(&o.channels).unwrap_or_default());
+        insert.execute(params![
+            frame_id,
+            o.label,
+            o.area_px as i64,
+            o.area_um2,
+            o.centroid_x,
+            o.centroid_y,
+            o.bbox[0],
+            o.bbox[1],
+            o.bbox[2],
+            o.bbox[3],
+            o.mean_intensity,
+            o.integrated_intensity,
+            o.max_intensity,
+            o.perimeter_px,
+            o.circularity,
+            o.major_axis_px,
+            o.minor_axis_px,
+            o.eccentricity,
+            channels,
+        ])?;
+    }
+    Ok(())
+}
+
+fn record_failed(
+    tx: &Transaction<'_>,
+    key: &FrameKey,
+    attempts: u32,
+    reason: &str,
+) -> rusqlite::Result<()> {
+    tx.prepare_cached(
+        "UPDATE frames SET status = 'failed', error = ?4, attempts = ?5, analysed_at_ms = ?6,
+             latency_ms = MAX(0, ?6 - ready_at_ms)
+         WHERE path = ?1 AND size_bytes = ?2 AND mtime_ns = ?3 AND status <> 'done'",
+    )?
+    .execute(params![
+        key.path,
+        key.size_bytes as i64,
+        key.mtime_ns,
+        reason,
+        attempts,
+        now_ms()
+    ])?;
+    Ok(())
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::analysis::FrameResult;
+    use crate::store::{lookup, open_for_writing, queued_frames, FrameStatus};
+    use std::sync::{Arc, Mutex};
+
+    fn key(path: &str, size: u64) -> FrameKey {
+        FrameKey {
+            path: path.into(),
+            size_bytes: size,
+            mtime_ns: 7,
+        }
+    }
+
+    fn queued(k: &FrameKey) -> StoreOp {
+        StoreOp::Queued {
+            key: k.clone(),
+            detected_at_ms: now_ms(),
+            ready_at_ms: now_ms(),
+            names: NameParts::default(),
+        }
+    }
+
+    fn analysis(objects: usize) -> Box<FileAnalysis> {
+        let object = crate::analysis::ObjectMeasures {
+            label: 1,
+            area_px: 4,
+            area_um2: None,
+            centroid_x: 1.0,
+            centroid_y: 1.0,
+            bbox: [0, 0, 2, 2],
+            mean_intensity: 9.0,
+            integrated_intensity: 36.0,
+            max_intensity: 9.0,
+            perimeter_px: 8.0,
+            circularity: 0.8,
+            major_axis_px: 2.0,
+            minor_axis_px: 2.0,
+            eccentricity: 0.0,
+            channels: vec![],
+        };
+        let objects: Vec<_> = (0..objects)
+            .map(|i| crate::analysis::ObjectMeasures {
+                label: i as u32 + 1,
+                ..object.clone()
+            })
+            .collect();
+        Box::new(FileAnalysis {
+            result: FrameResult {
+                width: 4,
+                height: 4,
+                bit_depth: 8,
+                method: "otsu".into(),
+                threshold: 3.0,
+                separability: 0.9,
+                object_count: objects.len(),
+                foreground_fraction: 0.25,
+                background_level: 1.0,
+                saturation_fraction: 0.0,
+                focus: 2.0,
+                illumination_change: 0.0,
+                pixel_size_um: None,
+                objects,
+            },
+            pixel_size_source: None,
+        })
+    }
+
+    fn policy(force_new: bool) -> RunPolicy {
+        RunPolicy {
+            folders: vec!["/acq".into()],
+            settings: "s".into(),
+            force_new,
+            idle_gap_ms: 3_600_000,
+        }
+    }
+
+    #[test]
+    fn records_are_idempotent_and_finished_keys_are_reported() {
+        let dir = tempfile::tempdir().unwrap();
+        let db = dir.path().join("fw.db");
+        let seen = Arc::new(Mutex::new(Vec::new()));
+        let hook_seen = Arc::clone(&seen);
+        let (writer, tx) = Writer::start(
+            open_for_writing(&db).unwrap(),
+            policy(false),
+            16,
+            8,
+            Box::new(move |keys| hook_seen.lock().unwrap().extend_from_slice(keys)),
+        )
+        .unwrap();
+        let a = key("/acq/a.tif", 10);
+        let b = key("/acq/b.tif", 10);
+        let c = key("/acq/c.tif", 10);
+        for op in [queued(&a), queued(&a), queued(&b), queued(&c)] {
+            tx.send(op).unwrap();
+        }
+        tx.send(StoreOp::Done {
+            key: a.clone(),
+            attempts: 1,
+            analysis: analysis(3),
+        })
+        .unwrap();
+        // A repeated completion (e.g. redone after a crash) neither duplicates
+        // the frame nor its objects.
+        tx.send(StoreOp::Done {
+            key: a.clone(),
+            attempts: 1,
+            analysis: analysis(3),
+        })
+        .unwrap();
+        tx.send(StoreOp::Failed {
+            key: b.clone(),
+            attempts: 2,
+            reason: "not a TIFF".into(),
+        })
+        .unwrap();
+        tx.send(StoreOp::Withdrawn { key: c.clone() }).unwrap();
+        drop(tx);
+        writer.join();
+
+        let conn = open_for_writing(&db).unwrap();
+        assert_eq!(lookup(&conn, &a).unwrap(), Some(FrameStatus::Done));
+        assert_eq!(lookup(&conn, &b).unwrap(), Some(FrameStatus::Failed));
+        assert_eq!(lookup(&conn, &c).unwrap(), None);
+        let frames: i64 = conn
+            .query_row("SELECT count(*) FROM frames", [], |r| r.get(0))
+            .unwrap();
+        let objects: i64 = conn
+            .query_row("SELECT count(*) FROM objects", [], |r| r.get(0))
+            .unwrap();
+        assert_eq!((frames, objects), (2, 3));
+        let ended: Option<i64> = conn
+            .query_row("SELECT ended_at_ms FROM runs", [], |r| r.get(0))
+            .unwrap();
+        assert!(ended.is_some());
+        let reported = seen.lock().unwrap().clone();
+        assert_eq!(reported, vec![a.clone(), a, b, c]);
+    }
+
+    #[test]
+    fn a_rewrite_is_a_new_version_and_restarts_continue_the_run() {
+        let dir = tempfile::tempdir().unwrap();
+        let db = dir.path().join("fw.db");
+        let first = key("/acq/a.tif", 10);
+        let second = key("/acq/a.tif", 20);
+        let (w, tx) = Writer::start(
+            open_for_writing(&db).unwrap(),
+            policy(false),
+            4,
+            4,
+            Box::new(|_| {}),
+        )
+        .unwrap();
+        let run1 = w.run_id;
+        tx.send(queued(&first)).unwrap();
+        drop(tx);
+        w.join();
+        let (w, tx) = Writer::start(
+            open_for_writing(&db).unwrap(),
+            policy(false),
+            4,
+            4,
+            Box::new(|_| {}),
+        )
+        .unwrap();
+        assert_eq!(w.run_id, run1, "a restart continues the run");
+        tx.send(queued(&second)).unwrap();
+        drop(tx);
+        w.join();
+        let conn = open_for_writing(&db).unwrap();
+        let versions: Vec<i64> = conn
+            .prepare("SELECT version FROM frames ORDER BY version")
+            .unwrap()
+            .query_map([], |r| r.get(0))
+            .unwrap()
+            .collect::<Result<_, _>>()
+            .unwrap();
+        assert_eq!(versions, vec![1, 2]);
+        assert_eq!(queued_frames(&conn).unwrap().len(), 2);
+        drop(conn);
+        let (w, tx) = Writer::start(
+            open_for_writing(&db).unwrap(),
+            policy(true),
+            4,
+            4,
+            Box::new(|_| {}),
+        )
+        .unwrap();
+        assert_ne!(w.run_id, run1, "a new run on request");
+        drop(tx);
+        w.join();
+    }
+}
