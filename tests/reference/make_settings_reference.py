@@ -21,8 +21,10 @@ on this side, named again in each case's `source`:
   scipy.ndimage.binary_fill_holes     (structure = background connectivity:
                                        4-connected cross for 8-connected objects,
                                        3x3 square for 4-connected objects)
-  skimage.measure.label               (connectivity 2 = 8, 1 = 4; its count is
-                                       asserted equal to scipy.ndimage.label's)
+  skimage.measure.label               (connectivity 2 = 8, 1 = 4; asserted to
+                                       agree with scipy.ndimage.label's count
+                                       and with the areas, boxes and centroids
+                                       of cv2.connectedComponentsWithStats)
   skimage.segmentation.clear_border   (objects touching the frame edge)
   area limits                         (numpy.bincount of the labels;
                                        keep min <= area <= max, max 0 = none)
@@ -35,11 +37,12 @@ import json
 import sys
 from pathlib import Path
 
+import cv2
 import numpy as np
 import scipy.ndimage as ndi
 import skimage.data
 from skimage.filters import threshold_multiotsu
-from skimage.measure import label
+from skimage.measure import label, regionprops
 from skimage.segmentation import clear_border, relabel_sequential
 
 from make_reference import SEED, noisy, objects_of, paint, scene_masks, write_tiff
@@ -49,7 +52,8 @@ CROSS = ndi.generate_binary_structure(2, 1)  # 4-connectivity
 
 SOURCE = (
     "pixel > level; scipy.ndimage.binary_fill_holes(structure=background connectivity); "
-    "skimage.measure.label (count == scipy.ndimage.label); skimage.segmentation.clear_border; "
+    "skimage.measure.label (== scipy.ndimage.label count, == cv2.connectedComponentsWithStats stats); "
+    "skimage.segmentation.clear_border; "
     "area limits by numpy.bincount; skimage.segmentation.relabel_sequential; "
     "skimage.measure.regionprops"
 )
@@ -120,6 +124,7 @@ def segment(img, level, fill_holes, connectivity, min_area, max_area, exclude_bo
     labels = label(mask, connectivity=2 if connectivity == 8 else 1)
     _, n_scipy = ndi.label(mask, structure=SQUARE if connectivity == 8 else CROSS)
     assert n_scipy == labels.max(), "scipy.ndimage.label and skimage.measure.label disagree"
+    assert_opencv_agrees(mask, labels, connectivity)
     if exclude_border:
         labels = clear_border(labels)
     areas = np.bincount(labels.ravel())
@@ -130,6 +135,25 @@ def segment(img, level, fill_holes, connectivity, min_area, max_area, exclude_bo
     labels[drop[labels]] = 0
     labels, _, _ = relabel_sequential(labels)
     return labels
+
+
+def assert_opencv_agrees(mask, labels, connectivity):
+    """cv2.connectedComponentsWithStats must find the same objects (area,
+    bounding box, centroid) as skimage.measure.label + regionprops, so three
+    libraries stand behind each labelling. OpenCV may number them in another
+    order, so both sides are compared sorted."""
+    n, _, stats, centroids = cv2.connectedComponentsWithStats(
+        mask.astype(np.uint8), connectivity=connectivity, ltype=cv2.CV_32S
+    )
+    ours = sorted(
+        (int(r.bbox[1]), int(r.bbox[0]), int(r.bbox[3] - r.bbox[1]), int(r.bbox[2] - r.bbox[0]), int(r.area),
+         float(r.centroid[1]), float(r.centroid[0]))
+        for r in regionprops(labels)
+    )
+    theirs = sorted(tuple(int(v) for v in stats[i]) + tuple(float(c) for c in centroids[i]) for i in range(1, n))
+    assert len(ours) == len(theirs), "cv2.connectedComponentsWithStats count differs"
+    for a, b in zip(ours, theirs):
+        assert a[:5] == b[:5] and np.allclose(a[5:], b[5:], rtol=0, atol=1e-9), (a, b)
 
 
 def raster_ordered(labels):
