@@ -134,6 +134,10 @@ pub struct Settings {
     pub segment: SegmentSettings,
     pub calibration: Calibration,
     pub limits: DecodeLimits,
+    /// `[watch]`: folders, readiness and the worker pool of the watch service.
+    pub watch: crate::watch::config::WatchSettings,
+    /// `[store]`: the SQLite database.
+    pub store: crate::watch::config::StoreSettings,
 }
 
 impl Default for Settings {
@@ -145,6 +149,8 @@ impl Default for Settings {
                 prefer: CalibrationPreference::File,
             },
             limits: DecodeLimits::default(),
+            watch: crate::watch::config::WatchSettings::default(),
+            store: crate::watch::config::StoreSettings::default(),
         }
     }
 }
@@ -160,6 +166,10 @@ struct RawConfig {
     calibration: RawCalibration,
     #[serde(default)]
     limits: RawLimits,
+    #[serde(default)]
+    watch: crate::watch::config::RawWatch,
+    #[serde(default)]
+    store: crate::watch::config::RawStore,
 }
 
 #[derive(Debug, Deserialize)]
@@ -391,6 +401,7 @@ pub fn parse(text: &str, path: &Path) -> Result<Settings, ConfigError> {
     if l.max_pixels == 0 || l.max_decoded_mib == 0 || l.max_pages == 0 {
         return Err(invalid("limits.* must be positive".into()));
     }
+    let (watch, store) = crate::watch::config::validate(raw.watch, raw.store, base).map_err(invalid)?;
     Ok(Settings {
         segment: SegmentSettings {
             page: s.page,
@@ -415,6 +426,8 @@ pub fn parse(text: &str, path: &Path) -> Result<Settings, ConfigError> {
             max_decoded_bytes: l.max_decoded_mib << 20,
             max_pages: l.max_pages,
         },
+        watch,
+        store,
     })
 }
 

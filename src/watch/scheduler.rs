@@ -1,0 +1,392 @@
+//! From "something happened to this path" to "this exact version is complete: analyse
+//! it". Owns the pending map, applies the readiness rule, and feeds the bounded
+//! work queue; also the scanner that lists folders for catch-up and rescans.
+//!
+//! File events are hints only; the rule is: size and mtime unchanged over at least
+//! two looks and the settle time. Decoding in full (the last part of the rule) is
+//! the worker's; a short read comes back here as [`SchedMsg::Retry`].
+
+use std::collections::HashMap;
+use std::path::{Path, PathBuf};
+use std::sync::atomic::{AtomicBool, Ordering};
+use std::sync::Arc;
+use std::time::{Duration, Instant};
+
+use crossbeam_channel::{Receiver, RecvTimeoutError, Sender};
+use notify::event::{CreateKind, EventKind, ModifyKind};
+use rusqlite::Connection;
+
+use super::config::WatchSettings;
+use super::{Job, Progress};
+use crate::store::writer::StoreOp;
+use crate::store::{lookup, now_ms, FrameKey, FrameStatus};
+
+/// Messages to the scheduler thread.
+#[derive(Debug)]
+pub enum SchedMsg {
+    /// A raw file event (or watcher error) from notify's thread.
+    Event(notify::Result<notify::Event>),
+    /// Files the scanner found unrecorded (or left queued by an earlier process).
+    Found(Vec<PathBuf>),
+    /// A worker read the file short (or saw it change): look again after a backoff.
+    Retry {
+        path: PathBuf,
+        previous: FrameKey,
+        attempts: u32,
+        detected_at_ms: i64,
+    },
+    /// Frames whose final row is committed: they leave the in-flight set.
+    Committed(Vec<FrameKey>),
+    Stop,
+}
+
+/// A file being watched until it is complete.
+#[derive(Debug)]
+struct Candidate {
+    detected_at_ms: i64,
+    /// Size and mtime at the last look.
+    last: Option<(u64, i64)>,
+    /// When size or mtime last changed (or the first look).
+    changed_at: Instant,
+    looks: u32,
+    due: Instant,
+    attempts: u32,
+    /// The identity a worker already tried (its row is `queued`).
+    previous: Option<FrameKey>,
+}
+
+/// Shortest pause between two looks at the same file.
+const MIN_LOOK_GAP: Duration = Duration::from_millis(25);
+
+pub struct Scheduler {
+    pub watch: WatchSettings,
+    pub inbox: Receiver<SchedMsg>,
+    pub work_tx: Sender<Job>,
+    pub store_tx: Sender<StoreOp>,
+    pub scan_tx: Sender<PathBuf>,
+    pub reader: Connection,
+    pub progress: Arc<Progress>,
+}
+
+impl Scheduler {
+    /// The scheduler loop; returns on [`SchedMsg::Stop`] or when every sender is gone.
+    pub fn run(self) {
+        let mut pending: HashMap<PathBuf, Candidate> = HashMap::new();
+        let mut in_flight: HashMap<PathBuf, FrameKey> = HashMap::new();
+        let mut next_rescan = Instant::now() + self.watch.rescan_interval;
+        loop {
+            let now = Instant::now();
+            let next_due = pending
+                .values()
+                .map(|c| c.due)
+                .min()
+                .unwrap_or(now + Duration::from_secs(1));
+            let wait = next_due
+                .min(next_rescan)
+                .saturating_duration_since(now)
+                .min(Duration::from_secs(1));
+            match self.inbox.recv_timeout(wait) {
+                Ok(SchedMsg::Stop) | Err(RecvTimeoutError::Disconnected) => break,
+                Ok(SchedMsg::Event(Ok(event))) => self.on_event(&event, &mut pending),
+                Ok(SchedMsg::Event(Err(e))) => {
+                    tracing::warn!("watcher error ({e}); rescanning");
+                    self.rescan_all();
+                }
+                Ok(SchedMsg::Found(paths)) => {
+                    for path in paths {
+                        hint(&mut pending, path, Instant::now());
+                    }
+                }
+                Ok(SchedMsg::Retry {
+                    path,
+                    previous,
+                    attempts,
+                    detected_at_ms,
+                }) => {
+                    if in_flight.get(&path) == Some(&previous) {
+                        in_flight.remove(&path);
+                    }
+                    let backoff = self.watch.retry_backoff
+                        * 2u32.saturating_pow(attempts.saturating_sub(1).min(10));
+                    let now = Instant::now();
+                    pending.insert(
+                        path,
+                        Candidate {
+                            detected_at_ms,
+                            last: None,
+                            changed_at: now,
+                            looks: 0,
+                            due: now + backoff,
+                            attempts,
+                            previous: Some(previous),
+                        },
+                    );
+                }
+                Ok(SchedMsg::Committed(keys)) => {
+                    for key in keys {
+                        let path = PathBuf::from(&key.path);
+                        if in_flight.get(&path) == Some(&key) {
+                            in_flight.remove(&path);
+                        }
+                    }
+                }
+                Err(RecvTimeoutError::Timeout) => {}
+            }
+            let now = Instant::now();
+            if now >= next_rescan {
+                self.rescan_all();
+                next_rescan = now + self.watch.rescan_interval;
+            }
+            let due: Vec<PathBuf> = pending
+                .iter()
+                .filter(|(_, c)| c.due <= now)
+                .map(|(p, _)| p.clone())
+                .collect();
+            for path in due {
+                if let Some(mut c) = pending.remove(&path) {
+                    if self.look(&path, &mut c, &mut in_flight, now) == Look::Again {
+                        pending.insert(path, c);
+                    }
+                }
+            }
+        }
+        tracing::debug!("scheduler stopped with {} files pending", pending.len());
+    }
+
+    fn rescan_all(&self) {
+        for folder in &self.watch.folders {
+            // The scanner ends only at shutdown; a failed send then is harmless.
+            let _ = self.scan_tx.send(folder.clone());
+        }
+    }
+
+    fn on_event(&self, event: &notify::Event, pending: &mut HashMap<PathBuf, Candidate>) {
+        if event.need_rescan() {
+            tracing::info!("the event queue overflowed; rescanning");
+            self.rescan_all();
+        }
+        let may_be_folder = matches!(
+            event.kind,
+            EventKind::Create(CreateKind::Folder | CreateKind::Any)
+                | EventKind::Modify(ModifyKind::Name(_))
+        );
+        match event.kind {
+            EventKind::Remove(_) | EventKind::Access(notify::event::AccessKind::Open(_)) => {}
+            _ => {
+                let now = Instant::now();
+                for path in &event.paths {
+                    if may_be_folder && path.is_dir() {
+                        // Files written before the new folder's watch existed
+                        // produce no event: list the folder ourselves.
+                        let _ = self.scan_tx.send(path.clone());
+                    } else if self.watch.filter.accepts(path) {
+                        hint(pending, path.clone(), now);
+                    }
+                }
+            }
+        }
+    }
+
+    /// One look at a pending file; `Again` keeps it pending.
+    fn look(
+        &self,
+        path: &Path,
+        c: &mut Candidate,
+        in_flight: &mut HashMap<PathBuf, FrameKey>,
+        now: Instant,
+    ) -> Look {
+        let meta = match std::fs::metadata(path) {
+            Ok(m) if m.is_file() => m,
+            Ok(_) => return Look::Drop,
+            Err(e) if e.kind() == std::io::ErrorKind::NotFound => {
+                // Renamed away or deleted: if a worker already tried it, its row
+                // gets the reason; otherwise it was never a frame of ours.
+                if let Some(previous) = c.previous.take() {
+                    self.send_store(StoreOp::Failed {
+                        key: previous,
+                        attempts: c.attempts,
+                        reason: "the file went away before it could be read completely".into(),
+                    });
+                }
+                return Look::Drop;
+            }
+            Err(e) => return self.unreadable(path, c, &e.to_string(), now),
+        };
+        let key = FrameKey::from_metadata(path, &meta);
+        let signature = (key.size_bytes, key.mtime_ns);
+        if c.last != Some(signature) {
+            c.last = Some(signature);
+            c.changed_at = now;
+            c.looks = 1;
+            c.due = now + self.watch.settle.max(MIN_LOOK_GAP);
+            return Look::Again;
+        }
+        c.looks += 1;
+        let settled_at = c.changed_at + self.watch.settle;
+        if c.looks < 2 || now < settled_at {
+            c.due = settled_at.max(now + MIN_LOOK_GAP);
+            return Look::Again;
+        }
+        // Complete by size and mtime: is this exact version already handled?
+        if in_flight.get(path) == Some(&key) {
+            return Look::Drop;
+        }
+        let recorded = match lookup(&self.reader, &key) {
+            Ok(status) => status,
+            Err(e) => {
+                tracing::warn!(
+                    "store look-up for {} failed ({e}); trying again",
+                    path.display()
+                );
+                c.due = now + Duration::from_millis(500);
+                return Look::Again;
+            }
+        };
+        if let Some(previous) = c.previous.take().filter(|p| *p != key) {
+            // The file changed since a worker read it short: that version never
+            // existed complete. The new one gets its own row.
+            self.send_store(StoreOp::Withdrawn { key: previous });
+            c.attempts = 0;
+        }
+        if matches!(recorded, Some(FrameStatus::Done | FrameStatus::Failed)) {
+            return Look::Drop;
+        }
+        if self.work_tx.is_full() {
+            // Backpressure: keep the file pending and look again shortly.
+            c.due = now + MIN_LOOK_GAP;
+            return Look::Again;
+        }
+        if recorded.is_none() {
+            // Ordered before the job itself, so the row exists when its result arrives.
+            self.send_store(StoreOp::Queued {
+                key: key.clone(),
+                detected_at_ms: c.detected_at_ms,
+                ready_at_ms: now_ms(),
+                names: self.watch.name_pattern.parts(path),
+            });
+        }
+        let job = Job {
+            path: path.to_path_buf(),
+            key: key.clone(),
+            detected_at_ms: c.detected_at_ms,
+            ready_at: now,
+            attempts: c.attempts,
+        };
+        // Only this thread sends, so a queue that was not full has room.
+        if self.work_tx.try_send(job).is_ok() {
+            self.progress.enqueued.fetch_add(1, Ordering::Relaxed);
+            in_flight.insert(path.to_path_buf(), key);
+        }
+        Look::Drop
+    }
+
+    /// A file that exists but cannot be inspected: keep trying with backoff, and
+    /// record it as failed once the retry limit is reached.
+    fn unreadable(&self, path: &Path, c: &mut Candidate, reason: &str, now: Instant) -> Look {
+        c.attempts += 1;
+        if c.attempts <= self.watch.retry_limit {
+            c.due = now + self.watch.retry_backoff * 2u32.saturating_pow(c.attempts.min(10));
+            return Look::Again;
+        }
+        let key = FrameKey {
+            path: path.to_string_lossy().into_owned(),
+            size_bytes: 0,
+            mtime_ns: 0,
+        };
+        let at = now_ms();
+        self.send_store(StoreOp::Queued {
+            key: key.clone(),
+            detected_at_ms: c.detected_at_ms,
+            ready_at_ms: at,
+            names: self.watch.name_pattern.parts(path),
+        });
+        self.send_store(StoreOp::Failed {
+            key,
+            attempts: c.attempts,
+            reason: format!(
+                "cannot inspect the file after {} attempts: {reason}",
+                c.attempts
+            ),
+        });
+        Look::Drop
+    }
+
+    fn send_store(&self, op: StoreOp) {
+        if self.store_tx.send(op).is_err() {
+            tracing::error!("the store writer has stopped; a record was not written");
+        }
+    }
+}
+
+#[derive(Debug, PartialEq, Eq)]
+enum Look {
+    Again,
+    Drop,
+}
+
+fn hint(pending: &mut HashMap<PathBuf, Candidate>, path: PathBuf, now: Instant) {
+    pending
+        .entry(path)
+        .and_modify(|c| c.due = c.due.min(now + MIN_LOOK_GAP))
+        .or_insert_with(|| Candidate {
+            detected_at_ms: now_ms(),
+            last: None,
+            changed_at: now,
+            looks: 0,
+            due: now,
+            attempts: 0,
+            previous: None,
+        });
+}
+
+/// The scanner thread: lists a folder tree (catch-up, rescans, new subfolders)
+/// and reports the files whose current version is not recorded as finished.
+pub fn scan_loop(
+    requests: &Receiver<PathBuf>,
+    reader: &Connection,
+    watch: &WatchSettings,
+    sched_tx: &Sender<SchedMsg>,
+    stopping: &AtomicBool,
+) {
+    const CHUNK: usize = 256;
+    while let Ok(root) = requests.recv() {
+        let mut found = Vec::new();
+        let mut listed = 0usize;
+        for entry in walkdir::WalkDir::new(&root)
+            .follow_links(false)
+            .into_iter()
+            .filter_map(Result::ok)
+        {
+            if stopping.load(Ordering::Relaxed) {
+                return;
+            }
+            if !entry.file_type().is_file() || !watch.filter.accepts(entry.path()) {
+                continue;
+            }
+            listed += 1;
+            let Ok(meta) = entry.metadata() else { continue };
+            let key = FrameKey::from_metadata(entry.path(), &meta);
+            match lookup(reader, &key) {
+                Ok(Some(FrameStatus::Done | FrameStatus::Failed)) => {}
+                // Unrecorded, queued by an earlier process, or a look-up error:
+                // hand it over; the scheduler checks again before queueing.
+                _ => found.push(entry.into_path()),
+            }
+            if found.len() >= CHUNK
+                && sched_tx
+                    .send(SchedMsg::Found(std::mem::take(&mut found)))
+                    .is_err()
+            {
+                return;
+            }
+        }
+        tracing::debug!(
+            "scanned {}: {listed} frame files, {} to look at",
+            root.display(),
+            found.len()
+        );
+        if !found.is_empty() && sched_tx.send(SchedMsg::Found(found)).is_err() {
+            return;
+        }
+    }
+}
