@@ -9,4 +9,6 @@ pub mod decode;
 pub mod frame;
 pub mod pipeline;
 pub mod settings;
+pub mod store;
 pub mod synth;
+pub mod watch;
