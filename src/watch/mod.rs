@@ -111,13 +111,20 @@ impl Service {
     /// # Errors
     /// [`WatchError`] for a bad folder, database or thread start.
     pub fn start(settings: &Settings, options: &WatchOptions) -> Result<Service, WatchError> {
-        let watch = settings.watch.clone();
+        let mut watch = settings.watch.clone();
         if watch.folders.is_empty() {
             return Err(WatchError::NoFolders);
         }
-        if let Some(missing) = watch.folders.iter().find(|f| !f.is_dir()) {
-            return Err(WatchError::MissingFolder(missing.clone()));
-        }
+        // One spelling per file: events, scans and the identity in the store all
+        // use canonical paths, so `acq/a.tif` and `/data/acq/a.tif` never make two rows.
+        watch.folders = watch
+            .folders
+            .iter()
+            .map(|f| match f.canonicalize() {
+                Ok(c) if c.is_dir() => Ok(c),
+                _ => Err(WatchError::MissingFolder(f.clone())),
+            })
+            .collect::<Result<_, _>>()?;
         let db = &settings.store.database;
         let conn = store::open_for_writing(db)?;
         // Rows left queued by an earlier process: redone by the catch-up scan if
@@ -356,11 +363,13 @@ impl Worker {
                         analysis: Box::new(analysis),
                     })
                 }
-                Ok(Err(e)) if e.is_incomplete() => retry_or_fail(&job, limit, e.to_string()),
+                Ok(Err(e)) if e.is_incomplete() => {
+                    retry_or_fail(&job, limit, without_path(&e.to_string(), &job.key.path))
+                }
                 Ok(Err(e)) => Next::Record(StoreOp::Failed {
                     key: job.key.clone(),
                     attempts: job.attempts + 1,
-                    reason: e.to_string(),
+                    reason: without_path(&e.to_string(), &job.key.path),
                 }),
                 Err(panic) => {
                     let what = panic
@@ -396,6 +405,15 @@ impl Worker {
             self.progress.finished.fetch_add(1, Ordering::Relaxed);
         }
     }
+}
+
+/// The row already names the file: drop a leading "<path>: " from a message.
+fn without_path(message: &str, path: &str) -> String {
+    message
+        .strip_prefix(path)
+        .and_then(|m| m.strip_prefix(": "))
+        .unwrap_or(message)
+        .to_string()
 }
 
 /// Outcomes for rows an earlier process left queued whose file is gone or changed.

@@ -1,0 +1,109 @@
+//! The `watch` command as a process: a small async runtime for signals, systemd
+//! readiness and the watchdog around the [`crate::watch`] service.
+//!
+//! The service itself (threads, queue, store) knows nothing of signals or
+//! systemd; this file decides when it stops and tells systemd how it is doing.
+
+use std::future::Future;
+
+use crate::settings::Settings;
+use crate::watch::{Service, WatchError, WatchOptions, WatchSummary};
+
+/// Completes on SIGINT (Ctrl-C) or SIGTERM (systemd's stop).
+///
+/// # Panics
+/// When the signal handlers cannot be installed (no runtime signal driver),
+/// which only happens outside a tokio runtime with signals enabled.
+pub async fn stop_signal() {
+    #[cfg(unix)]
+    {
+        use tokio::signal::unix::{signal, SignalKind};
+        // Installing a handler fails only without a signal driver, which the
+        // runtime built in `watch_until_signal` always has.
+        let mut term = signal(SignalKind::terminate()).expect("SIGTERM handler");
+        tokio::select! {
+            _ = tokio::signal::ctrl_c() => tracing::info!("interrupted (SIGINT)"),
+            _ = term.recv() => tracing::info!("terminated (SIGTERM)"),
+        }
+    }
+    #[cfg(not(unix))]
+    {
+        let _ = tokio::signal::ctrl_c().await;
+    }
+}
+
+/// Runs `watch` until SIGINT/SIGTERM: builds the runtime, starts the service,
+/// tells systemd it is ready, feeds the watchdog while the pipeline makes
+/// progress, and stops within the configured bound.
+///
+/// # Errors
+/// Start-up failures ([`WatchError`]).
+pub fn watch_until_signal(
+    settings: &Settings,
+    options: &WatchOptions,
+) -> Result<WatchSummary, WatchError> {
+    let runtime = tokio::runtime::Builder::new_current_thread()
+        .enable_all()
+        .build()
+        .map_err(|e| WatchError::Start(format!("async runtime: {e}")))?;
+    runtime.block_on(watch_with_systemd(settings, options, stop_signal()))
+}
+
+async fn watch_with_systemd(
+    settings: &Settings,
+    options: &WatchOptions,
+    shutdown: impl Future<Output = ()>,
+) -> Result<WatchSummary, WatchError> {
+    let service = Service::start(settings, options)?;
+    notify_systemd(&[sd_notify::NotifyState::Ready]);
+    let progress = service.progress();
+    let watchdog = async move {
+        // Without a watchdog configured, this arm never completes.
+        let Some(interval) = sd_notify::watchdog_enabled() else {
+            return std::future::pending::<()>().await;
+        };
+        let mut last_finished = u64::MAX;
+        loop {
+            tokio::time::sleep(interval / 2).await;
+            let finished = progress.finished.load(std::sync::atomic::Ordering::Relaxed);
+            // Fed only while the pipeline moves: idle (nothing outstanding) or
+            // at least one frame finished since the last feed. A stuck worker
+            // or writer starves it and systemd restarts the service.
+            if progress.outstanding() == 0 || finished != last_finished {
+                notify_systemd(&[sd_notify::NotifyState::Watchdog]);
+                last_finished = finished;
+            } else {
+                tracing::warn!(
+                    "no frame finished for {} ms with work outstanding",
+                    (interval / 2).as_millis()
+                );
+            }
+        }
+    };
+    tokio::select! {
+        () = shutdown => {}
+        () = watchdog => {}
+    }
+    notify_systemd(&[sd_notify::NotifyState::Stopping]);
+    tracing::info!("stopping: finishing frames in hand");
+    let summary = service.stop_within_bound().await;
+    tracing::info!(
+        "stopped: run {}, {} frames done, {} failed this session{}",
+        summary.run_id,
+        summary.done,
+        summary.failed,
+        if summary.clean {
+            ""
+        } else {
+            " (time bound hit)"
+        }
+    );
+    Ok(summary)
+}
+
+fn notify_systemd(states: &[sd_notify::NotifyState<'_>]) {
+    // Outside systemd NOTIFY_SOCKET is unset and this is a no-op.
+    if let Err(e) = sd_notify::notify(states) {
+        tracing::debug!("systemd notify failed: {e}");
+    }
+}

@@ -1,0 +1,278 @@
+//! `framewarden status`: a read-only look at the current (or last) run.
+//!
+//! Opens the database read-only in one short read transaction, so a running
+//! `watch` is never disturbed (WAL: readers do not block the writer). Opening and
+//! checking the file is [`crate::store`]'s; this file only queries and renders.
+
+use std::fmt::Write as _;
+use std::path::Path;
+
+use rusqlite::{params, Connection, OptionalExtension};
+use serde::Serialize;
+
+use crate::store::{self, now_ms, StoreError};
+
+/// Everything `status` shows; `--json` prints it as one document.
+#[derive(Debug, Clone, Serialize, PartialEq)]
+pub struct StatusReport {
+    pub database: String,
+    /// The current or last run; `None` before the first frame was ever seen.
+    pub run: Option<RunInfo>,
+    /// Files recorded in this run (any status).
+    pub frames_seen: u64,
+    pub frames_done: u64,
+    /// Complete files queued or being analysed.
+    pub frames_pending: u64,
+    pub frames_failed: u64,
+    pub objects_total: u64,
+    /// Done frames per minute between the first and the last analysis of the run.
+    pub frames_per_minute: Option<f64>,
+    /// When the last frame was recorded (UTC, RFC 3339).
+    pub last_frame_at: Option<String>,
+    pub last_frame_age_s: Option<f64>,
+    /// The most recent frames, newest first.
+    pub frames: Vec<RecentFrame>,
+    /// The most recent failures, newest first.
+    pub failures: Vec<RecentFrame>,
+}
+
+#[derive(Debug, Clone, Serialize, PartialEq)]
+pub struct RunInfo {
+    pub id: i64,
+    pub folders: Vec<String>,
+    pub started_at: String,
+    /// `None` while the run is being watched.
+    pub ended_at: Option<String>,
+}
+
+#[derive(Debug, Clone, Serialize, PartialEq)]
+pub struct RecentFrame {
+    pub file: String,
+    pub version: i64,
+    pub status: String,
+    pub object_count: Option<i64>,
+    pub threshold: Option<f64>,
+    pub error: Option<String>,
+    pub analysed_at: Option<String>,
+    pub latency_ms: Option<i64>,
+}
+
+/// SQL for an `*_at_ms` column as RFC 3339 UTC text.
+macro_rules! iso {
+    ($col:literal) => {
+        concat!(
+            "strftime('%Y-%m-%dT%H:%M:%fZ', ",
+            $col,
+            " / 1000.0, 'unixepoch')"
+        )
+    };
+}
+
+/// Reads the status of the current run, with up to `recent` recent frames.
+///
+/// # Errors
+/// [`StoreError`] for a missing, foreign or unreadable database.
+pub fn read(db: &Path, recent: usize) -> Result<StatusReport, StoreError> {
+    let mut conn = store::open_read_only(db)?;
+    let sqlite = |source| StoreError::Sqlite {
+        path: db.to_path_buf(),
+        source,
+    };
+    // One snapshot for every query, kept short so the WAL can be checkpointed.
+    let tx = conn.transaction().map_err(sqlite)?;
+    let report = query(&tx, db, recent).map_err(sqlite)?;
+    tx.finish().map_err(sqlite)?;
+    Ok(report)
+}
+
+fn query(conn: &Connection, db: &Path, recent: usize) -> rusqlite::Result<StatusReport> {
+    let mut report = StatusReport {
+        database: db.display().to_string(),
+        run: None,
+        frames_seen: 0,
+        frames_done: 0,
+        frames_pending: 0,
+        frames_failed: 0,
+        objects_total: 0,
+        frames_per_minute: None,
+        last_frame_at: None,
+        last_frame_age_s: None,
+        frames: Vec::new(),
+        failures: Vec::new(),
+    };
+    let run = conn
+        .query_row(
+            concat!(
+                "SELECT id, folders, ",
+                iso!("started_at_ms"),
+                ", ",
+                iso!("ended_at_ms"),
+                " FROM runs ORDER BY id DESC LIMIT 1"
+            ),
+            [],
+            |r| {
+                let folders: String = r.get(1)?;
+                Ok(RunInfo {
+                    id: r.get(0)?,
+                    folders: serde_json::from_str(&folders).unwrap_or_default(),
+                    started_at: r.get(2)?,
+                    ended_at: r.get(3)?,
+                })
+            },
+        )
+        .optional()?;
+    let Some(run) = run else { return Ok(report) };
+    let run_id = run.id;
+    report.run = Some(run);
+
+    let (seen, done, pending, failed, objects, first_ms, last_ms): (i64, i64, i64, i64, i64, Option<i64>, Option<i64>) =
+        conn.query_row(
+            "SELECT count(*), total(status = 'done'), total(status = 'queued'), total(status = 'failed'),
+                    total(CASE WHEN status = 'done' THEN object_count END),
+                    min(CASE WHEN status = 'done' THEN analysed_at_ms END), max(analysed_at_ms)
+             FROM frames WHERE run_id = ?1",
+            [run_id],
+            |r| {
+                let n = |i: usize| r.get::<_, f64>(i).map(|v| v as i64);
+                Ok((r.get(0)?, n(1)?, n(2)?, n(3)?, n(4)?, r.get(5)?, r.get(6)?))
+            },
+        )?;
+    report.frames_seen = seen as u64;
+    report.frames_done = done as u64;
+    report.frames_pending = pending as u64;
+    report.frames_failed = failed as u64;
+    report.objects_total = objects as u64;
+    if let Some(last) = last_ms {
+        report.last_frame_at =
+            conn.query_row(concat!("SELECT ", iso!("?1")), [last], |r| r.get(0))?;
+        report.last_frame_age_s = Some((now_ms() - last).max(0) as f64 / 1000.0);
+        if let Some(first) = first_ms.filter(|&f| last > f && done > 1) {
+            report.frames_per_minute = Some((done - 1) as f64 * 60_000.0 / (last - first) as f64);
+        }
+    }
+    let recent_sql = concat!(
+        "SELECT path, version, status, object_count, threshold, error, ",
+        iso!("analysed_at_ms"),
+        ", latency_ms FROM frames WHERE run_id = ?1 AND (?2 = 0 OR status = 'failed') ORDER BY id DESC LIMIT ?3"
+    );
+    let mut stmt = conn.prepare(recent_sql)?;
+    let mut recent_of = |failed_only: bool| -> rusqlite::Result<Vec<RecentFrame>> {
+        stmt.query_map(params![run_id, failed_only, recent as i64], |r| {
+            Ok(RecentFrame {
+                file: r.get(0)?,
+                version: r.get(1)?,
+                status: r.get(2)?,
+                object_count: r.get(3)?,
+                threshold: r.get(4)?,
+                error: r.get(5)?,
+                analysed_at: r.get(6)?,
+                latency_ms: r.get(7)?,
+            })
+        })?
+        .collect()
+    };
+    report.frames = recent_of(false)?;
+    report.failures = recent_of(true)?;
+    Ok(report)
+}
+
+/// The report as text for a terminal.
+pub fn render(report: &StatusReport) -> String {
+    let mut out = String::new();
+    let Some(run) = &report.run else {
+        let _ = writeln!(
+            out,
+            "{}: no run recorded yet (no frame seen)",
+            report.database
+        );
+        return out;
+    };
+    let state = run
+        .ended_at
+        .as_ref()
+        .map_or_else(|| "being watched".to_string(), |e| format!("ended {e}"));
+    let _ = writeln!(
+        out,
+        "run {} on {} (started {}, {state})",
+        run.id,
+        run.folders.join(", "),
+        run.started_at
+    );
+    let _ = writeln!(
+        out,
+        "frames: {} seen, {} done, {} pending, {} failed; {} objects",
+        report.frames_seen,
+        report.frames_done,
+        report.frames_pending,
+        report.frames_failed,
+        report.objects_total
+    );
+    if let Some(rate) = report.frames_per_minute {
+        let _ = writeln!(out, "rate: {rate:.1} frames/min");
+    }
+    if let (Some(at), Some(age)) = (&report.last_frame_at, report.last_frame_age_s) {
+        let _ = writeln!(out, "last frame: {at} ({} ago)", human_age(age));
+    }
+    if !report.frames.is_empty() {
+        let _ = writeln!(out, "\nrecent frames:");
+        let _ = writeln!(
+            out,
+            "  {:<8} {:>7} {:>10}  file",
+            "status", "objects", "threshold"
+        );
+        for f in &report.frames {
+            let count = f.object_count.map_or_else(|| "-".into(), |c| c.to_string());
+            let threshold = f
+                .threshold
+                .map_or_else(|| "-".into(), |t| format!("{t:.1}"));
+            let _ = writeln!(
+                out,
+                "  {:<8} {count:>7} {threshold:>10}  {}",
+                f.status, f.file
+            );
+        }
+    }
+    if !report.failures.is_empty() {
+        let _ = writeln!(out, "\nfailures:");
+        for f in &report.failures {
+            let _ = writeln!(
+                out,
+                "  {}: {}",
+                f.file,
+                f.error.as_deref().unwrap_or("(no reason recorded)")
+            );
+        }
+    }
+    out
+}
+
+fn human_age(seconds: f64) -> String {
+    match seconds {
+        s if s < 90.0 => format!("{s:.0} s"),
+        s if s < 5400.0 => format!("{:.0} min", s / 60.0),
+        s => format!("{:.1} h", s / 3600.0),
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn empty_database_has_no_run_and_says_so() {
+        let dir = tempfile::tempdir().unwrap();
+        let db = dir.path().join("fw.db");
+        drop(store::open_for_writing(&db).unwrap());
+        let report = read(&db, 5).unwrap();
+        assert_eq!(report.run, None);
+        assert_eq!(report.frames_seen, 0);
+        assert!(render(&report).contains("no run recorded yet"));
+    }
+
+    #[test]
+    fn ages_read_naturally() {
+        assert_eq!(human_age(12.0), "12 s");
+        assert_eq!(human_age(600.0), "10 min");
+        assert_eq!(human_age(7200.0), "2.0 h");
+    }
+}

@@ -1,0 +1,330 @@
+//! The watch service end to end: the real binary on temp folders with real TIFF
+//! files, real inotify events, and the real SQLite file read back.
+//!
+//! Each test states a promise of `framewarden watch` (exactly once, never early,
+//! nothing lost) and checks it on the rows; no test asserts a time.
+
+mod watch_support;
+
+use std::collections::HashMap;
+use std::io::Write;
+use std::process::Command;
+use std::time::Duration;
+
+use watch_support::{tiff_bytes, wait_for, Bench, BIN};
+
+const LONG: Duration = Duration::from_secs(120);
+
+/// Every path appears in exactly one row, and that row is done.
+fn assert_each_done_once(rows: &[watch_support::Row], expected: usize) {
+    let mut per_path: HashMap<&str, usize> = HashMap::new();
+    for r in rows {
+        *per_path.entry(r.path.as_str()).or_default() += 1;
+        assert_eq!(r.status, "done", "{r:?}");
+    }
+    assert_eq!(per_path.len(), expected, "distinct files");
+    assert!(
+        per_path.values().all(|&n| n == 1),
+        "a file recorded twice: {per_path:?}"
+    );
+}
+
+#[test]
+fn a_file_written_in_slow_chunks_is_analysed_once_and_complete() {
+    let mut bench = Bench::new("");
+    bench.start();
+    let (bytes, truth) = tiff_bytes(11, 192, 9);
+    let path = bench.acq.join("B02_t0001.tif");
+    let mut file = std::fs::File::create(&path).unwrap();
+    // Pauses both shorter and longer than the settle time: the long ones make
+    // the file look complete by size and mtime, so only the full decode (a short
+    // read means "not yet") keeps it from being analysed early.
+    let chunks: Vec<&[u8]> = bytes.chunks(bytes.len() / 6 + 1).collect();
+    for (i, chunk) in chunks.iter().enumerate() {
+        file.write_all(chunk).unwrap();
+        file.flush().unwrap();
+        std::thread::sleep(Duration::from_millis(if i % 2 == 0 { 120 } else { 450 }));
+    }
+    drop(file);
+    let rows = bench.wait_finished(1, LONG);
+    assert_each_done_once(&rows, 1);
+    assert_eq!(
+        rows[0].size_bytes as usize,
+        bytes.len(),
+        "analysed only when complete"
+    );
+    assert_eq!(rows[0].object_count, Some(truth as i64));
+    assert_eq!(rows[0].version, 1);
+}
+
+#[test]
+fn temporary_name_then_rename_gives_one_row_under_the_final_name() {
+    let mut bench = Bench::new("");
+    bench.start();
+    let (bytes, truth) = tiff_bytes(12, 128, 5);
+    for i in 0..5 {
+        let tmp = bench.acq.join(format!("C03_t{i:04}.tif.part"));
+        let mut file = std::fs::File::create(&tmp).unwrap();
+        for chunk in bytes.chunks(bytes.len() / 3 + 1) {
+            file.write_all(chunk).unwrap();
+            std::thread::sleep(Duration::from_millis(30));
+        }
+        drop(file);
+        std::fs::rename(&tmp, bench.acq.join(format!("C03_t{i:04}.tif"))).unwrap();
+    }
+    let rows = bench.wait_finished(5, LONG);
+    assert_each_done_once(&rows, 5);
+    assert!(
+        rows.iter().all(|r| r.path.ends_with(".tif")),
+        "temporary names are never recorded: {rows:?}"
+    );
+    assert!(rows.iter().all(|r| r.object_count == Some(truth as i64)));
+}
+
+#[test]
+fn a_burst_of_a_thousand_files_is_recorded_once_each() {
+    let mut bench = Bench::new("queue_capacity = 16");
+    bench.start();
+    let (bytes, _) = tiff_bytes(13, 32, 1);
+    for i in 0..1000 {
+        bench.write(&format!("D04_t{i:04}.tif"), &bytes);
+    }
+    let rows = bench.wait_finished(1000, LONG);
+    assert_each_done_once(&rows, 1000);
+}
+
+#[test]
+fn kill_nine_mid_run_then_restart_records_every_file_exactly_once() {
+    let mut bench = Bench::new("");
+    bench.start();
+    let (bytes, _) = tiff_bytes(14, 96, 4);
+    for i in 0..150 {
+        bench.write(&format!("E05_t{i:04}.tif"), &bytes);
+    }
+    // Kill while frames are in flight: some rows done, some maybe queued.
+    wait_for("some frames recorded", LONG, || {
+        bench.rows().iter().any(|r| r.status == "done")
+    });
+    bench.kill_hard();
+    // Files written while the service is down are found by the catch-up scan.
+    for i in 150..200 {
+        bench.write(&format!("E05_t{i:04}.tif"), &bytes);
+    }
+    bench.start();
+    let rows = bench.wait_finished(200, LONG);
+    assert_each_done_once(&rows, 200);
+    // The restart continued the same run.
+    let conn = rusqlite::Connection::open(&bench.db).unwrap();
+    let runs: i64 = conn
+        .query_row("SELECT count(*) FROM runs", [], |r| r.get(0))
+        .unwrap();
+    assert_eq!(runs, 1);
+}
+
+#[test]
+fn status_polled_while_watch_ingests_never_fails() {
+    let mut bench = Bench::new("");
+    bench.start();
+    let (bytes, _) = tiff_bytes(15, 64, 3);
+    let writer = {
+        let acq = bench.acq.clone();
+        std::thread::spawn(move || {
+            for i in 0..400 {
+                std::fs::write(acq.join(format!("F06_t{i:04}.tif")), &bytes).unwrap();
+                if i % 50 == 0 {
+                    std::thread::sleep(Duration::from_millis(100));
+                }
+            }
+        })
+    };
+    let mut polls = 0;
+    let mut done = 0;
+    while done < 400 {
+        let out = Command::new(BIN)
+            .args(["status", "--json", "--db"])
+            .arg(&bench.db)
+            .output()
+            .unwrap();
+        let stderr = String::from_utf8_lossy(&out.stderr);
+        assert!(out.status.success(), "status failed: {stderr}");
+        assert!(!stderr.contains("locked"), "{stderr}");
+        let doc: serde_json::Value = serde_json::from_slice(&out.stdout).unwrap();
+        for key in [
+            "frames_seen",
+            "frames_done",
+            "frames_pending",
+            "frames_failed",
+            "objects_total",
+            "last_frame_at",
+        ] {
+            assert!(doc.get(key).is_some(), "missing {key} in {doc}");
+        }
+        assert!(doc["frames"].is_array());
+        done = doc["frames_done"].as_u64().unwrap();
+        polls += 1;
+        assert!(
+            polls < 5000,
+            "ingest did not finish; logs:\n{}",
+            bench.logs()
+        );
+    }
+    writer.join().unwrap();
+    assert!(polls > 1, "status was polled while ingesting");
+    let doc: serde_json::Value = serde_json::from_slice(
+        &Command::new(BIN)
+            .args(["status", "--json", "--db"])
+            .arg(&bench.db)
+            .output()
+            .unwrap()
+            .stdout,
+    )
+    .unwrap();
+    assert_eq!(doc["frames_seen"], 400);
+    assert_eq!(doc["frames_pending"], 0);
+    let recent = &doc["frames"][0];
+    for key in ["file", "object_count", "threshold", "status", "error"] {
+        assert!(recent.get(key).is_some(), "missing {key} in {recent}");
+    }
+}
+
+#[test]
+fn sigterm_exits_zero_and_loses_nothing() {
+    let mut bench = Bench::new("");
+    bench.start();
+    let (bytes, _) = tiff_bytes(16, 128, 6);
+    for i in 0..120 {
+        bench.write(&format!("G07_t{i:04}.tif"), &bytes);
+    }
+    wait_for("some frames recorded", LONG, || {
+        bench.rows().iter().any(|r| r.status == "done")
+    });
+    bench.signal("TERM");
+    assert_eq!(
+        bench.wait_exit(Duration::from_secs(60)),
+        Some(0),
+        "logs:\n{}",
+        bench.logs()
+    );
+    // Whatever was in flight is either recorded or released (left queued):
+    // the next start finishes exactly those, nothing twice.
+    let after_stop = bench.rows();
+    assert!(
+        after_stop
+            .iter()
+            .all(|r| r.status == "done" || r.status == "queued"),
+        "{after_stop:?}"
+    );
+    bench.start();
+    let rows = bench.wait_finished(120, LONG);
+    assert_each_done_once(&rows, 120);
+    bench.signal("INT");
+    assert_eq!(bench.wait_exit(Duration::from_secs(60)), Some(0));
+}
+
+#[test]
+fn corrupt_and_truncated_files_get_error_rows_and_the_service_goes_on() {
+    let mut bench = Bench::new("retry_limit = 2");
+    bench.start();
+    let (bytes, truth) = tiff_bytes(17, 128, 7);
+    bench.write(
+        "H08_t0001_garbage.tif",
+        b"this is not an image, just bytes that say so",
+    );
+    bench.write("H08_t0002_truncated.tif", &bytes[..bytes.len() / 2]);
+    bench.write("H08_t0004_good.tif", &bytes);
+    let rows = bench.wait_finished(3, LONG);
+    let by_name = |needle: &str| {
+        rows.iter()
+            .find(|r| r.path.contains(needle))
+            .unwrap_or_else(|| panic!("{needle}: {rows:?}"))
+    };
+    for bad in ["garbage", "truncated"] {
+        let r = by_name(bad);
+        assert_eq!(r.status, "failed", "{r:?}");
+        assert!(r.error.as_deref().is_some_and(|e| !e.is_empty()), "{r:?}");
+    }
+    assert!(
+        by_name("truncated")
+            .error
+            .as_deref()
+            .unwrap()
+            .contains("incomplete"),
+        "{rows:?}"
+    );
+    assert!(
+        by_name("truncated").attempts > 1,
+        "a short read is retried before it is an error"
+    );
+    let good = by_name("good");
+    assert_eq!(
+        (good.status.as_str(), good.object_count),
+        ("done", Some(truth as i64))
+    );
+    // The failures are in `status` with their reasons.
+    let out = Command::new(BIN)
+        .args(["status", "--db"])
+        .arg(&bench.db)
+        .output()
+        .unwrap();
+    let text = String::from_utf8_lossy(&out.stdout);
+    assert!(
+        text.contains("failures:") && text.contains("garbage"),
+        "{text}"
+    );
+}
+
+#[test]
+fn a_rewritten_file_is_a_new_version_and_an_unchanged_one_is_never_redone() {
+    let mut bench = Bench::new("");
+    bench.start();
+    let (first, _) = tiff_bytes(18, 96, 3);
+    let (second, truth2) = tiff_bytes(19, 128, 5);
+    let path = bench.write("J09_t0001.tif", &first);
+    bench.wait_finished(1, LONG);
+    bench.signal("TERM");
+    assert_eq!(bench.wait_exit(Duration::from_secs(60)), Some(0));
+    // Unchanged across a restart: the catch-up scan skips it.
+    bench.start();
+    std::fs::write(&path, &second).unwrap();
+    let rows = bench.wait_finished(2, LONG);
+    assert_eq!(rows.len(), 2, "{rows:?}");
+    assert_eq!(
+        rows.iter().map(|r| r.version).collect::<Vec<_>>(),
+        vec![1, 2]
+    );
+    assert_eq!(rows[1].object_count, Some(truth2 as i64));
+}
+
+#[test]
+fn status_explains_a_missing_or_foreign_database() {
+    let dir = tempfile::tempdir().unwrap();
+    let missing = dir.path().join("nowhere.db");
+    let out = Command::new(BIN)
+        .args(["status", "--db"])
+        .arg(&missing)
+        .output()
+        .unwrap();
+    let stderr = String::from_utf8_lossy(&out.stderr);
+    assert!(!out.status.success());
+    assert!(
+        stderr.contains("no database at") && !stderr.contains("panicked"),
+        "{stderr}"
+    );
+
+    let foreign = dir.path().join("other.db");
+    rusqlite::Connection::open(&foreign)
+        .unwrap()
+        .execute_batch("CREATE TABLE t(x)")
+        .unwrap();
+    let out = Command::new(BIN)
+        .args(["status", "--json", "--db"])
+        .arg(&foreign)
+        .output()
+        .unwrap();
+    let stderr = String::from_utf8_lossy(&out.stderr);
+    assert!(!out.status.success());
+    assert!(
+        stderr.contains("not a framewarden database") && !stderr.contains("panicked"),
+        "{stderr}"
+    );
+}
