@@ -409,12 +409,12 @@ fn tiff_pixel_size<R: Read + Seek>(decoder: &mut Decoder<R>) -> Option<(f64, Pix
             }
         }
     }
-    let x_res = decoder
-        .find_tag(Tag::XResolution)
-        .ok()
-        .flatten()?
-        .into_f64()
-        .ok()?;
+    let x_res = match decoder.find_tag(Tag::XResolution).ok().flatten()? {
+        tiff::decoder::ifd::Value::Rational(n, d) if d != 0 => f64::from(n) / f64::from(d),
+        tiff::decoder::ifd::Value::Float(v) => f64::from(v),
+        tiff::decoder::ifd::Value::Double(v) => v,
+        _ => return None,
+    };
     // ResolutionUnit: 1 = none, 2 = inch (the TIFF 6.0 default), 3 = centimetre.
     let unit = decoder
         .find_tag_unsigned::<u16>(Tag::ResolutionUnit)

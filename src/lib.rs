@@ -5,6 +5,7 @@
 //! pipeline ([`pipeline`]) and the command line live at the edges.
 
 pub mod analysis;
+pub mod analyze;
 pub mod decode;
 pub mod frame;
 pub mod pipeline;

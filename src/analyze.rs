@@ -1,0 +1,162 @@
+//! The one-shot `analyze` command: files and folders in, a table or JSON lines
+//! out, one line per frame, in the order the paths were given.
+
+use std::collections::BTreeMap;
+use std::io::Write;
+use std::path::{Path, PathBuf};
+use std::sync::atomic::{AtomicUsize, Ordering};
+
+use serde::Serialize;
+
+use crate::analysis::FrameResult;
+use crate::pipeline::{analyze_file, FileAnalysis, FileError};
+use crate::settings::Settings;
+
+/// File name endings taken from folders (explicit file arguments are always tried).
+pub const IMAGE_EXTENSIONS: [&str; 3] = ["tif", "tiff", "png"];
+
+/// True when `path` ends in one of [`IMAGE_EXTENSIONS`] (any case).
+pub fn is_image_name(path: &Path) -> bool {
+    path.extension()
+        .and_then(|e| e.to_str())
+        .is_some_and(|e| IMAGE_EXTENSIONS.iter().any(|x| e.eq_ignore_ascii_case(x)))
+}
+
+/// Expands folders (recursively, sorted) into image files; files pass through.
+///
+/// # Errors
+/// A message naming a path that does not exist or a folder that cannot be read.
+pub fn expand_paths(paths: &[PathBuf]) -> Result<Vec<PathBuf>, String> {
+    let mut out = Vec::new();
+    for p in paths {
+        let meta = std::fs::metadata(p).map_err(|e| format!("{}: {e}", p.display()))?;
+        if meta.is_dir() {
+            collect_dir(p, &mut out)?;
+        } else {
+            out.push(p.clone());
+        }
+    }
+    Ok(out)
+}
+
+fn collect_dir(dir: &Path, out: &mut Vec<PathBuf>) -> Result<(), String> {
+    let mut entries: Vec<PathBuf> = std::fs::read_dir(dir)
+        .map_err(|e| format!("{}: {e}", dir.display()))?
+        .filter_map(|e| e.ok().map(|e| e.path()))
+        .collect();
+    entries.sort();
+    for p in entries {
+        if p.is_dir() {
+            collect_dir(&p, out)?;
+        } else if is_image_name(&p) {
+            out.push(p);
+        }
+    }
+    Ok(())
+}
+
+/// One JSON line: the file, its pixel-size source and every frame measure.
+#[derive(Serialize)]
+struct JsonLine<'a> {
+    file: String,
+    pixel_size_source: Option<&'static str>,
+    #[serde(flatten)]
+    result: &'a FrameResult,
+}
+
+#[derive(Serialize)]
+struct JsonError {
+    file: String,
+    error: String,
+}
+
+/// Analyses `files` with `workers` threads and writes one line per file to
+/// `out`, in input order. Returns the number of files that failed.
+///
+/// # Errors
+/// Only an error writing to `out`.
+pub fn run(files: &[PathBuf], settings: &Settings, json: bool, workers: usize, out: &mut dyn Write) -> std::io::Result<usize> {
+    let next = AtomicUsize::new(0);
+    let (tx, rx) = std::sync::mpsc::sync_channel::<(usize, Result<FileAnalysis, FileError>)>(workers * 2);
+    let mut failed = 0;
+    std::thread::scope(|scope| -> std::io::Result<()> {
+        for _ in 0..workers.max(1) {
+            let tx = tx.clone();
+            let next = &next;
+            scope.spawn(move || loop {
+                let i = next.fetch_add(1, Ordering::Relaxed);
+                let Some(path) = files.get(i) else { break };
+                if tx.send((i, analyze_file(path, settings))).is_err() {
+                    break;
+                }
+            });
+        }
+        drop(tx);
+        if !json {
+            writeln!(out, "{}", table_header())?;
+        }
+        let mut pending = BTreeMap::new();
+        let mut printed = 0;
+        for (i, result) in rx {
+            pending.insert(i, result);
+            while let Some(result) = pending.remove(&printed) {
+                let file = files[printed].display().to_string();
+                if result.is_err() {
+                    failed += 1;
+                }
+                let line = if json { json_line(file, &result) } else { table_line(&file, &result) };
+                writeln!(out, "{line}")?;
+                printed += 1;
+            }
+        }
+        Ok(())
+    })?;
+    Ok(failed)
+}
+
+fn json_line(file: String, result: &Result<FileAnalysis, FileError>) -> String {
+    // Serialising plain data with finite floats cannot fail.
+    match result {
+        Ok(a) => serde_json::to_string(&JsonLine {
+            file,
+            pixel_size_source: a.pixel_size_source.map(|s| s.as_str()),
+            result: &a.result,
+        }),
+        Err(e) => serde_json::to_string(&JsonError { file, error: e.to_string() }),
+    }
+    .unwrap_or_else(|e| format!("{{\"error\":\"cannot serialise result: {e}\"}}"))
+}
+
+fn table_header() -> String {
+    format!(
+        "{:<40} {:>7} {:>9} {:>6} {:>7} {:>10} {:>6} {:>10} {:>7}",
+        "file", "objects", "threshold", "eta", "fg %", "background", "sat %", "focus", "illum %"
+    )
+}
+
+fn table_line(file: &str, result: &Result<FileAnalysis, FileError>) -> String {
+    let name = if file.chars().count() > 40 {
+        let tail: String = file.chars().rev().take(39).collect::<Vec<_>>().into_iter().rev().collect();
+        format!("…{tail}")
+    } else {
+        file.to_string()
+    };
+    match result {
+        Ok(a) => {
+            let r = &a.result;
+            format!(
+                "{:<40} {:>7} {:>9} {:>6.3} {:>7.2} {:>10.1} {:>6.2} {:>10.1} {:>7.1}",
+                name,
+                r.object_count,
+                r.threshold,
+                r.separability,
+                100.0 * r.foreground_fraction,
+                r.background_level,
+                100.0 * r.saturation_fraction,
+                r.focus,
+                100.0 * r.illumination_change
+            )
+        }
+        Err(e) => format!("{name:<40} error: {e}"),
+    }
+}
