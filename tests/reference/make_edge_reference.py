@@ -1,21 +1,21 @@
 #!/usr/bin/env python3
-"""Outside references for the segmentation settings beyond the defaults.
+"""Outside references for the cases beyond the main reference set.
 
-Usage: python3 make_settings_reference.py OUTPUT_FOLDER
+Usage: python3 make_edge_reference.py OUTPUT_FOLDER
 
 `make_reference.py` checks the thresholds and the default chain (fill on, 8 or
-4 connected, no filters). This script covers the rest of `[segment]` and
-`[measure]`: hole filling off, both connectivities on masks made to stress them
-(holes that leak only diagonally, islands inside holes, diagonal-only contacts),
-the area limits, removal of objects touching the border, multi-Otsu with a
-chosen class boundary, and intensities measured on other pages inside the
-segmented page's objects.
+4 connected, no filters). This script adds two things, written as TIFF files
+(tifffile) and one JSON document, `edge_references.json`, that
+tests/reference_edges.rs checks framewarden against.
 
-Each case is a TIFF file written with tifffile, a `[segment]`/`[measure]` TOML
-fragment, and the objects SciPy and scikit-image find with those settings, in
-framewarden's field names. tests/reference_settings.rs parses the fragment with
-framewarden's own config parser, runs `analyze_frame`, and compares. The chain
-on this side, named again in each case's `source`:
+1. Settings cases: the rest of `[segment]` and `[measure]`. Hole filling off,
+   both connectivities on masks made to stress them (holes that leak only
+   diagonally, islands inside holes, diagonal-only contacts), the area limits,
+   removal of objects touching the border, multi-Otsu with a chosen class
+   boundary, and intensities measured on another page inside the segmented
+   page's objects. Each case carries a TOML fragment for framewarden's own
+   config parser and the objects SciPy and scikit-image find, in framewarden's
+   field names. The chain on this side, named again in each case's `source`:
 
   pixel > level                       (framewarden's threshold convention)
   scipy.ndimage.binary_fill_holes     (structure = background connectivity:
@@ -31,21 +31,48 @@ on this side, named again in each case's `source`:
   skimage.segmentation.relabel_sequential (1.. in raster order of first pixel)
   skimage.measure.regionprops         (via make_reference.objects_of;
                                        circularity = 4*pi*area/perimeter^2)
+
+2. Histogram cases: 16-bit images whose histograms are wide and dense (a
+   picture spread over all 65,536 levels) or wide and sparse (a few hundred or
+   a handful of occupied levels far apart). For each, the thresholds as
+   partitions (every level from the highest occupied level at or below a
+   threshold up to the next occupied level splits the pixels the same way):
+   - Otsu: the exact optimum of Otsu's criterion (Otsu 1979), found with
+     Python integers over every occupied level, ties to the lowest level;
+     skimage.filters.threshold_otsu beside it. skimage keeps its histogram in
+     float32, and on dense 16-bit pictures that can move its answer off the
+     optimum by a near-tie; the exact value is the reference, skimage's answer
+     and the size of its shortfall are recorded with it.
+   - triangle: skimage.filters.threshold_triangle; Li: skimage.filters
+     .threshold_li (both on the full integer histogram).
+   - multi-Otsu, three classes: make_reference.multi_otsu_3_exhaustive (numpy,
+     every pair of occupied levels), and skimage.filters.threshold_multiotsu
+     where its table fits.
 """
 
 import json
 import sys
+from fractions import Fraction
 from pathlib import Path
 
 import cv2
 import numpy as np
 import scipy.ndimage as ndi
 import skimage.data
-from skimage.filters import threshold_multiotsu
+from skimage.filters import threshold_li, threshold_multiotsu, threshold_otsu, threshold_triangle
 from skimage.measure import label, regionprops
 from skimage.segmentation import clear_border, relabel_sequential
 
-from make_reference import SEED, noisy, objects_of, paint, scene_masks, write_tiff
+from make_reference import (
+    MULTI_OTSU_MAX_RANGE,
+    SEED,
+    multi_otsu_3_exhaustive,
+    noisy,
+    objects_of,
+    paint,
+    scene_masks,
+    write_tiff,
+)
 
 SQUARE = np.ones((3, 3), bool)  # 8-connectivity
 CROSS = ndi.generate_binary_structure(2, 1)  # 4-connectivity
@@ -231,9 +258,132 @@ def case(file, pages, level, *, method=None, level_source=None, fill_holes=True,
     }
 
 
+# --------------------------------------------------------------------------
+# Wide 16-bit histograms
+# --------------------------------------------------------------------------
+
+
+def wide16_images(rng):
+    out = []
+    # Dense: a real picture spread over the whole 16-bit range, plus dither.
+    # With this dither (its own seed, kept fixed) skimage's float32 histogram
+    # puts its Otsu level a few levels below the exact optimum (the shortfall
+    # is recorded in the case).
+    cam = skimage.data.camera().astype(np.uint32)
+    dither = np.random.default_rng(6).integers(0, 257, cam.shape)
+    out.append(("camera16_dense", (cam * 257 + dither).astype(np.uint16)))
+    # Dense synthetic scene, objects at 20,000..50,000 on a noisy background.
+    h, w = 200, 240
+    img = noisy(rng, (h, w), 2000, 900, 0, 65535, np.uint16)
+    for i, mk in enumerate(scene_masks(h, w)):
+        paint(rng, img, mk, 20000 + 2500 * (i % 12), 900, 0, 65535)
+    out.append(("scene16_wide", img))
+    # Sparse: coins through a non-linear table onto 256 unevenly spread levels.
+    lut = np.rint(65535 * (np.arange(256) / 255.0) ** 1.7).astype(np.uint16)
+    out.append(("coins16_sparse_lut", lut[skimage.data.coins()]))
+    # Very sparse: six levels, two pairs of neighbours, one saturated.
+    levels = np.array([120, 121, 5000, 23000, 23007, 65535], np.uint16)
+    idx = rng.choice(levels.size, size=(64, 96), p=[0.35, 0.15, 0.1, 0.2, 0.1, 0.1])
+    out.append(("few_levels16", levels[ndi.median_filter(idx, 3)]))
+    # Two narrow clusters 39,000 levels apart: Otsu's criterion is flat across
+    # the gap, so the lowest level of the plateau is the answer.
+    gap = np.where(rng.random((100, 120)) < 0.3, 40000, 900).astype(np.uint16)
+    out.append(("gap16_two_clusters", gap + rng.integers(0, 30, gap.shape).astype(np.uint16)))
+    # Small bright objects on a dim background (< 2 % foreground).
+    h, w = 256, 256
+    img = noisy(rng, (h, w), 500, 40, 0, 65535, np.uint16)
+    yy, xx = np.mgrid[0:h, 0:w]
+    for _ in range(8):
+        cy, cx, r = rng.uniform(10, h - 10), rng.uniform(10, w - 10), rng.uniform(2, 5)
+        paint(rng, img, (yy - cy) ** 2 + (xx - cx) ** 2 <= r * r, 40000, 3000, 0, 65535)
+    out.append(("small16_objects", img))
+    return out
+
+
+def partition(values, t):
+    """[highest occupied level <= t, next occupied level) or null above."""
+    below = values[values <= t]
+    above = values[values > t]
+    return [int(below[-1]) if below.size else None, int(above[0]) if above.size else None]
+
+
+def otsu_exact(img):
+    """The occupied level t maximising Otsu's criterion exactly, its eta, and
+    the exact eta at any level (a function). With n0, n1 pixels and sums S0, S1
+    below/above t, sigma_B^2 is proportional to (n1*S0 - n0*S1)^2 / (n0*n1);
+    eta divides by N*Q - S^2 (Q = sum of squares). Candidates are screened in
+    float64 and decided with Python integers (fractions.Fraction)."""
+    values, counts = np.unique(img, return_counts=True)
+    v = values.astype(np.float64)
+    c = counts.astype(np.float64)
+    n0 = np.cumsum(c)[:-1]
+    s0 = np.cumsum(c * v)[:-1]
+    n, s = c.sum(), (c * v).sum()
+    approx = (n * s0 - n0 * s) ** 2 / (n0 * (n - n0))
+    candidates = np.flatnonzero(approx >= approx.max() * (1 - 1e-9))
+
+    cs = [int(x) for x in counts]
+    vs = [int(x) for x in values]
+    big_n = sum(cs)
+    big_s = sum(ci * vi for ci, vi in zip(cs, vs))
+    big_q = sum(ci * vi * vi for ci, vi in zip(cs, vs))
+
+    def eta(t):
+        n_lo = sum(ci for ci, vi in zip(cs, vs) if vi <= t)
+        s_lo = sum(ci * vi for ci, vi in zip(cs, vs) if vi <= t)
+        n_hi, s_hi = big_n - n_lo, big_s - s_lo
+        if n_lo == 0 or n_hi == 0 or big_n * big_q == big_s * big_s:
+            return Fraction(0)
+        return Fraction((n_hi * s_lo - n_lo * s_hi) ** 2, n_lo * n_hi * (big_n * big_q - big_s * big_s))
+
+    best = max(candidates, key=lambda i: (eta(vs[i]), -i))  # ties: lowest level
+    return vs[best], eta
+
+
+def histogram_case(file, img):
+    values = np.unique(img)
+    best, eta = otsu_exact(img)
+    t_sk = int(threshold_otsu(img))
+    shortfall = float(1 - eta(t_sk) / eta(best)) if eta(best) else 0.0
+    # skimage may miss the optimum only by float32 rounding, never by more.
+    assert shortfall < 1e-6, (file, t_sk, best, shortfall)
+    case = {
+        "file": file,
+        "distinct_levels": int(values.size),
+        "otsu": {
+            "partition": partition(values, best),
+            "separability": float(eta(best)),
+            "source": "Otsu 1979 criterion, exact (Python integers) over every occupied level",
+            "skimage_threshold_otsu": t_sk,
+            "skimage_same_partition": partition(values, t_sk) == partition(values, best),
+            "skimage_relative_shortfall": shortfall,
+        },
+        "triangle": {
+            "partition": partition(values, threshold_triangle(img)),
+            "source": "skimage.filters.threshold_triangle",
+        },
+        "li": {
+            "partition": partition(values, threshold_li(img)),
+            "value": float(threshold_li(img)),
+            "source": "skimage.filters.threshold_li",
+        },
+    }
+    pairs = multi_otsu_3_exhaustive(img)
+    if pairs is not None:
+        case["multi_otsu_3"] = {
+            "partitions": [[partition(values, t) for t in pair] for pair in pairs],
+            "source": "make_reference.multi_otsu_3_exhaustive (numpy, every pair of occupied levels)",
+        }
+        if int(img.max()) - int(img.min()) + 1 <= MULTI_OTSU_MAX_RANGE:
+            sk = [int(t) for t in threshold_multiotsu(img, classes=3)]
+            assert [partition(values, t) for t in sk] in case["multi_otsu_3"]["partitions"], (file, sk, pairs)
+            case["multi_otsu_3"]["source"] += "; agrees with skimage.filters.threshold_multiotsu"
+    return case
+
+
 def main():
     if len(sys.argv) != 2:
-        sys.exit("usage: make_settings_reference.py OUTPUT_FOLDER")
+        sys.exit("usage: make_edge_reference.py OUTPUT_FOLDER")
     out = Path(sys.argv[1])
     out.mkdir(parents=True, exist_ok=True)
     rng = np.random.default_rng(SEED + 1)
@@ -254,7 +404,8 @@ def main():
     # Area limits and border removal on a real picture at Otsu's level.
     coins = skimage.data.coins()
     file = write("coins.tif", [coins])
-    level, src = 107, "skimage.filters.threshold_otsu(coins) = 107"
+    level = int(threshold_otsu(coins))
+    src = f"skimage.filters.threshold_otsu(coins) = {level}"
     cases.append(case(file, [coins], level, level_source=src, exclude_border=True))
     cases.append(case(file, [coins], level, level_source=src, min_area=20, max_area=2000))
     cases.append(case(file, [coins], level, level_source=src, fill_holes=False, connectivity=4,
@@ -279,8 +430,16 @@ def main():
     cases.append(case(file, [seg, other], 12000, connectivity=4, fill_holes=False, exclude_border=True,
                       measure_pages=[(1, other)]))
 
-    doc = {"generator": "tests/reference/make_settings_reference.py", "cases": cases}
-    (out / "settings_references.json").write_text(json.dumps(doc, indent=1))
+    histogram_cases = []
+    for name, img in wide16_images(rng):
+        histogram_cases.append(histogram_case(write(f"{name}.tif", [img]), img))
+
+    doc = {
+        "generator": "tests/reference/make_edge_reference.py",
+        "settings_cases": cases,
+        "histogram_cases": histogram_cases,
+    }
+    (out / "edge_references.json").write_text(json.dumps(doc, indent=1))
 
 
 if __name__ == "__main__":
