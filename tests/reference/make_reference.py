@@ -35,10 +35,14 @@ from skimage.measure import label, regionprops
 
 SEED = 20240601
 
-# skimage's multi-Otsu builds a (levels x levels) lookup table; beyond this many
-# grey levels between the image's min and max it is too slow for a quick test,
-# so the reference is left out (recorded as null with the reason).
-MULTI_OTSU_MAX_LEVELS = 4096
+# skimage's multi-Otsu builds a (levels x levels) lookup table over the image's
+# min..max range (its histogram must have equally spaced bins, so the empty
+# levels cannot be dropped). Above this many levels it is too slow and large for
+# a quick test and the skimage reference is left out (null, with the reason).
+MULTI_OTSU_MAX_RANGE = 4096
+# Independent exhaustive search (numpy) over the occupied levels: used up to
+# this many distinct values, which covers the wide-range 16-bit images.
+EXHAUSTIVE_MAX_VALUES = 5000
 
 
 # --------------------------------------------------------------------------
@@ -318,10 +322,58 @@ def objects_of(labels, img):
     return out
 
 
+def multi_otsu_3(img, nbins):
+    """skimage.filters.threshold_multiotsu(classes=3), or None with the reason."""
+    if np.unique(img).size < 3:
+        return None, "fewer than 3 grey levels: skimage raises ValueError"
+    levels = int(img.max()) - int(img.min()) + 1
+    if levels > MULTI_OTSU_MAX_RANGE:
+        return None, f"{levels} levels from min to max: too many for skimage's lookup table here"
+    # Integer images: one bin per level from min to max (nbins is ignored).
+    return [int(x) for x in threshold_multiotsu(img, classes=3, nbins=nbins)], "skimage"
+
+
+def multi_otsu_3_exhaustive(img):
+    """All best cut pairs (t1, t2) for three classes (v <= t1 < v <= t2 < v).
+
+    Every pair of occupied levels is scored with numpy by Σ_k S_k²/N_k (the
+    between-class variance up to constants). A cut at an empty level scores as
+    the cut at the occupied level below it, so occupied levels are enough.
+    Returns every pair within 1e-12 relative of the best, in (t1, t2) order:
+    exact ties in real arithmetic (symmetric histograms) are broken by rounding,
+    differently by each implementation, so all tied pairs are right answers.
+    """
+    values, counts = np.unique(img, return_counts=True)
+    n = values.size
+    if n < 3 or n > EXHAUSTIVE_MAX_VALUES:
+        return None
+    cn = np.concatenate([[0.0], np.cumsum(counts, dtype=np.float64)])
+    cs = np.concatenate([[0.0], np.cumsum(counts * values.astype(np.float64))])
+
+    def score(a, b):  # a class made of occupied levels a..b (exclusive end)
+        return (cs[b] - cs[a]) ** 2 / (cn[b] - cn[a])
+
+    def rows():
+        for i in range(1, n - 1):  # class 1 = levels [0, i)
+            j = np.arange(i + 1, n)  # class 2 = [i, j), class 3 = [j, n)
+            yield i, j, score(0, i) + score(i, j) + score(j, n)
+
+    best = max(float(total.max()) for _, _, total in rows())
+    pairs = []
+    for i, j, total in rows():
+        for k in np.flatnonzero(total >= best * (1.0 - 1e-12)):
+            pairs.append([int(values[i - 1]), int(values[j[k] - 1])])
+    return pairs
+
+
 def references(img):
     bit_depth = 8 if img.dtype == np.uint8 else 16
     nbins = 256 if bit_depth == 8 else 65536
     ref = {"bit_depth": bit_depth, "height": int(img.shape[0]), "width": int(img.shape[1])}
+    # Decoder check: checksums of the pixels tifffile read back (raster order).
+    flat = img.astype(np.uint64).ravel()
+    ref["pixel_sum"] = int(flat.sum())
+    ref["pixel_weighted_sum"] = int((flat * np.arange(1, flat.size + 1, dtype=np.uint64)).sum())
 
     # skimage.filters.threshold_otsu: skimage histograms integer images at one
     # bin per integer level (nbins is ignored for integer dtypes), so the
@@ -340,18 +392,11 @@ def references(img):
         ref["otsu_opencv_note"] = "OpenCV's Otsu accepts 8-bit input only"
     ref["triangle"] = int(threshold_triangle(img, nbins=nbins))
     ref["li"] = float(threshold_li(img))
-    levels = int(img.max()) - int(img.min()) + 1
-    if len(np.unique(img)) < 3:
-        ref["multi_otsu_3"] = None
-        ref["multi_otsu_3_note"] = "fewer than 3 grey levels: skimage raises ValueError"
-    elif levels > MULTI_OTSU_MAX_LEVELS:
-        ref["multi_otsu_3"] = None
-        ref["multi_otsu_3_note"] = (
-            f"{levels} grey levels between min and max: skimage's lookup table "
-            f"is too slow above {MULTI_OTSU_MAX_LEVELS}"
-        )
-    else:
-        ref["multi_otsu_3"] = [int(x) for x in threshold_multiotsu(img, classes=3, nbins=nbins)]
+    ref["multi_otsu_3"], ref["multi_otsu_3_note"] = multi_otsu_3(img, nbins)
+    ref["multi_otsu_3_best_pairs"] = multi_otsu_3_exhaustive(img)
+    if ref["multi_otsu_3"] is not None:
+        # The two references must agree wherever both exist.
+        assert ref["multi_otsu_3"] in ref["multi_otsu_3_best_pairs"], ref
     ref["separability"] = separability_exact(img, t)
 
     # Segmentation at Otsu's threshold: foreground is strictly above t.
@@ -403,6 +448,10 @@ def main():
                     assert np.array_equal(page.asarray(), img)
         else:
             write_tiff(outdir / fname, pages, kwargs, byteorder)
+        # Reference values come from what tifffile reads back, not from memory.
+        with tifffile.TiffFile(outdir / fname) as tf:
+            # Native byte order, whatever the file's.
+            pages = [page.asarray().astype(page.dtype.newbyteorder("=")) for page in tf.pages]
         for p, img in enumerate(pages):
             entry = {"file": fname, "page": p, "origin": origin, "encoding": desc}
             entry.update(references(img))
