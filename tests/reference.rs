@@ -393,6 +393,14 @@ fn compare_segmentation(settings: &SegmentSettings, pick: fn(&SegmentationRef) -
                 result.threshold, seg.threshold
             ));
         }
+        // The frame's separability: exact rational at skimage's Otsu level.
+        let want_eta = case.reference.separability;
+        if (result.separability - want_eta).abs() > SEPARABILITY_REL_TOL * want_eta.abs() {
+            failures.push(format!(
+                "{name}: frame separability {}, exact {want_eta}",
+                result.separability
+            ));
+        }
         // Count: scipy.ndimage.binary_fill_holes + skimage.measure.label.
         if result.object_count != want.count || result.objects.len() != want.count {
             failures.push(format!(
