@@ -401,7 +401,8 @@ pub fn parse(text: &str, path: &Path) -> Result<Settings, ConfigError> {
     if l.max_pixels == 0 || l.max_decoded_mib == 0 || l.max_pages == 0 {
         return Err(invalid("limits.* must be positive".into()));
     }
-    let (watch, store) = crate::watch::config::validate(raw.watch, raw.store, base).map_err(invalid)?;
+    let (watch, store) =
+        crate::watch::config::validate(raw.watch, raw.store, base).map_err(invalid)?;
     Ok(Settings {
         segment: SegmentSettings {
             page: s.page,
@@ -515,5 +516,26 @@ exclude_border = true
             let err = parse(text, Path::new("c.toml")).unwrap_err().to_string();
             assert!(err.contains(needle), "{text}: {err}");
         }
+    }
+}
+
+#[cfg(test)]
+mod example_config {
+    /// The shipped example documents every key with its default: it must parse,
+    /// and parse to the same settings as an empty file.
+    #[test]
+    fn example_config_parses_to_the_defaults() {
+        let path = std::path::Path::new(env!("CARGO_MANIFEST_DIR")).join("config/framewarden.toml");
+        let example = super::load(&path).unwrap();
+        let empty = super::parse("", &path).unwrap();
+        assert_eq!(
+            format!("{:?}", example.segment),
+            format!("{:?}", empty.segment)
+        );
+        assert_eq!(
+            format!("{:?}", example.calibration),
+            format!("{:?}", empty.calibration)
+        );
+        assert_eq!(example.limits, empty.limits);
     }
 }
