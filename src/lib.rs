@@ -7,6 +7,7 @@
 pub mod analysis;
 pub mod analyze;
 pub mod decode;
+pub mod demo;
 pub mod frame;
 pub mod pipeline;
 pub mod service;

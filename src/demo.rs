@@ -1,0 +1,285 @@
+//! `framewarden demo`: replays an invented overnight acquisition into a temporary
+//! folder while the real watch service records it, then prints the status.
+//!
+//! The scenario (wells, time points, dimming lamp, the botched file) is data in
+//! `demo-data/plate-timelapse.toml`; frames come from [`crate::synth`]. Watching,
+//! analysis and storage are the ordinary service's: nothing is special-cased here.
+
+use std::io::Write;
+use std::path::{Path, PathBuf};
+use std::time::{Duration, Instant};
+
+use serde::Deserialize;
+
+use crate::settings::Settings;
+use crate::status::{self, StatusReport};
+use crate::synth::{self, SceneSpec};
+use crate::watch::{Service, WatchOptions};
+
+/// The built-in scenario.
+pub const DEFAULT_SCENARIO: &str = include_str!("../demo-data/plate-timelapse.toml");
+
+/// An invented acquisition to replay (see `demo-data/plate-timelapse.toml`).
+#[derive(Debug, Clone, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct Scenario {
+    pub wells: Vec<String>,
+    pub channel: String,
+    pub time_points: usize,
+    pub interval_ms: u64,
+    pub size_px: usize,
+    pub bit_depth: u8,
+    pub start_objects: usize,
+    pub growth_per_step: f64,
+    pub decline_from: usize,
+    pub lamp_end: f64,
+    pub gradient_end: f64,
+    pub chunks: usize,
+    pub chunk_pause_ms: u64,
+    pub temp_name_every: usize,
+    pub temp_suffix: String,
+    pub corrupt: Option<CorruptFile>,
+}
+
+#[derive(Debug, Clone, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct CorruptFile {
+    pub well: String,
+    pub time_point: usize,
+}
+
+#[derive(Debug, thiserror::Error)]
+pub enum DemoError {
+    #[error("scenario: {0}")]
+    Scenario(String),
+    #[error("demo folder {path}: {source}")]
+    Io {
+        path: PathBuf,
+        source: std::io::Error,
+    },
+    #[error(transparent)]
+    Watch(#[from] crate::watch::WatchError),
+    #[error(transparent)]
+    Store(#[from] crate::store::StoreError),
+}
+
+impl Scenario {
+    /// Parses a scenario description.
+    ///
+    /// # Errors
+    /// [`DemoError::Scenario`] for bad TOML or values.
+    pub fn parse(text: &str) -> Result<Scenario, DemoError> {
+        let s: Scenario = toml::from_str(text).map_err(|e| DemoError::Scenario(e.to_string()))?;
+        if s.wells.is_empty() || s.time_points == 0 || s.chunks == 0 {
+            return Err(DemoError::Scenario(
+                "wells, time_points and chunks must not be empty or 0".into(),
+            ));
+        }
+        Ok(s)
+    }
+
+    pub fn file_name(&self, well: &str, t: usize) -> String {
+        format!("{well}_t{t:04}_{}.tif", self.channel)
+    }
+
+    /// The synthetic scene of one well at one time point: cells multiply; late
+    /// in the run the lamp dims and a gradient grows.
+    pub fn scene(&self, well_index: usize, t: usize) -> SceneSpec {
+        let late = if t >= self.decline_from && self.time_points > self.decline_from + 1 {
+            (t - self.decline_from) as f64 / (self.time_points - 1 - self.decline_from) as f64
+        } else {
+            0.0
+        };
+        let objects =
+            (self.start_objects as f64 * self.growth_per_step.powi(t as i32)).round() as usize;
+        SceneSpec {
+            width: self.size_px,
+            height: self.size_px,
+            bit_depth: self.bit_depth,
+            object_count: objects,
+            radius_px: (4.0, 8.0),
+            lamp: 1.0 - late * (1.0 - self.lamp_end),
+            gradient: late * self.gradient_end,
+            gradient_angle_rad: 0.6,
+            seed: 1000 * well_index as u64 + t as u64 + 1,
+            ..SceneSpec::default()
+        }
+    }
+}
+
+/// Replays `scenario` into `workdir/acquisition` while the watch service records
+/// it into `workdir/framewarden.db`; returns the final status.
+///
+/// # Errors
+/// [`DemoError`] for folder, scenario or service start-up problems.
+pub fn run(
+    scenario: &Scenario,
+    workdir: &Path,
+    out: &mut dyn Write,
+) -> Result<StatusReport, DemoError> {
+    let io = |path: &Path| {
+        let path = path.to_path_buf();
+        move |source| DemoError::Io { path, source }
+    };
+    let acq = workdir.join("acquisition");
+    let staging = workdir.join("instrument-buffer");
+    std::fs::create_dir_all(&acq).map_err(io(&acq))?;
+    std::fs::create_dir_all(&staging).map_err(io(&staging))?;
+    let db = workdir.join("framewarden.db");
+    let config = format!(
+        "[watch]\nfolders = [\"{}\"]\nsettle_ms = 300\nretry_limit = 3\nretry_backoff_ms = 200\n\
+         name_pattern = '^(?P<well>[A-P]\\d{{2}})_t(?P<time_point>\\d+)_(?P<channel>[^.]+)\\.tif$'\n\
+         [store]\ndatabase = \"{}\"\n",
+        acq.display(),
+        db.display()
+    );
+    let settings: Settings = crate::settings::parse(&config, &workdir.join("demo.toml"))
+        .map_err(|e| DemoError::Scenario(format!("demo settings: {e}")))?;
+    let service = Service::start(&settings, &WatchOptions { new_run: true })?;
+    let _ = writeln!(
+        out,
+        "demo: replaying {} wells x {} time points into {}",
+        scenario.wells.len(),
+        scenario.time_points,
+        acq.display()
+    );
+    let started = Instant::now();
+    let mut written = 0usize;
+    for t in 0..scenario.time_points {
+        let step_start = Instant::now();
+        for (w, well) in scenario.wells.iter().enumerate() {
+            let name = scenario.file_name(well, t);
+            let scene = synth::generate(&scenario.scene(w, t))
+                .map_err(|e| DemoError::Scenario(e.to_string()))?;
+            let staged = staging.join(&name);
+            synth::write_tiff(&staged, &scene.frame).map_err(io(&staged))?;
+            let mut bytes = std::fs::read(&staged).map_err(io(&staged))?;
+            std::fs::remove_file(&staged).map_err(io(&staged))?;
+            if scenario
+                .corrupt
+                .as_ref()
+                .is_some_and(|c| c.well == *well && c.time_point == t)
+            {
+                bytes.truncate(bytes.len() / 2);
+            }
+            let through_temp =
+                scenario.temp_name_every > 0 && written % scenario.temp_name_every == 0;
+            write_like_an_instrument(scenario, &acq.join(&name), &bytes, through_temp)
+                .map_err(io(&acq))?;
+            written += 1;
+        }
+        let _ = writeln!(
+            out,
+            "  time point {t:>2}: {} frames written",
+            scenario.wells.len()
+        );
+        let interval = Duration::from_millis(scenario.interval_ms);
+        std::thread::sleep(interval.saturating_sub(step_start.elapsed()));
+    }
+    // Wait until every written file has its row (done or failed).
+    let deadline = Instant::now() + Duration::from_secs(120);
+    loop {
+        let report = status::read(&db, 0)?;
+        if report.frames_seen as usize >= written && report.frames_pending == 0
+            || Instant::now() > deadline
+        {
+            break;
+        }
+        std::thread::sleep(Duration::from_millis(200));
+    }
+    let summary = service.stop();
+    let _ = writeln!(
+        out,
+        "demo: {} frames recorded ({} done, {} failed) in {:.0} s\n",
+        summary.done + summary.failed,
+        summary.done,
+        summary.failed,
+        started.elapsed().as_secs_f64()
+    );
+    let report = status::read(&db, 8)?;
+    let _ = write!(out, "{}", status::render(&report));
+    let _ = writeln!(
+        out,
+        "\nobjects per well, first and last time point (one SQL query on {}):",
+        db.display()
+    );
+    for line in per_well(&db, scenario)? {
+        let _ = writeln!(out, "  {line}");
+    }
+    Ok(report)
+}
+
+/// Chunks with pauses, optionally under a temporary name renamed at the end.
+fn write_like_an_instrument(
+    s: &Scenario,
+    path: &Path,
+    bytes: &[u8],
+    through_temp: bool,
+) -> std::io::Result<()> {
+    let target = if through_temp {
+        let mut name = path.as_os_str().to_owned();
+        name.push(&s.temp_suffix);
+        PathBuf::from(name)
+    } else {
+        path.to_path_buf()
+    };
+    let mut file = std::fs::File::create(&target)?;
+    for chunk in bytes.chunks(bytes.len().div_ceil(s.chunks).max(1)) {
+        file.write_all(chunk)?;
+        file.flush()?;
+        std::thread::sleep(Duration::from_millis(s.chunk_pause_ms));
+    }
+    drop(file);
+    if through_temp {
+        std::fs::rename(&target, path)?;
+    }
+    Ok(())
+}
+
+fn per_well(db: &Path, s: &Scenario) -> Result<Vec<String>, DemoError> {
+    let conn = crate::store::open_read_only(db)?;
+    let sqlite = |source| crate::store::StoreError::Sqlite {
+        path: db.to_path_buf(),
+        source,
+    };
+    let mut stmt = conn
+        .prepare(
+            "SELECT well, time_point, object_count, status FROM frames
+             WHERE run_id = (SELECT max(id) FROM runs) AND (CAST(time_point AS INTEGER) IN (0, ?1))
+             ORDER BY well, time_point",
+        )
+        .map_err(sqlite)?;
+    let rows = stmt
+        .query_map([s.time_points as i64 - 1], |r| {
+            let well: Option<String> = r.get(0)?;
+            let t: Option<String> = r.get(1)?;
+            let count: Option<i64> = r.get(2)?;
+            let status: String = r.get(3)?;
+            Ok(format!(
+                "{} t{}: {}",
+                well.unwrap_or_default(),
+                t.unwrap_or_default(),
+                count.map_or(status, |c| format!("{c} objects"))
+            ))
+        })
+        .map_err(sqlite)?;
+    Ok(rows.collect::<Result<_, _>>().map_err(sqlite)?)
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn the_built_in_scenario_parses_and_declines_late() {
+        let s = Scenario::parse(DEFAULT_SCENARIO).unwrap();
+        let early = s.scene(0, 0);
+        let last = s.scene(0, s.time_points - 1);
+        assert_eq!((early.lamp, early.gradient), (1.0, 0.0));
+        assert!(
+            (last.lamp - s.lamp_end).abs() < 1e-9 && (last.gradient - s.gradient_end).abs() < 1e-9
+        );
+        assert!(last.object_count > early.object_count, "cells multiply");
+        assert_eq!(s.file_name("B03", 6), "B03_t0006_nuclei.tif");
+    }
+}
