@@ -101,7 +101,8 @@ impl Scenario {
             lamp: 1.0 - late * (1.0 - self.lamp_end),
             gradient: late * self.gradient_end,
             gradient_angle_rad: 0.6,
-            seed: 1000 * well_index as u64 + t as u64 + 1,
+            // One seed per well: the same cells all night, more of them as they divide.
+            seed: well_index as u64 + 1,
             ..SceneSpec::default()
         }
     }
