@@ -5,8 +5,10 @@
 //! targets and a per-stage breakdown of ours. Timings are reported, never
 //! asserted; see `benches/README.md`.
 
+use std::alloc::{GlobalAlloc, Layout, System};
 use std::path::{Path, PathBuf};
 use std::process::Command;
+use std::sync::atomic::{AtomicUsize, Ordering};
 use std::time::Instant;
 
 use framewarden::analysis::{label, measure, quality, threshold};
@@ -18,6 +20,55 @@ use framewarden::synth::{self, SceneSpec};
 /// Targets: our time at most 1/4 of OpenCV's and 1/25 of scikit-image's.
 const TARGET_VS_OPENCV: f64 = 4.0;
 const TARGET_VS_SKIMAGE: f64 = 25.0;
+
+/// The system allocator, counting live and peak heap bytes so the bench can
+/// report how many frame-sized buffers one analysis holds at once.
+struct CountingAlloc;
+
+static LIVE: AtomicUsize = AtomicUsize::new(0);
+static PEAK: AtomicUsize = AtomicUsize::new(0);
+
+// SAFETY: every call is forwarded unchanged to `System`; only counters are added.
+unsafe impl GlobalAlloc for CountingAlloc {
+    unsafe fn alloc(&self, layout: Layout) -> *mut u8 {
+        let p = System.alloc(layout);
+        if !p.is_null() {
+            let live = LIVE.fetch_add(layout.size(), Ordering::Relaxed) + layout.size();
+            PEAK.fetch_max(live, Ordering::Relaxed);
+        }
+        p
+    }
+
+    unsafe fn dealloc(&self, ptr: *mut u8, layout: Layout) {
+        System.dealloc(ptr, layout);
+        LIVE.fetch_sub(layout.size(), Ordering::Relaxed);
+    }
+
+    unsafe fn realloc(&self, ptr: *mut u8, layout: Layout, new_size: usize) -> *mut u8 {
+        let p = System.realloc(ptr, layout, new_size);
+        if !p.is_null() {
+            if new_size >= layout.size() {
+                let live = LIVE.fetch_add(new_size - layout.size(), Ordering::Relaxed) + new_size
+                    - layout.size();
+                PEAK.fetch_max(live, Ordering::Relaxed);
+            } else {
+                LIVE.fetch_sub(layout.size() - new_size, Ordering::Relaxed);
+            }
+        }
+        p
+    }
+}
+
+#[global_allocator]
+static ALLOC: CountingAlloc = CountingAlloc;
+
+/// Peak heap bytes allocated beyond what was live before, during `f`.
+fn peak_heap_during<T>(f: impl FnOnce() -> T) -> (T, usize) {
+    let before = LIVE.load(Ordering::Relaxed);
+    PEAK.store(before, Ordering::Relaxed);
+    let out = f();
+    (out, PEAK.load(Ordering::Relaxed) - before)
+}
 
 const USAGE: &str = "cargo bench --bench pipeline -- [--frames N] [--reps N] [--size PX] [--no-reference] [--keep DIR]";
 
@@ -274,6 +325,9 @@ fn main() {
     );
 
     let (ours_ms, ours) = time_ours(&files, opts.reps);
+    let settings = Settings::default();
+    let (_, peak) = peak_heap_during(|| analyze_file(&files[0], &settings));
+    let frame_bytes = (opts.size * opts.size * 2) as f64;
     let stages = time_stages(&files, opts.reps);
     let reference = if opts.reference {
         time_reference(&files, opts.reps)
@@ -300,6 +354,13 @@ fn main() {
             rows.push((name, reference_summaries(&v[key])));
         }
     }
+
+    println!(
+        "\npeak heap in one analyze_file: {:.1} MiB = {:.2} frame-sized buffers (16-bit, {:.1} MiB each)",
+        peak as f64 / 1048576.0,
+        peak as f64 / frame_bytes,
+        frame_bytes / 1048576.0
+    );
 
     println!(
         "\nour stages, median ms/frame (sum {:.1})",
