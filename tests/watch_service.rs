@@ -328,3 +328,34 @@ fn status_explains_a_missing_or_foreign_database() {
         "{stderr}"
     );
 }
+
+#[test]
+fn tells_systemd_it_is_ready_feeds_the_watchdog_and_says_stopping() {
+    use std::os::unix::net::UnixDatagram;
+    let mut bench = Bench::new("");
+    let socket_path = bench.dir.path().join("notify.sock");
+    let socket = UnixDatagram::bind(&socket_path).unwrap();
+    socket
+        .set_read_timeout(Some(Duration::from_secs(30)))
+        .unwrap();
+    bench.start_with_env(&[
+        ("NOTIFY_SOCKET", socket_path.to_str().unwrap()),
+        ("WATCHDOG_USEC", "200000"),
+    ]);
+    let mut seen = Vec::new();
+    let mut buf = [0u8; 512];
+    let mut receive_until = |needle: &str, seen: &mut Vec<String>| {
+        while !seen.iter().any(|m| m.contains(needle)) {
+            let n = socket
+                .recv(&mut buf)
+                .unwrap_or_else(|e| panic!("no {needle} from the service ({e}); got {seen:?}"));
+            seen.push(String::from_utf8_lossy(&buf[..n]).into_owned());
+        }
+    };
+    receive_until("READY=1", &mut seen);
+    // Idle (nothing outstanding) counts as healthy: the watchdog is fed.
+    receive_until("WATCHDOG=1", &mut seen);
+    bench.signal("TERM");
+    receive_until("STOPPING=1", &mut seen);
+    assert_eq!(bench.wait_exit(Duration::from_secs(60)), Some(0));
+}

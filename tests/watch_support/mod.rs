@@ -78,6 +78,11 @@ impl Bench {
 
     /// Starts `framewarden watch` with stderr logged to a file.
     pub fn start(&mut self) {
+        self.start_with_env(&[]);
+    }
+
+    /// [`Bench::start`] with extra environment variables.
+    pub fn start_with_env(&mut self, env: &[(&str, &str)]) {
         assert!(self.child.is_none(), "already running");
         self.starts += 1;
         let log = std::fs::File::create(self.dir.path().join(format!("watch-{}.log", self.starts)))
@@ -86,6 +91,7 @@ impl Bench {
             .args(["watch", "--config"])
             .arg(&self.config)
             .env("RUST_LOG", "info")
+            .envs(env.iter().copied())
             .stdout(Stdio::null())
             .stderr(log)
             .spawn()
