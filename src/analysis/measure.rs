@@ -3,7 +3,7 @@
 //! moment-based ellipse. Sums come from runs in closed form where possible, so
 //! only intensity and perimeter touch pixels.
 
-use crate::analysis::label::Components;
+use crate::analysis::label::{Components, Run};
 use crate::analysis::{ChannelIntensity, ObjectMeasures};
 use crate::frame::Frame;
 
@@ -108,31 +108,39 @@ pub fn measure(
         }
     }
     let kept_count = next as usize;
-    let mut labels = vec![0u32; w * h];
-    for (run, &k) in comps.runs.iter().zip(&comps.component) {
-        let l = final_label[k as usize];
-        if l != 0 {
-            let y = run.y as usize;
-            labels[y * w + run.x0 as usize..y * w + run.x1 as usize].fill(l);
-        }
+    // Runs grouped by component (counting sort), so each object is visited alone.
+    let mut first = vec![0usize; comps.count + 1];
+    for &k in &comps.component {
+        first[k as usize + 1] += 1;
+    }
+    for k in 0..comps.count {
+        first[k + 1] += first[k];
+    }
+    let mut fill = first.clone();
+    let mut order = vec![0u32; comps.runs.len()];
+    for (i, &k) in comps.component.iter().enumerate() {
+        order[fill[k as usize]] = i as u32;
+        fill[k as usize] += 1;
     }
     let mut perimeter = vec![0f64; kept_count + 1];
     let mut channel_sums = vec![vec![(0u64, 0u16); extra.len()]; kept_count + 1];
-    for run in &comps.runs {
-        let y = run.y as usize;
-        let l = labels[y * w + run.x0 as usize];
+    let mut mask = ObjectMask::default();
+    for (k, s) in sums.iter().enumerate() {
+        let l = final_label[k] as usize;
         if l == 0 {
             continue;
         }
-        let mut p = 0.0;
-        for x in run.x0 as usize..run.x1 as usize {
-            p += perimeter_weight(&labels, w, h, x, y, l);
-        }
-        perimeter[l as usize] += p;
-        for (slot, (_, page)) in channel_sums[l as usize].iter_mut().zip(extra) {
-            let row = &page.row(y)[run.x0 as usize..run.x1 as usize];
-            slot.0 += row.iter().map(|&v| u64::from(v)).sum::<u64>();
-            slot.1 = slot.1.max(row.iter().copied().max().unwrap_or(0));
+        let runs = order[first[k]..first[k + 1]]
+            .iter()
+            .map(|&i| comps.runs[i as usize]);
+        mask.reset(s.x_min, s.y_min, s.x_max, s.y_max, runs.clone());
+        perimeter[l] = mask.perimeter(runs.clone());
+        for run in runs {
+            for (slot, (_, page)) in channel_sums[l].iter_mut().zip(extra) {
+                let row = &page.row(run.y as usize)[run.x0 as usize..run.x1 as usize];
+                slot.0 += row.iter().map(|&v| u64::from(v)).sum::<u64>();
+                slot.1 = slot.1.max(row.iter().copied().max().unwrap_or(0));
+            }
         }
     }
     sums.iter()
@@ -198,41 +206,78 @@ fn ellipse(s: &Sums) -> (f64, f64, f64) {
     (4.0 * l1.sqrt(), 4.0 * l2.sqrt(), ecc)
 }
 
-/// Contribution of pixel (x, y) of object `l` to its perimeter, with the
-/// weights of `skimage.measure.perimeter` (4-neighbourhood): border pixels are
-/// object pixels with a 4-neighbour outside the object (the frame edge counts as
-/// outside); each border pixel is classified by which of its 8 neighbours are
-/// border pixels too (code = 1 + 2·edge neighbours + 10·corner neighbours) and
-/// weighted 1 (straight), √2 (diagonal) or (1+√2)/2 (corner).
-fn perimeter_weight(labels: &[u32], w: usize, h: usize, x: usize, y: usize, l: u32) -> f64 {
-    let inside = |x: isize, y: isize| {
-        x >= 0
-            && y >= 0
-            && (x as usize) < w
-            && (y as usize) < h
-            && labels[y as usize * w + x as usize] == l
-    };
-    let border = |x: isize, y: isize| {
-        inside(x, y)
-            && !(inside(x - 1, y) && inside(x + 1, y) && inside(x, y - 1) && inside(x, y + 1))
-    };
-    let (xi, yi) = (x as isize, y as isize);
-    if !border(xi, yi) {
-        return 0.0;
+/// One object's pixels in a zero-padded box around its bounding box, reused
+/// from object to object so no frame-sized label image is needed.
+#[derive(Default)]
+struct ObjectMask {
+    x0: usize,
+    y0: usize,
+    stride: usize,
+    cells: Vec<u8>,
+}
+
+/// Padding around the bounding box: neighbours of neighbours stay inside.
+const PAD: usize = 2;
+
+impl ObjectMask {
+    fn reset(
+        &mut self,
+        x_min: u32,
+        y_min: u32,
+        x_max: u32,
+        y_max: u32,
+        runs: impl Iterator<Item = Run>,
+    ) {
+        self.x0 = x_min as usize;
+        self.y0 = y_min as usize;
+        self.stride = (x_max - x_min) as usize + 2 * PAD;
+        let rows = (y_max - y_min) as usize + 2 * PAD;
+        self.cells.clear();
+        self.cells.resize(self.stride * rows, 0);
+        for r in runs {
+            let at = self.index(r.x0 as usize, r.y as usize);
+            self.cells[at..at + (r.x1 - r.x0) as usize].fill(1);
+        }
     }
-    let edges = [(-1, 0), (1, 0), (0, -1), (0, 1)]
-        .iter()
-        .filter(|&&(dx, dy)| border(xi + dx, yi + dy))
-        .count();
-    let corners = [(-1, -1), (1, -1), (-1, 1), (1, 1)]
-        .iter()
-        .filter(|&&(dx, dy)| border(xi + dx, yi + dy))
-        .count();
-    match 1 + 2 * edges + 10 * corners {
-        5 | 7 | 15 | 17 | 25 | 27 => 1.0,
-        21 | 33 => std::f64::consts::SQRT_2,
-        13 | 23 => (1.0 + std::f64::consts::SQRT_2) / 2.0,
-        _ => 0.0,
+
+    /// Cell index of frame pixel (x, y).
+    fn index(&self, x: usize, y: usize) -> usize {
+        (y - self.y0 + PAD) * self.stride + (x - self.x0 + PAD)
+    }
+
+    /// Object pixel with a 4-neighbour outside the object.
+    fn border(&self, i: usize) -> bool {
+        let c = &self.cells;
+        c[i] == 1 && (c[i - 1] & c[i + 1] & c[i - self.stride] & c[i + self.stride]) == 0
+    }
+
+    /// Perimeter with the weights of `skimage.measure.perimeter`
+    /// (4-neighbourhood): border pixels are object pixels with a 4-neighbour
+    /// outside the object (the frame edge counts as outside); each is classified
+    /// by which of its 8 neighbours are border pixels too (code = 1 + 2·edge
+    /// neighbours + 10·corner neighbours) and weighted 1 (straight), √2
+    /// (diagonal) or (1+√2)/2 (corner).
+    fn perimeter(&self, runs: impl Iterator<Item = Run>) -> f64 {
+        let s = self.stride;
+        let mut total = 0.0;
+        for r in runs {
+            let start = self.index(r.x0 as usize, r.y as usize);
+            for i in start..start + (r.x1 - r.x0) as usize {
+                if !self.border(i) {
+                    continue;
+                }
+                let b = |j: usize| usize::from(self.border(j));
+                let edges = b(i - 1) + b(i + 1) + b(i - s) + b(i + s);
+                let corners = b(i - s - 1) + b(i - s + 1) + b(i + s - 1) + b(i + s + 1);
+                total += match 1 + 2 * edges + 10 * corners {
+                    5 | 7 | 15 | 17 | 25 | 27 => 1.0,
+                    21 | 33 => std::f64::consts::SQRT_2,
+                    13 | 23 => (1.0 + std::f64::consts::SQRT_2) / 2.0,
+                    _ => 0.0,
+                };
+            }
+        }
+        total
     }
 }
 

@@ -34,32 +34,34 @@ pub fn assess(
     // corrected frame (otherwise the raw histogram below t is it).
     let mut bg_hist = segmented.map(|_| vec![0u64; raw.levels()]);
     let (mut lap_sum, mut lap_sq) = (0i128, 0u128);
+    // Column span of each block, so the inner loops run over contiguous slices.
+    let col_start: Vec<usize> = (0..=gx).map(|b| b * w / gx).collect();
     for y in 0..h {
         let row = raw.row(y);
         let seg_row = segmented.map_or(row, |s| s.row(y));
         let by = y * gy / h;
-        for x in 0..w {
-            if seg_row[x] <= t {
-                let b = by * gx + x * gx / w;
-                block_sum[b] += u64::from(row[x]);
-                block_n[b] += 1;
-                if let Some(hist) = bg_hist.as_mut() {
-                    hist[usize::from(row[x])] += 1;
+        for b in 0..gx {
+            let (x0, x1) = (col_start[b], col_start[b + 1]);
+            // Branch-free masked sums vectorise well.
+            let (mut sum, mut n) = (0u64, 0u64);
+            for (&v, &sv) in row[x0..x1].iter().zip(&seg_row[x0..x1]) {
+                let m = u64::from(sv <= t);
+                sum += u64::from(v) * m;
+                n += m;
+            }
+            block_sum[by * gx + b] += sum;
+            block_n[by * gx + b] += n;
+        }
+        if let Some(hist) = bg_hist.as_mut() {
+            for (&v, &sv) in row.iter().zip(seg_row) {
+                if sv <= t {
+                    hist[usize::from(v)] += 1;
                 }
             }
         }
         if y >= 1 && y + 1 < h && w >= 3 {
             let (up, down) = (raw.row(y - 1), raw.row(y + 1));
-            let (mut s, mut s2) = (0i64, 0u64);
-            for x in 1..w - 1 {
-                let lap = i64::from(up[x])
-                    + i64::from(down[x])
-                    + i64::from(row[x - 1])
-                    + i64::from(row[x + 1])
-                    - 4 * i64::from(row[x]);
-                s += lap;
-                s2 += (lap * lap) as u64;
-            }
+            let (s, s2) = laplacian_sums(up, row, down);
             lap_sum += i128::from(s);
             lap_sq += u128::from(s2);
         }
@@ -87,6 +89,22 @@ pub fn assess(
         focus,
         illumination_change,
     }
+}
+
+/// Sum and sum of squares of the 4-neighbour Laplacian over the interior of
+/// one row (`up` and `down` are the rows above and below).
+fn laplacian_sums(up: &[u16], row: &[u16], down: &[u16]) -> (i64, u64) {
+    let w = row.len();
+    let (mut s, mut s2) = (0i64, 0u64);
+    // |lap| <= 4 * 65535, so i32 holds it and its square fits u64.
+    for x in 1..w - 1 {
+        let lap =
+            i32::from(up[x]) + i32::from(down[x]) + i32::from(row[x - 1]) + i32::from(row[x + 1])
+                - 4 * i32::from(row[x]);
+        s += i64::from(lap);
+        s2 += (i64::from(lap) * i64::from(lap)) as u64;
+    }
+    (s, s2)
 }
 
 /// Fits `z = a + b·u + c·v + d·u² + e·v² + f·u·v` (u, v in [-1, 1] across the
