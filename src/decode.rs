@@ -389,7 +389,7 @@ fn float_to_u16(v: &[f32]) -> Vec<u16> {
             (lo.min(x), hi.max(x))
         });
     let span = f64::from(hi) - f64::from(lo);
-    if !(span > 0.0) {
+    if span.is_nan() || span <= 0.0 {
         return vec![0; v.len()];
     }
     let scale = 65535.0 / span;
@@ -576,36 +576,6 @@ fn read_png<R: Read + Seek + std::io::BufRead>(
     })
 }
 
-#[cfg(test)]
-mod tests {
-    use super::*;
-
-    #[test]
-    fn ome_pixel_size_in_micrometres_and_other_units() {
-        let xml = r#"<?xml version="1.0"?><OME xmlns="x"><Image ID="Image:0"><Pixels ID="Pixels:0" PhysicalSizeX="0.65" PhysicalSizeY="0.65" Type="uint16"/></Image></OME>"#;
-        assert_eq!(ome_pixel_size_um(xml), Some(0.65));
-        let nm = xml.replace(
-            "PhysicalSizeX=\"0.65\"",
-            "PhysicalSizeX=\"325\" PhysicalSizeXUnit=\"nm\"",
-        );
-        assert!((ome_pixel_size_um(&nm).unwrap() - 0.325).abs() < 1e-12);
-        assert_eq!(
-            ome_pixel_size_um("<Pixels PhysicalSizeX=\"1\"/>"),
-            None,
-            "not OME"
-        );
-    }
-
-    #[test]
-    fn float_mapping_spans_the_16_bit_range() {
-        assert_eq!(
-            float_to_u16(&[-1.0, 0.0, 1.0, f32::NAN]),
-            vec![0, 32768, 65535, 0]
-        );
-        assert_eq!(float_to_u16(&[2.0, 2.0]), vec![0, 0]);
-    }
-}
-
 /// Tiled LZW pages are decoded here rather than by the `tiff` crate, whose LZW
 /// reader rejects tiles that common writers end without an end-of-information
 /// code (an open upstream issue). Returns `None` for every other layout.
@@ -744,4 +714,34 @@ fn read_tiled_lzw<R: Read + Seek>(
     } else {
         DecodingResult::U16(out)
     }))
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn ome_pixel_size_in_micrometres_and_other_units() {
+        let xml = r#"<?xml version="1.0"?><OME xmlns="x"><Image ID="Image:0"><Pixels ID="Pixels:0" PhysicalSizeX="0.65" PhysicalSizeY="0.65" Type="uint16"/></Image></OME>"#;
+        assert_eq!(ome_pixel_size_um(xml), Some(0.65));
+        let nm = xml.replace(
+            "PhysicalSizeX=\"0.65\"",
+            "PhysicalSizeX=\"325\" PhysicalSizeXUnit=\"nm\"",
+        );
+        assert!((ome_pixel_size_um(&nm).unwrap() - 0.325).abs() < 1e-12);
+        assert_eq!(
+            ome_pixel_size_um("<Pixels PhysicalSizeX=\"1\"/>"),
+            None,
+            "not OME"
+        );
+    }
+
+    #[test]
+    fn float_mapping_spans_the_16_bit_range() {
+        assert_eq!(
+            float_to_u16(&[-1.0, 0.0, 1.0, f32::NAN]),
+            vec![0, 32768, 65535, 0]
+        );
+        assert_eq!(float_to_u16(&[2.0, 2.0]), vec![0, 0]);
+    }
 }

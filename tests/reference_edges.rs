@@ -297,7 +297,7 @@ fn segmentation_settings_match_scipy_skimage_and_opencv() {
 
 /// Whether `t` splits the pixels as the reference partition does.
 fn in_partition(t: f64, [lo, hi]: Partition) -> bool {
-    lo.map_or(true, |lo| t >= f64::from(lo)) && hi.map_or(true, |hi| t < f64::from(hi))
+    lo.is_none_or(|lo| t >= f64::from(lo)) && hi.is_none_or(|hi| t < f64::from(hi))
 }
 
 /// `[lo, hi)`, with `-` for an open end.

@@ -9,7 +9,7 @@ use crate::frame::Frame;
 /// conventions of `scipy.ndimage.gaussian_filter` (truncate = 4, mode "reflect").
 /// Results are rounded to the nearest level.
 pub fn gaussian(frame: &Frame, sigma_px: f64) -> Frame {
-    if !(sigma_px > 0.0) || frame.is_empty() {
+    if sigma_px.is_nan() || sigma_px <= 0.0 || frame.is_empty() {
         return frame.clone();
     }
     let radius = (4.0 * sigma_px + 0.5) as usize;
@@ -204,7 +204,7 @@ impl FlatField {
             .map(|(&f, &d)| f64::from(f) - f64::from(d))
             .collect();
         let mean = diff.iter().sum::<f64>() / diff.len().max(1) as f64;
-        if !(mean > 0.0) {
+        if mean.is_nan() || mean <= 0.0 {
             return Err("flat frame is not brighter than the dark frame".into());
         }
         let gain = diff

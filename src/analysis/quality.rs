@@ -187,8 +187,9 @@ fn solve(a: &mut [[f64; 6]; 6], b: &mut [f64; 6], n: usize) -> Option<[f64; 6]> 
         b.swap(col, pivot);
         for row in col + 1..n {
             let f = a[row][col] / a[col][col];
-            for k in col..n {
-                a[row][k] -= f * a[col][k];
+            let pivot_row = a[col];
+            for (x, p) in a[row][col..n].iter_mut().zip(&pivot_row[col..n]) {
+                *x -= f * p;
             }
             b[row] -= f * b[col];
         }

@@ -337,6 +337,7 @@ fn class_score(hist: &Histogram, lo: usize, hi: usize, levels: &[usize]) -> f64 
 
 /// Dynamic programme over bins `(count, sum)`: the `k` cut bins (class i ends
 /// at bin `cuts[i]`) maximising Σ S²/N; ties keep the lowest cuts.
+#[allow(clippy::needless_range_loop)] // indices run across several tables at once
 fn best_cuts(bins: &[(f64, f64)], k: usize) -> Vec<usize> {
     let m = bins.len();
     let mut cn = vec![0.0; m + 1];
