@@ -10,6 +10,7 @@ pub mod decode;
 pub mod demo;
 pub mod frame;
 pub mod pipeline;
+pub mod qc;
 pub mod service;
 pub mod settings;
 pub mod status;

@@ -138,6 +138,10 @@ pub struct Settings {
     pub watch: crate::watch::config::WatchSettings,
     /// `[store]`: the SQLite database.
     pub store: crate::watch::config::StoreSettings,
+    /// `[quality]`: frame flag limits, drift charts, run alerts.
+    pub quality: crate::qc::config::QualitySettings,
+    /// `[alerts]`: where alerts are sent.
+    pub alerts: crate::qc::config::AlertSettings,
 }
 
 impl Default for Settings {
@@ -151,6 +155,8 @@ impl Default for Settings {
             limits: DecodeLimits::default(),
             watch: crate::watch::config::WatchSettings::default(),
             store: crate::watch::config::StoreSettings::default(),
+            quality: crate::qc::config::QualitySettings::default(),
+            alerts: crate::qc::config::AlertSettings::default(),
         }
     }
 }
@@ -170,6 +176,10 @@ struct RawConfig {
     watch: crate::watch::config::RawWatch,
     #[serde(default)]
     store: crate::watch::config::RawStore,
+    #[serde(default)]
+    quality: crate::qc::config::RawQuality,
+    #[serde(default)]
+    alerts: crate::qc::config::RawAlerts,
 }
 
 #[derive(Debug, Deserialize)]
@@ -403,6 +413,8 @@ pub fn parse(text: &str, path: &Path) -> Result<Settings, ConfigError> {
     }
     let (watch, store) =
         crate::watch::config::validate(raw.watch, raw.store, base).map_err(invalid)?;
+    let (quality, alerts) =
+        crate::qc::config::validate(raw.quality, raw.alerts, base).map_err(invalid)?;
     Ok(Settings {
         segment: SegmentSettings {
             page: s.page,
@@ -429,6 +441,8 @@ pub fn parse(text: &str, path: &Path) -> Result<Settings, ConfigError> {
         },
         watch,
         store,
+        quality,
+        alerts,
     })
 }
 
@@ -537,5 +551,7 @@ mod example_config {
             format!("{:?}", empty.calibration)
         );
         assert_eq!(example.limits, empty.limits);
+        assert_eq!(example.quality, empty.quality);
+        assert_eq!(example.alerts, empty.alerts);
     }
 }

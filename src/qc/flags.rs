@@ -1,0 +1,395 @@
+//! Per-frame flags: pure judgements of one frame's measures against fixed
+//! limits and against what the run already knows about the frame's position.
+//!
+//! Every flag carries its evidence: the measured value, the limit it crossed and
+//! a plain sentence. Keeping the run's memory (baselines, recent counts) is
+//! [`crate::qc::monitor`]'s job; this file only judges.
+
+use serde::Serialize;
+
+use crate::analysis::FrameResult;
+use crate::qc::config::FlagLimits;
+
+/// The per-frame measures quality control looks at (a [`FrameResult`] without
+/// its objects, or a stored frame row).
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct FrameMetrics {
+    /// True when the threshold came from Otsu's criterion (otsu, multi-otsu).
+    pub otsu_based: bool,
+    pub threshold: f64,
+    pub separability: f64,
+    pub object_count: usize,
+    pub foreground_fraction: f64,
+    pub background_level: f64,
+    pub saturation_fraction: f64,
+    pub focus: f64,
+    pub illumination_change: f64,
+}
+
+impl FrameMetrics {
+    /// Whether a method name (as stored) is one of Otsu's.
+    pub fn is_otsu_method(method: &str) -> bool {
+        matches!(method, "otsu" | "multi-otsu")
+    }
+}
+
+impl From<&FrameResult> for FrameMetrics {
+    fn from(r: &FrameResult) -> Self {
+        FrameMetrics {
+            otsu_based: FrameMetrics::is_otsu_method(&r.method),
+            threshold: r.threshold,
+            separability: r.separability,
+            object_count: r.object_count,
+            foreground_fraction: r.foreground_fraction,
+            background_level: r.background_level,
+            saturation_fraction: r.saturation_fraction,
+            focus: r.focus,
+            illumination_change: r.illumination_change,
+        }
+    }
+}
+
+/// What can be wrong with one frame.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Hash, Serialize)]
+#[serde(rename_all = "snake_case")]
+pub enum FlagKind {
+    LowSeparability,
+    SmallForeground,
+    UnevenIllumination,
+    Saturated,
+    OutOfFocus,
+    EmptyFrame,
+    CountJump,
+    /// The file could not be decoded or analysed (the error row's reason).
+    Failed,
+}
+
+impl FlagKind {
+    pub fn as_str(self) -> &'static str {
+        match self {
+            FlagKind::LowSeparability => "low_separability",
+            FlagKind::SmallForeground => "small_foreground",
+            FlagKind::UnevenIllumination => "uneven_illumination",
+            FlagKind::Saturated => "saturated",
+            FlagKind::OutOfFocus => "out_of_focus",
+            FlagKind::EmptyFrame => "empty_frame",
+            FlagKind::CountJump => "count_jump",
+            FlagKind::Failed => "failed",
+        }
+    }
+}
+
+/// One flag with its evidence. `value` and `limit` are `None` only for a failure.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct FrameFlag {
+    pub kind: FlagKind,
+    pub value: Option<f64>,
+    pub limit: Option<f64>,
+    pub message: String,
+}
+
+/// What the run knows about the frame's position before this frame.
+#[derive(Debug, Clone, Copy, Default, PartialEq)]
+pub struct PositionContext {
+    /// Median focus of the position's baseline frames, once the baseline is complete.
+    pub baseline_focus: Option<f64>,
+    /// Median count of the position's baseline frames, once complete.
+    pub usual_count: Option<f64>,
+    /// Median count of the last `count_window` frames there, once that many exist.
+    pub recent_median_count: Option<f64>,
+}
+
+/// Judges one frame. A flag is raised only when a value is strictly beyond its
+/// limit, so a value exactly at the limit passes.
+pub fn frame_flags(m: &FrameMetrics, limits: &FlagLimits, ctx: &PositionContext) -> Vec<FrameFlag> {
+    let mut flags = Vec::new();
+    let mut flag = |kind, value: f64, limit: f64, message: String| {
+        flags.push(FrameFlag {
+            kind,
+            value: Some(value),
+            limit: Some(limit),
+            message,
+        });
+    };
+    if m.separability < limits.min_separability {
+        flag(
+            FlagKind::LowSeparability,
+            m.separability,
+            limits.min_separability,
+            format!(
+                "histogram not bimodal enough for a global threshold: Otsu separability {:.2} is below {:.2}",
+                m.separability, limits.min_separability
+            ),
+        );
+    }
+    if m.otsu_based && m.object_count > 0 && m.foreground_fraction < limits.min_foreground_fraction
+    {
+        flag(
+            FlagKind::SmallForeground,
+            m.foreground_fraction,
+            limits.min_foreground_fraction,
+            format!(
+                "objects cover only {:.2}% of the frame (limit {:.2}%): Otsu's threshold is unreliable for so small a class; consider method = \"triangle\" or \"li\"",
+                100.0 * m.foreground_fraction,
+                100.0 * limits.min_foreground_fraction
+            ),
+        );
+    }
+    if m.illumination_change > limits.max_illumination_change {
+        flag(
+            FlagKind::UnevenIllumination,
+            m.illumination_change,
+            limits.max_illumination_change,
+            format!(
+                "uneven illumination: the background changes by {:.0}% across the frame (limit {:.0}%)",
+                100.0 * m.illumination_change,
+                100.0 * limits.max_illumination_change
+            ),
+        );
+    }
+    if m.saturation_fraction > limits.max_saturation_fraction {
+        flag(
+            FlagKind::Saturated,
+            m.saturation_fraction,
+            limits.max_saturation_fraction,
+            format!(
+                "{:.2}% of the pixels are saturated (limit {:.2}%): intensities of bright objects are cut off",
+                100.0 * m.saturation_fraction,
+                100.0 * limits.max_saturation_fraction
+            ),
+        );
+    }
+    if let Some(base) = ctx.baseline_focus.filter(|&b| b > 0.0) {
+        let limit = base * limits.min_focus_ratio;
+        if m.focus < limit {
+            flag(
+                FlagKind::OutOfFocus,
+                m.focus,
+                limit,
+                format!(
+                    "out of focus: sharpness {} is {:.0}% of this position's baseline {} (limit {:.0}%)",
+                    num(m.focus),
+                    100.0 * m.focus / base,
+                    num(base),
+                    100.0 * limits.min_focus_ratio
+                ),
+            );
+        }
+    }
+    let usual = ctx
+        .usual_count
+        .filter(|&u| u >= limits.min_usual_count && u > 0.0);
+    if let (Some(usual), 0) = (usual, m.object_count) {
+        flag(
+            FlagKind::EmptyFrame,
+            0.0,
+            usual,
+            format!("empty frame: no objects where this position usually has {usual:.0}"),
+        );
+    }
+    if let Some(median) = ctx
+        .recent_median_count
+        .filter(|&c| c >= limits.min_usual_count && c > 0.0)
+    {
+        let jump = (m.object_count as f64 - median).abs() / median;
+        if m.object_count > 0 && jump > limits.max_count_jump {
+            flag(
+                FlagKind::CountJump,
+                jump,
+                limits.max_count_jump,
+                format!(
+                    "count jumped to {} against a median of {median:.0} over the last {} frames here ({:.0}% change, limit {:.0}%)",
+                    m.object_count,
+                    limits.count_window,
+                    100.0 * jump,
+                    100.0 * limits.max_count_jump
+                ),
+            );
+        }
+    }
+    flags
+}
+
+/// A number for a sentence: about four significant digits, no exponent for
+/// everyday magnitudes.
+pub fn num(x: f64) -> String {
+    let a = x.abs();
+    if a >= 1.0e6 || (a > 0.0 && a < 1.0e-3) {
+        format!("{x:.3e}")
+    } else if a >= 100.0 {
+        format!("{x:.0}")
+    } else if a >= 1.0 {
+        format!("{x:.2}")
+    } else {
+        format!("{x:.3}")
+    }
+}
+
+/// The flag of a frame that produced no result.
+pub fn failure_flag(reason: &str) -> FrameFlag {
+    FrameFlag {
+        kind: FlagKind::Failed,
+        value: None,
+        limit: None,
+        message: format!("not analysed: {reason}"),
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::qc::config::QualitySettings;
+
+    /// A frame that passes every check.
+    fn good() -> FrameMetrics {
+        FrameMetrics {
+            otsu_based: true,
+            threshold: 8000.0,
+            separability: 0.9,
+            object_count: 40,
+            foreground_fraction: 0.05,
+            background_level: 6500.0,
+            saturation_fraction: 0.0,
+            focus: 1.0e7,
+            illumination_change: 0.02,
+        }
+    }
+
+    fn context() -> PositionContext {
+        PositionContext {
+            baseline_focus: Some(1.0e7),
+            usual_count: Some(40.0),
+            recent_median_count: Some(40.0),
+        }
+    }
+
+    fn kinds(m: &FrameMetrics, ctx: &PositionContext) -> Vec<FlagKind> {
+        let limits = QualitySettings::default().flags;
+        frame_flags(m, &limits, ctx)
+            .iter()
+            .map(|f| f.kind)
+            .collect()
+    }
+
+    /// Each limit tested on both sides: a hair inside passes, a hair beyond
+    /// flags, with the value and the limit as evidence.
+    #[test]
+    fn every_limit_is_tested_on_both_sides() {
+        let l = QualitySettings::default().flags;
+        let ctx = context();
+        let eps = 1e-9;
+        type Set = fn(&mut FrameMetrics, f64);
+        let cases: [(FlagKind, f64, f64, Set); 5] = [
+            (
+                FlagKind::LowSeparability,
+                l.min_separability,
+                -eps,
+                |m, v| m.separability = v,
+            ),
+            (
+                FlagKind::SmallForeground,
+                l.min_foreground_fraction,
+                -eps,
+                |m, v| m.foreground_fraction = v,
+            ),
+            (
+                FlagKind::UnevenIllumination,
+                l.max_illumination_change,
+                eps,
+                |m, v| m.illumination_change = v,
+            ),
+            (
+                FlagKind::Saturated,
+                l.max_saturation_fraction,
+                eps,
+                |m, v| m.saturation_fraction = v,
+            ),
+            (
+                FlagKind::OutOfFocus,
+                1.0e7 * l.min_focus_ratio,
+                -1.0,
+                |m, v| m.focus = v,
+            ),
+        ];
+        for (kind, limit, beyond, set) in cases {
+            let mut at = good();
+            set(&mut at, limit);
+            assert_eq!(kinds(&at, &ctx), vec![], "{kind:?} at its limit");
+            let mut past = good();
+            set(&mut past, limit + beyond);
+            let flags = frame_flags(&past, &l, &ctx);
+            assert_eq!(flags.len(), 1, "{kind:?} beyond: {flags:?}");
+            assert_eq!(flags[0].kind, kind);
+            assert_eq!(flags[0].value, Some(limit + beyond));
+            assert!((flags[0].limit.unwrap() - limit).abs() < 1e-12);
+        }
+    }
+
+    #[test]
+    fn small_foreground_names_the_alternatives_and_only_for_otsu() {
+        let l = QualitySettings::default().flags;
+        let m = FrameMetrics {
+            foreground_fraction: 0.001,
+            ..good()
+        };
+        let flags = frame_flags(&m, &l, &context());
+        assert!(flags[0].message.contains("triangle") && flags[0].message.contains("li"));
+        let triangle = FrameMetrics {
+            otsu_based: false,
+            ..m
+        };
+        assert_eq!(kinds(&triangle, &context()), vec![]);
+    }
+
+    #[test]
+    fn empty_frame_needs_a_usual_count_of_at_least_the_limit() {
+        let l = QualitySettings::default().flags;
+        let empty = FrameMetrics {
+            object_count: 0,
+            foreground_fraction: 0.0,
+            ..good()
+        };
+        let with_usual = |u: f64| PositionContext {
+            usual_count: Some(u),
+            recent_median_count: None,
+            ..context()
+        };
+        assert_eq!(
+            kinds(&empty, &with_usual(l.min_usual_count)),
+            vec![FlagKind::EmptyFrame]
+        );
+        assert_eq!(kinds(&empty, &with_usual(l.min_usual_count - 0.5)), vec![]);
+        // No baseline yet: nothing to compare with.
+        assert_eq!(kinds(&empty, &PositionContext::default()), vec![]);
+    }
+
+    #[test]
+    fn count_jump_against_the_recent_median_on_both_sides() {
+        let l = QualitySettings::default().flags; // max_count_jump 0.5
+        let ctx = context(); // median 40
+        let at = FrameMetrics {
+            object_count: 60, // |60 - 40| / 40 = 0.5: at the limit
+            ..good()
+        };
+        assert_eq!(kinds(&at, &ctx), vec![]);
+        let up = FrameMetrics {
+            object_count: 61,
+            ..good()
+        };
+        let flags = frame_flags(&up, &l, &ctx);
+        assert_eq!(flags[0].kind, FlagKind::CountJump);
+        assert_eq!(flags[0].value, Some(21.0 / 40.0));
+        let down = FrameMetrics {
+            object_count: 19,
+            ..good()
+        };
+        assert_eq!(kinds(&down, &ctx), vec![FlagKind::CountJump]);
+    }
+
+    #[test]
+    fn failures_are_flags_without_numbers() {
+        let f = failure_flag("truncated TIFF strip");
+        assert_eq!((f.kind.as_str(), f.value, f.limit), ("failed", None, None));
+        assert!(f.message.contains("truncated"));
+    }
+}

@@ -1,0 +1,253 @@
+//! The run monitor: the memory of a run. It keeps, per position (well/site), the
+//! baseline of the first frames, the drift charts and the recent counts; it turns
+//! each frame into flags, and the run's state into alert episodes.
+//!
+//! Pure and clock-free: times come in with each call, so a synthetic night runs
+//! in-process in milliseconds. Storing and delivering are the caller's.
+
+use std::collections::{BTreeMap, VecDeque};
+
+use crate::qc::alerts::{AlertBook, AlertEvent};
+use crate::qc::config::QualitySettings;
+use crate::qc::drift::{median, Chart, Direction, Metric, Signal, Step};
+use crate::qc::flags::{failure_flag, frame_flags, num, FrameFlag, FrameMetrics, PositionContext};
+
+/// Condition of a stalled acquisition.
+pub const STALLED: &str = "stalled";
+/// Condition of too many failed frames.
+pub const FAILURE_RATE: &str = "failure_rate";
+
+/// The alert condition of a drift on `metric`.
+pub fn drift_condition(metric: Metric) -> String {
+    format!("drift:{}", metric.as_str())
+}
+
+/// What one frame produced: its flags and any alert events.
+#[derive(Debug, Clone, Default, PartialEq)]
+pub struct Verdict {
+    pub flags: Vec<FrameFlag>,
+    pub events: Vec<AlertEvent>,
+}
+
+#[derive(Debug, Clone, Default)]
+struct PositionState {
+    /// The first frames, until the baseline is complete.
+    baseline: Vec<FrameMetrics>,
+    /// One chart per [`Metric::ALL`] entry, once the baseline is complete.
+    charts: Vec<Chart>,
+    baseline_focus: Option<f64>,
+    usual_count: Option<f64>,
+    recent_counts: VecDeque<f64>,
+}
+
+/// The quality memory of one run.
+#[derive(Debug, Clone)]
+pub struct RunMonitor {
+    settings: QualitySettings,
+    positions: BTreeMap<String, PositionState>,
+    book: AlertBook,
+    last_frame_at_ms: Option<i64>,
+    /// Recent outcomes, `true` for a failure.
+    outcomes: VecDeque<bool>,
+}
+
+impl RunMonitor {
+    pub fn new(settings: QualitySettings) -> RunMonitor {
+        RunMonitor {
+            settings,
+            positions: BTreeMap::new(),
+            book: AlertBook::default(),
+            last_frame_at_ms: None,
+            outcomes: VecDeque::new(),
+        }
+    }
+
+    /// Judges one analysed frame at `position` (empty when the run has no
+    /// positions) and updates the run's charts.
+    pub fn observe(&mut self, position: &str, file: &str, at_ms: i64, m: &FrameMetrics) -> Verdict {
+        let limits = &self.settings.flags;
+        let params = &self.settings.charts;
+        let state = self.positions.entry(position.to_string()).or_default();
+        let ctx = PositionContext {
+            baseline_focus: state.baseline_focus,
+            usual_count: state.usual_count,
+            recent_median_count: (state.recent_counts.len() >= limits.count_window)
+                .then(|| median(state.recent_counts.make_contiguous()))
+                .flatten(),
+        };
+        let flags = frame_flags(m, limits, &ctx);
+        state.recent_counts.push_back(m.object_count as f64);
+        while state.recent_counts.len() > limits.count_window {
+            state.recent_counts.pop_front();
+        }
+        let mut changed: Vec<(Metric, Step)> = Vec::new();
+        if state.charts.is_empty() {
+            state.baseline.push(*m);
+            if state.baseline.len() >= params.baseline_frames {
+                let values = |metric: Metric| -> Vec<f64> {
+                    state.baseline.iter().map(|b| metric.value(b)).collect()
+                };
+                state.charts = Metric::ALL
+                    .iter()
+                    .map(|&metric| Chart::from_baseline(params, metric, &values(metric)))
+                    .collect();
+                state.baseline_focus = median(&values(Metric::Focus));
+                state.usual_count = median(&values(Metric::ObjectCount));
+                state.baseline.clear();
+            }
+        } else {
+            for (chart, metric) in state.charts.iter_mut().zip(Metric::ALL) {
+                let step = chart.update(metric.value(m));
+                if step.signal != Signal::Quiet {
+                    changed.push((metric, step));
+                }
+            }
+        }
+        let mut events = Vec::new();
+        for (metric, step) in changed {
+            let holds = self.in_drift(metric);
+            let chart = &self.positions[position].charts[metric_index(metric)];
+            let value = metric.value(m);
+            let event = self
+                .book
+                .set(&drift_condition(metric), holds, at_ms, Some(file), || {
+                    drift_message(metric, position, value, chart, &step)
+                });
+            events.extend(event);
+        }
+        self.last_frame_at_ms = Some(at_ms);
+        events.extend(self.book.set(STALLED, false, at_ms, Some(file), || {
+            format!("frames arrive again ({file})")
+        }));
+        events.extend(self.record_outcome(false, at_ms, file));
+        Verdict { flags, events }
+    }
+
+    /// Records a frame that produced no result: a failure flag, and the failure rate.
+    pub fn observe_failure(&mut self, file: &str, at_ms: i64, reason: &str) -> Verdict {
+        self.last_frame_at_ms = Some(at_ms);
+        let mut events: Vec<AlertEvent> = self
+            .book
+            .set(STALLED, false, at_ms, Some(file), || {
+                format!("frames arrive again ({file})")
+            })
+            .into_iter()
+            .collect();
+        events.extend(self.record_outcome(true, at_ms, file));
+        Verdict {
+            flags: vec![failure_flag(reason)],
+            events,
+        }
+    }
+
+    /// Checks for a stall: no frame for longer than `stall_after` since the last
+    /// one. Before the first frame the run is not active and nothing is raised.
+    pub fn check_stall(&mut self, now_ms: i64) -> Option<AlertEvent> {
+        let last = self.last_frame_at_ms?;
+        let limit_ms = i64::try_from(self.settings.stall_after.as_millis()).unwrap_or(i64::MAX);
+        let idle_ms = now_ms - last;
+        self.book.set(STALLED, idle_ms > limit_ms, now_ms, None, || {
+            format!(
+                "no new frame for {} (limit {}): the acquisition may have stopped, crashed or filled its disk",
+                minutes(idle_ms),
+                minutes(limit_ms)
+            )
+        })
+    }
+
+    /// Checks the free space of one volume (`name` says which, e.g. its path).
+    pub fn check_free_space(
+        &mut self,
+        name: &str,
+        free_bytes: u64,
+        now_ms: i64,
+    ) -> Option<AlertEvent> {
+        let limit = self.settings.min_free_space_bytes;
+        let condition = format!("low_disk_space:{name}");
+        self.book.set(&condition, free_bytes < limit, now_ms, None, || {
+            if free_bytes < limit {
+                format!(
+                    "only {} MiB free on {name} (limit {} MiB): new frames or results will soon fail to be written",
+                    free_bytes >> 20,
+                    limit >> 20
+                )
+            } else {
+                format!("{} MiB free again on {name}", free_bytes >> 20)
+            }
+        })
+    }
+
+    /// True when any position's chart of `metric` is in a declared drift.
+    fn in_drift(&self, metric: Metric) -> bool {
+        self.positions
+            .values()
+            .filter_map(|p| p.charts.get(metric_index(metric)))
+            .any(|c| c.drift().is_some())
+    }
+
+    fn record_outcome(&mut self, failed: bool, at_ms: i64, file: &str) -> Option<AlertEvent> {
+        let window = self.settings.failure_window;
+        self.outcomes.push_back(failed);
+        while self.outcomes.len() > window {
+            self.outcomes.pop_front();
+        }
+        let n = self.outcomes.len();
+        let failures = self.outcomes.iter().filter(|&&f| f).count();
+        let share = failures as f64 / n as f64;
+        let limit = self.settings.max_failure_fraction;
+        // A share of a handful of frames means little: judge from 10 outcomes on
+        // (or the whole window, if smaller).
+        let holds = n >= window.min(10) && share > limit;
+        self.book.set(FAILURE_RATE, holds, at_ms, Some(file), || {
+            format!(
+                "{failures} of the last {n} frames failed ({:.0}%, limit {:.0}%)",
+                100.0 * share,
+                100.0 * limit
+            )
+        })
+    }
+}
+
+fn metric_index(metric: Metric) -> usize {
+    Metric::ALL
+        .iter()
+        .position(|&m| m == metric)
+        .unwrap_or_else(|| unreachable!("every metric is in Metric::ALL"))
+}
+
+fn drift_message(metric: Metric, position: &str, value: f64, chart: &Chart, step: &Step) -> String {
+    let at = if position.is_empty() {
+        String::new()
+    } else {
+        format!(" at {position}")
+    };
+    match step.signal {
+        Signal::Declared(dir) => format!(
+            "{} drifting {}{at}: {} against a baseline of {} ± {} (EWMA {:+.2} σ, limit ±{:.2}; CUSUM up {:.1}, down {:.1}, limit {:.1})",
+            metric.describe(),
+            if dir == Direction::Up { "up" } else { "down" },
+            num(value),
+            num(chart.mean),
+            num(chart.sigma),
+            step.ewma,
+            step.ewma_limit,
+            step.cusum_up,
+            step.cusum_down,
+            chart.decision_interval(),
+        ),
+        _ => format!(
+            "{} back in control{at} and everywhere else: {} against a baseline of {}",
+            metric.describe(),
+            num(value),
+            num(chart.mean)
+        ),
+    }
+}
+
+fn minutes(ms: i64) -> String {
+    if ms < 120_000 {
+        format!("{} s", ms / 1000)
+    } else {
+        format!("{} min", ms / 60_000)
+    }
+}
