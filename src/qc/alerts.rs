@@ -16,6 +16,16 @@ pub enum AlertState {
     Recovered,
 }
 
+impl AlertState {
+    /// The same words as the JSON form.
+    pub fn as_str(self) -> &'static str {
+        match self {
+            AlertState::Opened => "opened",
+            AlertState::Recovered => "recovered",
+        }
+    }
+}
+
 /// One alert event, as stored, logged and sent to the sinks.
 #[derive(Debug, Clone, PartialEq, Serialize)]
 pub struct AlertEvent {

@@ -9,3 +9,4 @@ pub mod config;
 pub mod drift;
 pub mod flags;
 pub mod monitor;
+pub mod sinks;

@@ -1,0 +1,324 @@
+//! Alert sinks against real receivers: a tiny HTTP server on 127.0.0.1 (answering,
+//! erroring, slow, down), real child processes fed hostile file names, and a
+//! real append-only file. Only loopback traffic; every wait is bounded.
+
+use std::io::{BufRead, BufReader, Read, Write};
+use std::net::{TcpListener, TcpStream};
+use std::path::Path;
+use std::sync::mpsc;
+use std::time::Duration;
+
+use framewarden::qc::alerts::{AlertEvent, AlertState};
+use framewarden::qc::config::{AlertSettings, CommandSink, WebhookSink};
+use framewarden::qc::sinks::{post_once, AlertDispatcher};
+
+fn event(file: &str) -> AlertEvent {
+    AlertEvent {
+        condition: "drift:background_level".into(),
+        state: AlertState::Opened,
+        at_ms: 1_700_000_000_000,
+        file: Some(file.into()),
+        message: format!("background level drifting down at A01 ({file})"),
+    }
+}
+
+/// Names that would run something if they ever reached a shell.
+const HOSTILE: &str = "A01 t0001 \"q\" 'x'; touch PWNED; $(touch PWNED2) `touch PWNED3`.tif";
+
+/// A one-thread HTTP server on 127.0.0.1: for each connection, `answer(n)` gives
+/// the status to send (None: say nothing and hold the connection for `hold`).
+/// Every request body is reported on the returned channel.
+fn server(
+    connections: usize,
+    hold: Duration,
+    answer: impl Fn(usize) -> Option<u16> + Send + 'static,
+) -> (String, mpsc::Receiver<String>) {
+    let listener = TcpListener::bind("127.0.0.1:0").unwrap();
+    let url = format!("http://{}/hooks/night", listener.local_addr().unwrap());
+    let (body_tx, body_rx) = mpsc::channel();
+    std::thread::spawn(move || {
+        // One thread per connection, so a held connection does not stop the next.
+        for n in 0..connections {
+            let Ok((stream, _)) = listener.accept() else {
+                return;
+            };
+            let (status, body_tx) = (answer(n), body_tx.clone());
+            std::thread::spawn(move || handle(stream, status, hold, &body_tx));
+        }
+    });
+    (url, body_rx)
+}
+
+fn handle(
+    mut stream: TcpStream,
+    status: Option<u16>,
+    hold: Duration,
+    body_tx: &mpsc::Sender<String>,
+) {
+    stream
+        .set_read_timeout(Some(Duration::from_secs(5)))
+        .unwrap();
+    let mut reader = BufReader::new(stream.try_clone().unwrap());
+    let mut length = 0usize;
+    let mut first = String::new();
+    reader.read_line(&mut first).unwrap();
+    assert!(first.starts_with("POST /hooks/night HTTP/1.1"), "{first}");
+    loop {
+        let mut line = String::new();
+        if reader.read_line(&mut line).unwrap_or(0) == 0 || line == "\r\n" {
+            break;
+        }
+        if let Some(v) = line.to_ascii_lowercase().strip_prefix("content-length:") {
+            length = v.trim().parse().unwrap();
+        }
+    }
+    let mut body = vec![0u8; length];
+    reader.read_exact(&mut body).unwrap();
+    let _ = body_tx.send(String::from_utf8(body).unwrap());
+    match status {
+        Some(status) => {
+            let _ = write!(
+                stream,
+                "HTTP/1.1 {status} X\r\nContent-Length: 0\r\nConnection: close\r\n\r\n"
+            );
+        }
+        None => std::thread::sleep(hold),
+    }
+}
+
+fn webhook(url: &str, retries: u32) -> WebhookSink {
+    WebhookSink {
+        url: url.into(),
+        timeout: Duration::from_millis(300),
+        retries,
+        backoff: Duration::from_millis(20),
+    }
+}
+
+fn deliver_via_webhook(sink: WebhookSink, e: &AlertEvent) {
+    let d = AlertDispatcher::start(&AlertSettings {
+        webhook: Some(sink),
+        ..AlertSettings::default()
+    })
+    .unwrap();
+    d.send(e);
+    d.close();
+}
+
+#[test]
+fn webhook_posts_the_alert_as_json() {
+    let (url, bodies) = server(1, Duration::ZERO, |_| Some(204));
+    let e = event(HOSTILE);
+    post_once(
+        &url,
+        &serde_json::to_string(&e).unwrap(),
+        Duration::from_secs(2),
+    )
+    .unwrap();
+    let got: serde_json::Value =
+        serde_json::from_str(&bodies.recv_timeout(Duration::from_secs(5)).unwrap()).unwrap();
+    assert_eq!(got["condition"], "drift:background_level");
+    assert_eq!(got["state"], "opened");
+    assert_eq!(got["file"], HOSTILE);
+}
+
+#[test]
+fn an_erroring_webhook_is_retried_until_it_answers() {
+    // 500, 503, then 200: three attempts, the third succeeds.
+    let (url, bodies) = server(3, Duration::ZERO, |n| Some([500, 503, 200][n]));
+    deliver_via_webhook(webhook(&url, 3), &event("a.tif"));
+    let received: Vec<String> = bodies.try_iter().collect();
+    assert_eq!(received.len(), 3, "{received:?}");
+    assert!(
+        received.iter().all(|b| b == &received[0]),
+        "same body each time"
+    );
+}
+
+#[test]
+fn an_erroring_webhook_gives_up_after_its_retries() {
+    let (url, bodies) = server(10, Duration::ZERO, |_| Some(500));
+    deliver_via_webhook(webhook(&url, 2), &event("a.tif"));
+    assert_eq!(bodies.try_iter().count(), 3, "one attempt and two retries");
+    assert_eq!(
+        post_once(&url, "{}", Duration::from_secs(2)),
+        Err("HTTP status 500".into())
+    );
+}
+
+#[test]
+fn a_slow_webhook_times_out_and_is_retried() {
+    // The first connection gets no answer (held beyond the 300 ms timeout);
+    // the retry is answered.
+    let (url, bodies) = server(2, Duration::from_secs(2), |n| (n == 1).then_some(200));
+    deliver_via_webhook(webhook(&url, 1), &event("a.tif"));
+    assert_eq!(bodies.try_iter().count(), 2);
+}
+
+#[test]
+fn a_down_webhook_fails_cleanly() {
+    // A port that was just free: nobody listens there.
+    let port = TcpListener::bind("127.0.0.1:0")
+        .unwrap()
+        .local_addr()
+        .unwrap()
+        .port();
+    let url = format!("http://127.0.0.1:{port}/x");
+    let err = post_once(&url, "{}", Duration::from_millis(300)).unwrap_err();
+    assert!(err.starts_with("connect"), "{err}");
+    // The dispatcher logs and moves on: close() returns after the bounded retries.
+    deliver_via_webhook(webhook(&url, 1), &event("a.tif"));
+}
+
+#[test]
+fn sending_never_waits_for_a_stuck_webhook() {
+    // The server takes the first request and then holds the connection
+    // until the test says so. Sending more events must not wait for it:
+    // every send below returns while the server still holds the first one.
+    let listener = TcpListener::bind("127.0.0.1:0").unwrap();
+    let url = format!("http://{}/x", listener.local_addr().unwrap());
+    let (release_tx, release_rx) = mpsc::channel::<()>();
+    let (accepted_tx, accepted_rx) = mpsc::channel::<()>();
+    let server = std::thread::spawn(move || {
+        let (stream, _) = listener.accept().unwrap();
+        accepted_tx.send(()).unwrap();
+        let _ = release_rx.recv_timeout(Duration::from_secs(10));
+        drop(stream);
+        // Later connections (the other events) are accepted and dropped.
+        listener.set_nonblocking(true).unwrap();
+        while listener.accept().is_ok() {}
+    });
+    let d = AlertDispatcher::start(&AlertSettings {
+        webhook: Some(WebhookSink {
+            url,
+            timeout: Duration::from_secs(5),
+            retries: 0,
+            backoff: Duration::ZERO,
+        }),
+        ..AlertSettings::default()
+    })
+    .unwrap();
+    d.send(&event("first.tif"));
+    accepted_rx.recv_timeout(Duration::from_secs(5)).unwrap();
+    for i in 0..50 {
+        d.send(&event(&format!("more-{i}.tif")));
+    }
+    // Reaching this line proves the sends did not wait; the server is still held.
+    assert!(!server.is_finished());
+    release_tx.send(()).unwrap();
+    server.join().unwrap();
+    drop(d); // threads finish on their own; short timeouts bound them
+}
+
+/// A real program with a hostile name of its own, that writes its stdin and
+/// its environment to files, with no shell between framewarden and it.
+fn capture_script(dir: &Path) -> std::path::PathBuf {
+    let script = dir.join("page the lab; $(touch PWNED4).sh");
+    std::fs::write(
+        &script,
+        "#!/bin/sh\ncat > \"$1/stdin.json\"\nprintf '%s' \"$FRAMEWARDEN_ALERT_FILE\" > \"$1/file.txt\"\nprintf '%s' \"$FRAMEWARDEN_ALERT_STATE\" > \"$1/state.txt\"\n",
+    )
+    .unwrap();
+    #[cfg(unix)]
+    {
+        use std::os::unix::fs::PermissionsExt;
+        std::fs::set_permissions(&script, std::fs::Permissions::from_mode(0o755)).unwrap();
+    }
+    script
+}
+
+#[cfg(unix)]
+#[test]
+fn the_command_gets_hostile_names_verbatim_and_runs_nothing_else() {
+    let dir = tempfile::tempdir().unwrap();
+    let out = dir.path().join("out dir $(x)");
+    std::fs::create_dir(&out).unwrap();
+    let script = capture_script(dir.path());
+    let d = AlertDispatcher::start(&AlertSettings {
+        command: Some(CommandSink {
+            program: script.to_string_lossy().into_owned(),
+            args: vec![out.to_string_lossy().into_owned()],
+            timeout: Duration::from_secs(10),
+        }),
+        ..AlertSettings::default()
+    })
+    .unwrap();
+    let e = event(HOSTILE);
+    d.send(&e);
+    d.close();
+    let text = std::fs::read_to_string(out.join("stdin.json")).unwrap();
+    let stdin: serde_json::Value = serde_json::from_str(&text).unwrap();
+    assert_eq!(stdin["file"], HOSTILE);
+    assert_eq!(stdin["message"], e.message);
+    assert_eq!(stdin["at_ms"], e.at_ms);
+    assert_eq!(
+        std::fs::read_to_string(out.join("file.txt")).unwrap(),
+        HOSTILE
+    );
+    assert_eq!(
+        std::fs::read_to_string(out.join("state.txt")).unwrap(),
+        "opened"
+    );
+    for marker in ["PWNED", "PWNED2", "PWNED3", "PWNED4"] {
+        for place in [dir.path(), out.as_path(), Path::new(".")] {
+            assert!(
+                !place.join(marker).exists(),
+                "{marker} was created in {place:?}"
+            );
+        }
+    }
+}
+
+#[cfg(unix)]
+#[test]
+fn a_hanging_command_is_killed_at_its_timeout() {
+    let dir = tempfile::tempdir().unwrap();
+    let marker = dir.path().join("finished");
+    let d = AlertDispatcher::start(&AlertSettings {
+        command: Some(CommandSink {
+            program: "/bin/sh".into(),
+            args: vec![
+                "-c".into(),
+                "sleep 30; touch \"$0\"".into(),
+                marker.to_string_lossy().into_owned(),
+            ],
+            timeout: Duration::from_secs(1),
+        }),
+        ..AlertSettings::default()
+    })
+    .unwrap();
+    d.send(&event("a.tif"));
+    d.close(); // returns once the child is killed
+    assert!(!marker.exists());
+}
+
+#[test]
+fn the_file_sink_appends_one_json_line_per_event() {
+    let dir = tempfile::tempdir().unwrap();
+    let path = dir.path().join("alerts.jsonl");
+    std::fs::write(&path, "{\"earlier\":true}\n").unwrap();
+    let d = AlertDispatcher::start(&AlertSettings {
+        file: Some(path.clone()),
+        ..AlertSettings::default()
+    })
+    .unwrap();
+    let opened = event(HOSTILE);
+    let recovered = AlertEvent {
+        state: AlertState::Recovered,
+        message: "back in control".into(),
+        ..opened.clone()
+    };
+    d.send(&opened);
+    d.send(&recovered);
+    d.close();
+    let text = std::fs::read_to_string(&path).unwrap();
+    let lines: Vec<serde_json::Value> = text
+        .lines()
+        .map(|l| serde_json::from_str(l).unwrap())
+        .collect();
+    assert_eq!(lines.len(), 3, "{text}");
+    assert_eq!(lines[0]["earlier"], true, "earlier content kept");
+    assert_eq!(lines[1]["state"], "opened");
+    assert_eq!(lines[1]["file"], HOSTILE);
+    assert_eq!(lines[2]["state"], "recovered");
+}
