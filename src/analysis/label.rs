@@ -9,6 +9,8 @@
 //! complementary connectivity). Components are numbered in raster order of their
 //! first pixel. Measurements are left to [`crate::analysis::measure`].
 
+use crate::analysis::simd::multiversion;
+
 /// A horizontal run `[x0, x1)` on row `y`.
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
 pub struct Run {
@@ -99,9 +101,7 @@ pub fn label(
         while x < width {
             let fg = row[x] > threshold;
             let x0 = x;
-            while x < width && (row[x] > threshold) == fg {
-                x += 1;
-            }
+            x = run_end(row, x, threshold, fg);
             if fg || fill_holes {
                 let id = runs.len() as u32;
                 runs.push(Run {
@@ -190,6 +190,32 @@ pub fn label(
         out.component.push(number[root]);
     }
     out
+}
+
+multiversion! {
+    /// First index at or after `from` whose state (`> threshold`) differs from
+    /// `fg`, or `row.len()`. Whole blocks of one state are skipped with a
+    /// vectorised min/max, which is most of a sparse frame.
+    fn run_end(row: &[u16], from: usize, threshold: u16, fg: bool) -> usize {
+        const BLOCK: usize = 32;
+        let mut x = from;
+        while x + BLOCK <= row.len() {
+            let block = &row[x..x + BLOCK];
+            let uniform = if fg {
+                block.iter().fold(u16::MAX, |m, &v| m.min(v)) > threshold
+            } else {
+                block.iter().fold(0, |m, &v| m.max(v)) <= threshold
+            };
+            if !uniform {
+                break;
+            }
+            x += BLOCK;
+        }
+        while x < row.len() && (row[x] > threshold) == fg {
+            x += 1;
+        }
+        x
+    }
 }
 
 #[cfg(test)]

@@ -8,6 +8,7 @@ pub mod correct;
 pub mod label;
 pub mod measure;
 pub mod quality;
+mod simd;
 pub mod threshold;
 
 use serde::Serialize;

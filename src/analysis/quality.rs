@@ -2,6 +2,7 @@
 //! fitted illumination field. Turning them into flags is left to the quality
 //! control of the run.
 
+use crate::analysis::simd::multiversion;
 use crate::analysis::threshold::Histogram;
 use crate::frame::Frame;
 
@@ -42,13 +43,7 @@ pub fn assess(
         let by = y * gy / h;
         for b in 0..gx {
             let (x0, x1) = (col_start[b], col_start[b + 1]);
-            // Branch-free masked sums vectorise well.
-            let (mut sum, mut n) = (0u64, 0u64);
-            for (&v, &sv) in row[x0..x1].iter().zip(&seg_row[x0..x1]) {
-                let m = u64::from(sv <= t);
-                sum += u64::from(v) * m;
-                n += m;
-            }
+            let (sum, n) = masked_sum(&row[x0..x1], &seg_row[x0..x1], t);
             block_sum[by * gx + b] += sum;
             block_n[by * gx + b] += n;
         }
@@ -91,20 +86,41 @@ pub fn assess(
     }
 }
 
-/// Sum and sum of squares of the 4-neighbour Laplacian over the interior of
-/// one row (`up` and `down` are the rows above and below).
-fn laplacian_sums(up: &[u16], row: &[u16], down: &[u16]) -> (i64, u64) {
-    let w = row.len();
-    let (mut s, mut s2) = (0i64, 0u64);
-    // |lap| <= 4 * 65535, so i32 holds it and its square fits u64.
-    for x in 1..w - 1 {
-        let lap =
-            i32::from(up[x]) + i32::from(down[x]) + i32::from(row[x - 1]) + i32::from(row[x + 1])
-                - 4 * i32::from(row[x]);
-        s += i64::from(lap);
-        s2 += (i64::from(lap) * i64::from(lap)) as u64;
+multiversion! {
+    /// Sum and count of `values` where `seg <= t` (the background's share of a block row).
+    fn masked_sum(values: &[u16], seg: &[u16], t: u16) -> (u64, u64) {
+        let (mut sum, mut n) = (0u64, 0u64);
+        // 4096 samples of at most 65535 fit a u32 sum; narrow lanes vectorise better.
+        for (cv, cs) in values.chunks(4096).zip(seg.chunks(4096)) {
+            let (mut s32, mut n32) = (0u32, 0u32);
+            for (&v, &sv) in cv.iter().zip(cs) {
+                let m = u32::from(sv <= t);
+                s32 += u32::from(v) & 0u32.wrapping_sub(m);
+                n32 += m;
+            }
+            sum += u64::from(s32);
+            n += u64::from(n32);
+        }
+        (sum, n)
     }
-    (s, s2)
+}
+
+multiversion! {
+    /// Sum and sum of squares of the 4-neighbour Laplacian over the interior of
+    /// one row (`up` and `down` are the rows above and below).
+    fn laplacian_sums(up: &[u16], row: &[u16], down: &[u16]) -> (i64, u64) {
+        let w = row.len();
+        let (mut s, mut s2) = (0i64, 0u64);
+        // |lap| <= 4 * 65535, so i32 holds it and its square fits u64.
+        for x in 1..w - 1 {
+            let lap = i32::from(up[x]) + i32::from(down[x]) + i32::from(row[x - 1])
+                + i32::from(row[x + 1])
+                - 4 * i32::from(row[x]);
+            s += i64::from(lap);
+            s2 += (i64::from(lap) * i64::from(lap)) as u64;
+        }
+        (s, s2)
+    }
 }
 
 /// Fits `z = a + b·u + c·v + d·u² + e·v² + f·u·v` (u, v in [-1, 1] across the
