@@ -4,12 +4,12 @@
 //! readiness and fills a bounded queue; a pool of workers runs the same pure
 //! pipeline as `analyze`; one writer thread records results ([`crate::store`]).
 //! Signals, systemd readiness and the watchdog are the caller's
-//! ([`crate::service`]): [`run`] stops when the future it is given completes.
+//! ([`crate::service`], [`crate::demo`]): a [`Service`] runs until its owner
+//! calls [`Service::stop`].
 
 pub mod config;
 mod scheduler;
 
-use std::future::Future;
 use std::panic::{catch_unwind, AssertUnwindSafe};
 use std::path::PathBuf;
 use std::sync::atomic::{AtomicBool, AtomicU64, Ordering};
@@ -280,21 +280,6 @@ impl Service {
             }
         }
     }
-}
-
-/// Runs the service until `shutdown` completes, then stops it within the bound.
-///
-/// # Errors
-/// Start-up failures ([`WatchError`]); once running, failures are per file rows.
-pub async fn run(
-    settings: &Settings,
-    options: &WatchOptions,
-    shutdown: impl Future<Output = ()>,
-) -> Result<WatchSummary, WatchError> {
-    let service = Service::start(settings, options)?;
-    shutdown.await;
-    tracing::info!("stopping: finishing frames in hand");
-    Ok(service.stop_within_bound().await)
 }
 
 /// A file that a worker read short (or saw change) and that should be looked at again.
