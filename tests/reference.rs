@@ -9,8 +9,9 @@
 //! are required: a missing one fails the test, it never skips.
 
 use std::path::{Path, PathBuf};
-use std::process::Command;
 use std::sync::OnceLock;
+
+mod common;
 
 use framewarden::analysis::threshold::{li, multi_otsu, otsu, separability, triangle, Histogram};
 use framewarden::analysis::{analyze_frame, FrameResult};
@@ -135,23 +136,7 @@ fn fixture() -> &'static Fixture {
 }
 
 fn run_generator(out: &Path) {
-    let root = PathBuf::from(env!("CARGO_MANIFEST_DIR"));
-    let script = root.join("tests/reference/make_reference.py");
-    let hint = "the reference test needs python3 with the packages pinned in \
-                tests/reference/requirements.txt (python3 -m pip install -r \
-                tests/reference/requirements.txt)";
-    let output = Command::new("python3")
-        .arg(&script)
-        .arg(out)
-        .output()
-        .unwrap_or_else(|e| panic!("cannot run python3 ({e}): {hint}"));
-    assert!(
-        output.status.success(),
-        "{} failed ({}):\n{}\n{hint}",
-        script.display(),
-        output.status,
-        String::from_utf8_lossy(&output.stderr)
-    );
+    common::run_reference_script("make_reference.py", out);
 }
 
 /// The frames that decoded; decoding failures are reported by their own test.

@@ -15,8 +15,9 @@
 //! a missing one fails these tests, it never skips them.
 
 use std::path::{Path, PathBuf};
-use std::process::Command;
 use std::sync::OnceLock;
+
+mod common;
 
 use framewarden::analysis::{analyze_frame, FrameResult};
 use framewarden::decode::{read_page, DecodeLimits};
@@ -151,23 +152,7 @@ fn fixture() -> &'static Fixture {
 }
 
 fn run_generator(out: &Path) -> Document {
-    let script =
-        PathBuf::from(env!("CARGO_MANIFEST_DIR")).join("tests/reference/make_edge_reference.py");
-    let hint = "the reference test needs python3 with the packages pinned in \
-                tests/reference/requirements.txt (python3 -m pip install -r \
-                tests/reference/requirements.txt)";
-    let output = Command::new("python3")
-        .arg(&script)
-        .arg(out)
-        .output()
-        .unwrap_or_else(|e| panic!("cannot run python3 ({e}): {hint}"));
-    assert!(
-        output.status.success(),
-        "{} failed ({}):\n{}\n{hint}",
-        script.display(),
-        output.status,
-        String::from_utf8_lossy(&output.stderr)
-    );
+    common::run_reference_script("make_edge_reference.py", out);
     let json = out.join("edge_references.json");
     let text =
         std::fs::read_to_string(&json).unwrap_or_else(|e| panic!("read {}: {e}", json.display()));

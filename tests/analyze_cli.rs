@@ -1,0 +1,171 @@
+//! The `analyze` command as a user runs it: the real binary on real files.
+//! JSON lines carry the documented fields, a bad file gives an error line and
+//! exit code 1 while the others still run, and usage/config errors exit 2.
+
+use std::path::Path;
+use std::process::Command;
+
+use framewarden::synth::{generate, write_tiff, SceneSpec};
+
+fn binary() -> Command {
+    Command::new(env!("CARGO_BIN_EXE_framewarden"))
+}
+
+fn scene(dir: &Path, name: &str, objects: usize, seed: u64) -> std::path::PathBuf {
+    let spec = SceneSpec {
+        width: 160,
+        height: 120,
+        object_count: objects,
+        seed,
+        ..SceneSpec::default()
+    };
+    let scene = generate(&spec).expect("scene fits");
+    let path = dir.join(name);
+    write_tiff(&path, &scene.frame).unwrap();
+    path
+}
+
+#[test]
+fn json_lines_have_the_documented_fields_and_errors_do_not_stop_the_run() {
+    let dir = tempfile::tempdir().unwrap();
+    let sub = dir.path().join("plate");
+    std::fs::create_dir(&sub).unwrap();
+    scene(&sub, "a_01.tif", 7, 1);
+    scene(&sub, "b_02.tif", 3, 2);
+    std::fs::write(sub.join("c_03.tif"), b"II*\0not really").unwrap();
+    std::fs::write(sub.join("notes.txt"), b"ignored: not an image name").unwrap();
+    let out = binary()
+        .args(["analyze", "--json"])
+        .arg(&sub)
+        .output()
+        .unwrap();
+    assert_eq!(
+        out.status.code(),
+        Some(1),
+        "one file failed: {}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    let lines: Vec<serde_json::Value> = String::from_utf8(out.stdout)
+        .unwrap()
+        .lines()
+        .map(|l| serde_json::from_str(l).unwrap())
+        .collect();
+    assert_eq!(lines.len(), 3, "one line per image file, in sorted order");
+    for key in [
+        "file",
+        "width",
+        "height",
+        "bit_depth",
+        "threshold",
+        "separability",
+        "object_count",
+        "foreground_fraction",
+        "background_level",
+        "saturation_fraction",
+        "focus",
+        "illumination_change",
+        "objects",
+    ] {
+        assert!(lines[0].get(key).is_some(), "missing {key}");
+    }
+    for key in [
+        "label",
+        "area_px",
+        "centroid_x",
+        "centroid_y",
+        "bbox",
+        "mean_intensity",
+        "integrated_intensity",
+        "max_intensity",
+        "perimeter_px",
+        "circularity",
+        "major_axis_px",
+        "minor_axis_px",
+        "eccentricity",
+    ] {
+        assert!(
+            lines[0]["objects"][0].get(key).is_some(),
+            "missing object field {key}"
+        );
+    }
+    // Ground truth from the generator: 7 and 3 objects.
+    assert_eq!(lines[0]["object_count"], 7);
+    assert_eq!(lines[1]["object_count"], 3);
+    assert!(lines[2]["file"].as_str().unwrap().ends_with("c_03.tif"));
+    assert!(
+        lines[2]["error"].as_str().unwrap().contains("c_03.tif"),
+        "{}",
+        lines[2]
+    );
+}
+
+#[test]
+fn table_output_and_success_exit_code() {
+    let dir = tempfile::tempdir().unwrap();
+    let f = scene(dir.path(), "one.tif", 4, 3);
+    let out = binary().arg("analyze").arg(&f).output().unwrap();
+    assert!(out.status.success());
+    let text = String::from_utf8(out.stdout).unwrap();
+    assert!(text.starts_with("file"), "{text}");
+    assert!(text.lines().nth(1).unwrap().contains("one.tif"), "{text}");
+}
+
+#[test]
+fn usage_and_config_errors_exit_2() {
+    let dir = tempfile::tempdir().unwrap();
+    let f = scene(dir.path(), "one.tif", 2, 4);
+    assert_eq!(
+        binary().arg("analyze").output().unwrap().status.code(),
+        Some(2),
+        "no paths"
+    );
+    assert_eq!(
+        binary()
+            .args(["analyze", "/no/such/path"])
+            .output()
+            .unwrap()
+            .status
+            .code(),
+        Some(2)
+    );
+    let conf = dir.path().join("bad.toml");
+    std::fs::write(&conf, "[segment]\nmethod = \"otsu\"\ncolour = 3\n").unwrap();
+    let out = binary()
+        .arg("analyze")
+        .arg("--config")
+        .arg(&conf)
+        .arg(&f)
+        .output()
+        .unwrap();
+    assert_eq!(out.status.code(), Some(2));
+    let err = String::from_utf8(out.stderr).unwrap();
+    assert!(
+        err.contains("bad.toml:3:") && err.contains("colour"),
+        "{err}"
+    );
+}
+
+#[test]
+fn config_settings_change_the_analysis() {
+    let dir = tempfile::tempdir().unwrap();
+    let f = scene(dir.path(), "one.tif", 5, 5);
+    let conf = dir.path().join("fixed.toml");
+    // A fixed level above every pixel: no objects.
+    std::fs::write(
+        &conf,
+        "[segment]\nmethod = \"fixed\"\nfixed_level = 65535\n",
+    )
+    .unwrap();
+    let out = binary()
+        .args(["analyze", "--json", "--config"])
+        .arg(&conf)
+        .arg(&f)
+        .output()
+        .unwrap();
+    assert!(out.status.success());
+    let line: serde_json::Value = serde_json::from_slice(&out.stdout).unwrap();
+    assert_eq!(
+        (line["method"].as_str(), line["object_count"].as_u64()),
+        (Some("fixed"), Some(0))
+    );
+}
