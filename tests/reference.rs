@@ -8,7 +8,7 @@
 //! tolerances. Python and the packages in `tests/reference/requirements.txt`
 //! are required: a missing one fails the test, it never skips.
 
-use std::path::{Path, PathBuf};
+use std::path::Path;
 use std::sync::OnceLock;
 
 mod common;

@@ -14,7 +14,7 @@
 //! Python and the packages in `tests/reference/requirements.txt` are required:
 //! a missing one fails these tests, it never skips them.
 
-use std::path::{Path, PathBuf};
+use std::path::Path;
 use std::sync::OnceLock;
 
 mod common;
