@@ -359,3 +359,54 @@ fn tells_systemd_it_is_ready_feeds_the_watchdog_and_says_stopping() {
     receive_until("STOPPING=1", &mut seen);
     assert_eq!(bench.wait_exit(Duration::from_secs(60)), Some(0));
 }
+
+#[test]
+fn a_folder_moved_in_with_files_already_inside_is_scanned() {
+    // No periodic rescan within the test: only the folder's own event can find them.
+    let mut bench = Bench::new("rescan_interval_s = 3600");
+    bench.start();
+    let (bytes, _) = tiff_bytes(20, 64, 2);
+    // Prepared outside the watched tree, then moved in whole: its files get no
+    // events of their own, only the folder does.
+    let outside = bench.dir.path().join("plate-2");
+    std::fs::create_dir_all(outside.join("site-1")).unwrap();
+    for i in 0..6 {
+        std::fs::write(
+            outside.join("site-1").join(format!("K10_t{i:04}.tif")),
+            &bytes,
+        )
+        .unwrap();
+    }
+    std::fs::rename(&outside, bench.acq.join("plate-2")).unwrap();
+    let rows = bench.wait_finished(6, LONG);
+    assert_each_done_once(&rows, 6);
+    assert!(
+        rows.iter().all(|r| r.path.contains("/plate-2/site-1/")),
+        "{rows:?}"
+    );
+}
+
+#[test]
+fn poll_mode_records_files_like_native_mode() {
+    let mut bench = Bench::new("mode = \"poll\"\npoll_interval_ms = 200");
+    bench.start();
+    let (bytes, truth) = tiff_bytes(21, 96, 4);
+    for i in 0..8 {
+        let path = bench.acq.join(format!("L11_t{i:04}.tif"));
+        let mut file = std::fs::File::create(&path).unwrap();
+        for chunk in bytes.chunks(bytes.len() / 2 + 1) {
+            file.write_all(chunk).unwrap();
+            std::thread::sleep(Duration::from_millis(50));
+        }
+    }
+    let rows = bench.wait_finished(8, LONG);
+    assert_each_done_once(&rows, 8);
+    assert!(rows
+        .iter()
+        .all(|r| r.object_count == Some(truth as i64) && r.size_bytes as usize == bytes.len()));
+    assert!(
+        bench.logs().contains("poll mode"),
+        "the mode is logged:\n{}",
+        bench.logs()
+    );
+}
