@@ -75,9 +75,16 @@ struct JsonError {
 ///
 /// # Errors
 /// Only an error writing to `out`.
-pub fn run(files: &[PathBuf], settings: &Settings, json: bool, workers: usize, out: &mut dyn Write) -> std::io::Result<usize> {
+pub fn run(
+    files: &[PathBuf],
+    settings: &Settings,
+    json: bool,
+    workers: usize,
+    out: &mut dyn Write,
+) -> std::io::Result<usize> {
     let next = AtomicUsize::new(0);
-    let (tx, rx) = std::sync::mpsc::sync_channel::<(usize, Result<FileAnalysis, FileError>)>(workers * 2);
+    let (tx, rx) =
+        std::sync::mpsc::sync_channel::<(usize, Result<FileAnalysis, FileError>)>(workers * 2);
     let mut failed = 0;
     std::thread::scope(|scope| -> std::io::Result<()> {
         for _ in 0..workers.max(1) {
@@ -104,7 +111,11 @@ pub fn run(files: &[PathBuf], settings: &Settings, json: bool, workers: usize, o
                 if result.is_err() {
                     failed += 1;
                 }
-                let line = if json { json_line(file, &result) } else { table_line(&file, &result) };
+                let line = if json {
+                    json_line(file, &result)
+                } else {
+                    table_line(&file, &result)
+                };
                 writeln!(out, "{line}")?;
                 printed += 1;
             }
@@ -122,7 +133,10 @@ fn json_line(file: String, result: &Result<FileAnalysis, FileError>) -> String {
             pixel_size_source: a.pixel_size_source.map(|s| s.as_str()),
             result: &a.result,
         }),
-        Err(e) => serde_json::to_string(&JsonError { file, error: e.to_string() }),
+        Err(e) => serde_json::to_string(&JsonError {
+            file,
+            error: e.to_string(),
+        }),
     }
     .unwrap_or_else(|e| format!("{{\"error\":\"cannot serialise result: {e}\"}}"))
 }
@@ -136,7 +150,14 @@ fn table_header() -> String {
 
 fn table_line(file: &str, result: &Result<FileAnalysis, FileError>) -> String {
     let name = if file.chars().count() > 40 {
-        let tail: String = file.chars().rev().take(39).collect::<Vec<_>>().into_iter().rev().collect();
+        let tail: String = file
+            .chars()
+            .rev()
+            .take(39)
+            .collect::<Vec<_>>()
+            .into_iter()
+            .rev()
+            .collect();
         format!("…{tail}")
     } else {
         file.to_string()

@@ -1,0 +1,219 @@
+//! The `framewarden` binary: parses flags, sets up logging, calls the library.
+
+use std::io::IsTerminal;
+use std::path::PathBuf;
+use std::process::ExitCode;
+
+use clap::{Parser, Subcommand};
+
+use framewarden::settings::{self, Settings};
+
+#[derive(Parser)]
+#[command(
+    name = "framewarden",
+    version,
+    about = "Watches a microscope acquisition overnight: segments, counts and quality-checks every frame"
+)]
+struct Cli {
+    #[command(subcommand)]
+    command: Command,
+}
+
+#[derive(Subcommand)]
+enum Command {
+    /// Analyse image files or folders once and print one line per frame.
+    Analyze {
+        /// Configuration file (defaults apply without one).
+        #[arg(long)]
+        config: Option<PathBuf>,
+        /// One JSON object per frame per line instead of a table.
+        #[arg(long)]
+        json: bool,
+        /// Worker threads (default: one per core).
+        #[arg(long)]
+        workers: Option<usize>,
+        /// Files or folders (folders are searched recursively for .tif/.tiff/.png).
+        #[arg(required = true)]
+        paths: Vec<PathBuf>,
+    },
+    /// Watch folders and record every completely written frame (runs in the foreground).
+    Watch {
+        /// Configuration file ([watch] folders, [store] database, analysis settings).
+        #[arg(long)]
+        config: Option<PathBuf>,
+        /// Folder to watch (repeatable); replaces [watch] folders.
+        #[arg(long = "folder")]
+        folders: Vec<PathBuf>,
+        /// Database file; replaces [store] database.
+        #[arg(long)]
+        db: Option<PathBuf>,
+        /// Start a new run even if the last one could be continued.
+        #[arg(long)]
+        new_run: bool,
+    },
+    /// Show the current (or last) run of a database, read-only.
+    Status {
+        /// Configuration file whose [store] database to read.
+        #[arg(long)]
+        config: Option<PathBuf>,
+        /// Database file (overrides the config).
+        #[arg(long)]
+        db: Option<PathBuf>,
+        /// One JSON document instead of text.
+        #[arg(long)]
+        json: bool,
+        /// How many recent frames and failures to list.
+        #[arg(long, default_value_t = 10)]
+        recent: usize,
+    },
+    /// Replay an invented overnight plate time-lapse into a temporary folder while
+    /// the watch service records it, then print the status (about a minute).
+    Demo {
+        /// Scenario file (default: the built-in demo-data/plate-timelapse.toml).
+        #[arg(long)]
+        scenario: Option<PathBuf>,
+        /// Keep the temporary folder (acquisition and database) afterwards.
+        #[arg(long)]
+        keep: bool,
+    },
+}
+
+/// Exit code for usage and configuration errors.
+const USAGE: u8 = 2;
+
+fn main() -> ExitCode {
+    let cli = Cli::parse();
+    tracing_subscriber::fmt()
+        .with_env_filter(
+            tracing_subscriber::EnvFilter::try_from_default_env().unwrap_or_else(|_| "info".into()),
+        )
+        .with_writer(std::io::stderr)
+        .with_ansi(std::io::stderr().is_terminal())
+        .init();
+    match cli.command {
+        Command::Watch {
+            config,
+            folders,
+            db,
+            new_run,
+        } => {
+            let mut settings = match load_settings(config.as_deref()) {
+                Ok(s) => s,
+                Err(code) => return code,
+            };
+            if !folders.is_empty() {
+                settings.watch.folders = folders;
+            }
+            if let Some(db) = db {
+                settings.store.database = db;
+            }
+            let options = framewarden::watch::WatchOptions { new_run };
+            match framewarden::service::watch_until_signal(&settings, &options) {
+                Ok(_) => ExitCode::SUCCESS,
+                Err(e) => {
+                    eprintln!("framewarden watch: {e}");
+                    ExitCode::from(USAGE)
+                }
+            }
+        }
+        Command::Demo { scenario, keep } => {
+            let text = match scenario {
+                None => framewarden::demo::DEFAULT_SCENARIO.to_string(),
+                Some(p) => match std::fs::read_to_string(&p) {
+                    Ok(t) => t,
+                    Err(e) => {
+                        eprintln!("framewarden demo: cannot read {}: {e}", p.display());
+                        return ExitCode::from(USAGE);
+                    }
+                },
+            };
+            let workdir =
+                std::env::temp_dir().join(format!("framewarden-demo-{}", std::process::id()));
+            let result = framewarden::demo::Scenario::parse(&text)
+                .and_then(|s| framewarden::demo::run(&s, &workdir, &mut std::io::stdout().lock()));
+            if keep {
+                println!("\nkept {}", workdir.display());
+            } else {
+                let _ = std::fs::remove_dir_all(&workdir);
+            }
+            match result {
+                Ok(_) => ExitCode::SUCCESS,
+                Err(e) => {
+                    eprintln!("framewarden demo: {e}");
+                    ExitCode::from(1)
+                }
+            }
+        }
+        Command::Status {
+            config,
+            db,
+            json,
+            recent,
+        } => {
+            let settings = match load_settings(config.as_deref()) {
+                Ok(s) => s,
+                Err(code) => return code,
+            };
+            let db = db.unwrap_or(settings.store.database);
+            match framewarden::status::read(&db, recent) {
+                Ok(report) if json => {
+                    println!(
+                        "{}",
+                        serde_json::to_string_pretty(&report).unwrap_or_default()
+                    );
+                    ExitCode::SUCCESS
+                }
+                Ok(report) => {
+                    print!("{}", framewarden::status::render(&report));
+                    ExitCode::SUCCESS
+                }
+                Err(e) => {
+                    eprintln!("framewarden status: {e}");
+                    ExitCode::from(1)
+                }
+            }
+        }
+        Command::Analyze {
+            config,
+            json,
+            workers,
+            paths,
+        } => {
+            let settings = match load_settings(config.as_deref()) {
+                Ok(s) => s,
+                Err(code) => return code,
+            };
+            let files = match framewarden::analyze::expand_paths(&paths) {
+                Ok(f) => f,
+                Err(e) => {
+                    eprintln!("framewarden analyze: {e}");
+                    return ExitCode::from(USAGE);
+                }
+            };
+            let workers = workers.unwrap_or_else(default_workers).max(1);
+            let mut out = std::io::stdout().lock();
+            match framewarden::analyze::run(&files, &settings, json, workers, &mut out) {
+                Ok(0) => ExitCode::SUCCESS,
+                Ok(_) => ExitCode::from(1),
+                Err(e) => {
+                    eprintln!("framewarden analyze: cannot write output: {e}");
+                    ExitCode::from(1)
+                }
+            }
+        }
+    }
+}
+
+fn default_workers() -> usize {
+    std::thread::available_parallelism().map_or(1, |n| n.get())
+}
+
+fn load_settings(path: Option<&std::path::Path>) -> Result<Settings, ExitCode> {
+    match path {
+        None => Ok(Settings::default()),
+        Some(p) => settings::load(p).map_err(|e| {
+            eprintln!("framewarden: {e}");
+            ExitCode::from(USAGE)
+        }),
+    }
+}
