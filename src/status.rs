@@ -34,6 +34,10 @@ pub struct StatusReport {
     pub frames: Vec<RecentFrame>,
     /// The most recent failures, newest first.
     pub failures: Vec<RecentFrame>,
+    /// The run's alert episodes, open ones first.
+    pub alerts: Vec<crate::qc::report::AlertRow>,
+    /// The most recent frames with quality flags or a failure, newest first.
+    pub flagged_frames: Vec<crate::qc::report::FlaggedFrame>,
 }
 
 #[derive(Debug, Clone, Serialize, PartialEq)]
@@ -99,6 +103,8 @@ fn query(conn: &Connection, db: &Path, recent: usize) -> rusqlite::Result<Status
         last_frame_age_s: None,
         frames: Vec::new(),
         failures: Vec::new(),
+        alerts: Vec::new(),
+        flagged_frames: Vec::new(),
     };
     let run = conn
         .query_row(
@@ -173,6 +179,8 @@ fn query(conn: &Connection, db: &Path, recent: usize) -> rusqlite::Result<Status
     };
     report.frames = recent_of(false)?;
     report.failures = recent_of(true)?;
+    report.alerts = crate::qc::report::alerts(conn, run_id)?;
+    report.flagged_frames = crate::qc::report::flagged_frames(conn, run_id, recent)?;
     Ok(report)
 }
 
@@ -243,6 +251,7 @@ pub fn render(report: &StatusReport) -> String {
             );
         }
     }
+    crate::qc::report::render(&report.alerts, &report.flagged_frames, &mut out);
     out
 }
 

@@ -9,4 +9,6 @@ pub mod config;
 pub mod drift;
 pub mod flags;
 pub mod monitor;
+pub mod record;
+pub mod report;
 pub mod sinks;

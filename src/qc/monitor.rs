@@ -10,7 +10,7 @@ use std::collections::{BTreeMap, VecDeque};
 use crate::qc::alerts::{AlertBook, AlertEvent};
 use crate::qc::config::QualitySettings;
 use crate::qc::drift::{median, Chart, Direction, Metric, Signal, Step};
-use crate::qc::flags::{failure_flag, frame_flags, num, FrameFlag, FrameMetrics, PositionContext};
+use crate::qc::flags::{frame_flags, num, FrameFlag, FrameMetrics, PositionContext};
 
 /// Condition of a stalled acquisition.
 pub const STALLED: &str = "stalled";
@@ -123,8 +123,9 @@ impl RunMonitor {
         Verdict { flags, events }
     }
 
-    /// Records a frame that produced no result: a failure flag, and the failure rate.
-    pub fn observe_failure(&mut self, file: &str, at_ms: i64, reason: &str) -> Verdict {
+    /// Records a frame that produced no result (its flag is the error row's
+    /// reason, see [`crate::qc::flags::failure_flag`]): the failure rate.
+    pub fn observe_failure(&mut self, file: &str, at_ms: i64) -> Vec<AlertEvent> {
         self.last_frame_at_ms = Some(at_ms);
         let mut events: Vec<AlertEvent> = self
             .book
@@ -134,10 +135,7 @@ impl RunMonitor {
             .into_iter()
             .collect();
         events.extend(self.record_outcome(true, at_ms, file));
-        Verdict {
-            flags: vec![failure_flag(reason)],
-            events,
-        }
+        events
     }
 
     /// Checks for a stall: no frame for longer than `stall_after` since the last
@@ -175,6 +173,12 @@ impl RunMonitor {
                 format!("{} MiB free again on {name}", free_bytes >> 20)
             }
         })
+    }
+
+    /// Marks a stored, still open alert open again after a restart, so its
+    /// recovery is noticed and it is not raised twice.
+    pub fn restore_open(&mut self, condition: &str, opened_at_ms: i64) {
+        self.book.restore(condition, opened_at_ms);
     }
 
     /// True when any position's chart of `metric` is in a declared drift.

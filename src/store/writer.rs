@@ -15,6 +15,7 @@ use rusqlite::{params, Connection, OptionalExtension, Transaction, TransactionBe
 
 use super::{now_ms, FrameKey};
 use crate::pipeline::FileAnalysis;
+use crate::qc::record::QcRecorder;
 
 /// Parts of a file name picked out by the configured pattern.
 #[derive(Debug, Clone, Default, PartialEq, Eq)]
@@ -76,6 +77,8 @@ pub struct RunPolicy {
     pub force_new: bool,
     /// A frame detected after this long without frames starts a new run.
     pub idle_gap_ms: i64,
+    /// Quality control of each recorded frame (flags, drift, alerts); `None` = off.
+    pub qc: Option<crate::qc::record::QcSetup>,
 }
 
 /// Called after each commit with the identities that left the pipeline.
@@ -101,6 +104,10 @@ impl Writer {
         on_commit: CommitHook,
     ) -> rusqlite::Result<(Writer, Sender<StoreOp>)> {
         let run = choose_run(&mut conn, &policy)?;
+        let qc = match policy.qc.clone() {
+            Some(setup) => Some(QcRecorder::start(&conn, run.id, setup)?),
+            None => None,
+        };
         let (ops_tx, ops_rx) = crossbeam_channel::bounded(capacity.max(1));
         let mut state = WriterState {
             conn,
@@ -108,6 +115,7 @@ impl Writer {
             run,
             on_commit,
             max_batch: max_batch.max(1),
+            qc,
         };
         let run_id = state.run.id;
         let thread = std::thread::Builder::new()
@@ -137,14 +145,30 @@ struct WriterState {
     run: Run,
     on_commit: CommitHook,
     max_batch: usize,
+    qc: Option<QcRecorder>,
 }
+
+/// How often the writer, when idle, lets quality control check for a stall.
+const QC_TICK: Duration = Duration::from_secs(5);
 
 impl WriterState {
     fn run_loop(&mut self, ops_rx: &Receiver<StoreOp>) {
         // Group commit: block for one op, then take whatever else is already
         // waiting. Under load batches grow; when quiet a frame commits at once,
         // so batching never adds latency.
-        while let Ok(first) = ops_rx.recv() {
+        loop {
+            let first = match ops_rx.recv_timeout(QC_TICK) {
+                Ok(op) => op,
+                Err(crossbeam_channel::RecvTimeoutError::Timeout) => {
+                    if let Some(qc) = self.qc.as_mut() {
+                        if let Err(e) = qc.tick(&self.conn) {
+                            tracing::error!("quality control: {e}");
+                        }
+                    }
+                    continue;
+                }
+                Err(crossbeam_channel::RecvTimeoutError::Disconnected) => break,
+            };
             let mut batch = vec![first];
             while batch.len() < self.max_batch {
                 match ops_rx.try_recv() {
@@ -166,6 +190,9 @@ impl WriterState {
         );
         if let Err(e) = ended {
             tracing::error!("cannot mark run {} ended: {e}", self.run.id);
+        }
+        if let Some(qc) = self.qc.take() {
+            qc.close();
         }
     }
 
@@ -214,12 +241,23 @@ impl WriterState {
                     key,
                     attempts,
                     analysis,
-                } => record_done(&tx, key, *attempts, analysis)?,
+                } => {
+                    let frame_id = record_done(&tx, key, *attempts, analysis)?;
+                    if let (Some(qc), Some(id)) = (self.qc.as_mut(), frame_id) {
+                        qc.frame_done(&tx, id, &analysis.result)?;
+                    }
+                }
                 StoreOp::Failed {
                     key,
                     attempts,
                     reason,
-                } => record_failed(&tx, key, *attempts, reason)?,
+                } => {
+                    if record_failed(&tx, key, *attempts, reason)? {
+                        if let Some(qc) = self.qc.as_mut() {
+                            qc.frame_failed(&tx, key)?;
+                        }
+                    }
+                }
                 StoreOp::Withdrawn { key } => {
                     tx.prepare_cached(
                         "DELETE FROM frames WHERE path = ?1 AND size_bytes = ?2 AND mtime_ns = ?3 AND status = 'queued'",
@@ -332,12 +370,13 @@ fn insert_queued(
     Ok(())
 }
 
+/// Returns the frame's id, or `None` when there was no unfinished row to complete.
 fn record_done(
     tx: &Transaction<'_>,
     key: &FrameKey,
     attempts: u32,
     analysis: &FileAnalysis,
-) -> rusqlite::Result<()> {
+) -> rusqlite::Result<Option<i64>> {
     let r = &analysis.result;
     let now = now_ms();
     let frame_id: Option<i64> = tx
@@ -378,7 +417,7 @@ fn record_done(
         .optional()?;
     let Some(frame_id) = frame_id else {
         tracing::warn!("store: {} has no queued row to complete; skipped", key.path);
-        return Ok(());
+        return Ok(None);
     };
     tx.prepare_cached("DELETE FROM objects WHERE frame_id = ?1")?
         .execute([frame_id])?;
@@ -413,29 +452,31 @@ fn record_done(
             channels,
         ])?;
     }
-    Ok(())
+    Ok(Some(frame_id))
 }
 
+/// Returns whether a row was marked failed.
 fn record_failed(
     tx: &Transaction<'_>,
     key: &FrameKey,
     attempts: u32,
     reason: &str,
-) -> rusqlite::Result<()> {
-    tx.prepare_cached(
-        "UPDATE frames SET status = 'failed', error = ?4, attempts = ?5, analysed_at_ms = ?6,
+) -> rusqlite::Result<bool> {
+    let changed = tx
+        .prepare_cached(
+            "UPDATE frames SET status = 'failed', error = ?4, attempts = ?5, analysed_at_ms = ?6,
              latency_ms = MAX(0, ?6 - ready_at_ms)
          WHERE path = ?1 AND size_bytes = ?2 AND mtime_ns = ?3 AND status <> 'done'",
-    )?
-    .execute(params![
-        key.path,
-        key.size_bytes as i64,
-        key.mtime_ns,
-        reason,
-        attempts,
-        now_ms()
-    ])?;
-    Ok(())
+        )?
+        .execute(params![
+            key.path,
+            key.size_bytes as i64,
+            key.mtime_ns,
+            reason,
+            attempts,
+            now_ms()
+        ])?;
+    Ok(changed > 0)
 }
 
 #[cfg(test)]
@@ -513,6 +554,7 @@ mod tests {
             settings: "s".into(),
             force_new,
             idle_gap_ms: 3_600_000,
+            qc: None,
         }
     }
 

@@ -142,6 +142,7 @@ impl Service {
             settings: format!("{settings:#?}"),
             force_new: options.new_run,
             idle_gap_ms: i64::try_from(watch.new_run_after_idle.as_millis()).unwrap_or(i64::MAX),
+            qc: Some(crate::qc::record::QcSetup::from_settings(settings)),
         };
         let (writer, store_tx) = Writer::start(
             conn,

@@ -1,0 +1,282 @@
+//! Quality control inside the single writer: after each frame is recorded, the
+//! run monitor judges it in the same transaction; flags and alert episodes become
+//! rows, and alert events go to the log and the sinks.
+//!
+//! The writer ([`crate::store::writer`]) calls in; the judging is
+//! [`crate::qc::monitor`]'s, the delivery [`crate::qc::sinks`]'s. A restart
+//! mid-run rebuilds the monitor from the run's rows, so baselines survive it.
+
+use rusqlite::{params, Connection, OptionalExtension, Transaction};
+
+use crate::analysis::FrameResult;
+use crate::qc::alerts::{AlertEvent, AlertState};
+use crate::qc::config::{AlertSettings, QualitySettings};
+use crate::qc::flags::FrameMetrics;
+use crate::qc::monitor::RunMonitor;
+use crate::qc::sinks::AlertDispatcher;
+use crate::settings::Settings;
+use crate::store::{now_ms, FrameKey};
+
+/// SQL for a frame row's position: the well, and the site when there is one
+/// (empty when the file-name pattern names neither).
+const POSITION_SQL: &str =
+    "TRIM(COALESCE(well, '') || CASE WHEN site IS NULL THEN '' ELSE ' site ' || site END)";
+
+/// Condition of a service restart in the middle of a run.
+pub const SERVICE_RESTARTED: &str = "service_restarted";
+
+/// What the writer needs to run quality control.
+#[derive(Debug, Clone)]
+pub struct QcSetup {
+    pub quality: QualitySettings,
+    pub alerts: AlertSettings,
+}
+
+impl QcSetup {
+    pub fn from_settings(settings: &Settings) -> QcSetup {
+        QcSetup {
+            quality: settings.quality.clone(),
+            alerts: settings.alerts.clone(),
+        }
+    }
+}
+
+/// The monitor of the writer's current run, and the sinks.
+pub struct QcRecorder {
+    setup: QcSetup,
+    run_id: i64,
+    monitor: RunMonitor,
+    dispatcher: AlertDispatcher,
+}
+
+impl QcRecorder {
+    /// Starts the sinks and rebuilds the monitor of `run_id` from its rows; a run
+    /// that already has frames was interrupted, which raises a restart notice.
+    ///
+    /// # Errors
+    /// SQLite errors, or a sink thread that cannot start.
+    pub fn start(conn: &Connection, run_id: i64, setup: QcSetup) -> rusqlite::Result<QcRecorder> {
+        let dispatcher = AlertDispatcher::start(&setup.alerts)
+            .map_err(|e| rusqlite::Error::ToSqlConversionFailure(Box::new(e)))?;
+        let mut recorder = QcRecorder {
+            monitor: RunMonitor::new(setup.quality.clone()),
+            setup,
+            run_id,
+            dispatcher,
+        };
+        let replayed = recorder.replay(conn)?;
+        if replayed > 0 {
+            let at_ms = now_ms();
+            let event = AlertEvent {
+                condition: SERVICE_RESTARTED.into(),
+                state: AlertState::Opened,
+                at_ms,
+                file: None,
+                message: format!(
+                    "framewarden restarted in the middle of run {run_id} ({replayed} frames already recorded); frames in flight are redone"
+                ),
+            };
+            conn.execute(
+                "INSERT INTO alerts (run_id, raised_at_ms, kind, message, closed_at_ms) VALUES (?1, ?2, ?3, ?4, ?2)",
+                params![run_id, at_ms, event.condition, event.message],
+            )?;
+            recorder.announce(&event);
+        }
+        Ok(recorder)
+    }
+
+    /// Judges a frame just recorded as done (`frame_id`) in the writer's transaction.
+    ///
+    /// # Errors
+    /// SQLite errors.
+    pub fn frame_done(
+        &mut self,
+        tx: &Transaction<'_>,
+        frame_id: i64,
+        result: &FrameResult,
+    ) -> rusqlite::Result<()> {
+        let (run_id, path, position) = frame_row(tx, frame_id)?;
+        self.switch_run(run_id);
+        let at_ms = now_ms();
+        let verdict = self
+            .monitor
+            .observe(&position, &path, at_ms, &FrameMetrics::from(result));
+        let mut insert = tx.prepare_cached(
+            "INSERT INTO flags (frame_id, kind, value, limit_value, message) VALUES (?1, ?2, ?3, ?4, ?5)",
+        )?;
+        tx.prepare_cached("DELETE FROM flags WHERE frame_id = ?1")?
+            .execute([frame_id])?;
+        for f in &verdict.flags {
+            insert.execute(params![
+                frame_id,
+                f.kind.as_str(),
+                f.value,
+                f.limit,
+                f.message
+            ])?;
+        }
+        for event in &verdict.events {
+            self.store_event(tx, event, Some(frame_id))?;
+        }
+        Ok(())
+    }
+
+    /// Counts a frame recorded as failed towards the failure rate.
+    ///
+    /// # Errors
+    /// SQLite errors.
+    pub fn frame_failed(&mut self, tx: &Transaction<'_>, key: &FrameKey) -> rusqlite::Result<()> {
+        let row: Option<(i64, i64)> = tx
+            .prepare_cached(
+                "SELECT id, run_id FROM frames WHERE path = ?1 AND size_bytes = ?2 AND mtime_ns = ?3",
+            )?
+            .query_row(
+                params![key.path, key.size_bytes as i64, key.mtime_ns],
+                |r| Ok((r.get(0)?, r.get(1)?)),
+            )
+            .optional()?;
+        let Some((frame_id, run_id)) = row else {
+            return Ok(());
+        };
+        self.switch_run(run_id);
+        for event in self.monitor.observe_failure(&key.path, now_ms()) {
+            self.store_event(tx, &event, Some(frame_id))?;
+        }
+        Ok(())
+    }
+
+    /// Periodic checks that need no frame: the stall.
+    ///
+    /// # Errors
+    /// SQLite errors.
+    pub fn tick(&mut self, conn: &Connection) -> rusqlite::Result<()> {
+        if let Some(event) = self.monitor.check_stall(now_ms()) {
+            self.store_event(conn, &event, None)?;
+        }
+        Ok(())
+    }
+
+    /// Waits for the sinks to deliver what is queued.
+    pub fn close(self) {
+        self.dispatcher.close();
+    }
+
+    /// A new run (after an idle gap) starts with a fresh memory.
+    fn switch_run(&mut self, run_id: i64) {
+        if run_id != self.run_id {
+            self.run_id = run_id;
+            self.monitor = RunMonitor::new(self.setup.quality.clone());
+        }
+    }
+
+    fn store_event(
+        &self,
+        conn: &Connection,
+        event: &AlertEvent,
+        frame_id: Option<i64>,
+    ) -> rusqlite::Result<()> {
+        match event.state {
+            AlertState::Opened => {
+                conn.prepare_cached(
+                    "INSERT INTO alerts (run_id, raised_at_ms, kind, message, frame_id, file) VALUES (?1, ?2, ?3, ?4, ?5, ?6)",
+                )?
+                .execute(params![
+                    self.run_id,
+                    event.at_ms,
+                    event.condition,
+                    event.message,
+                    frame_id,
+                    event.file
+                ])?;
+            }
+            AlertState::Recovered => {
+                conn.prepare_cached(
+                    "UPDATE alerts SET closed_at_ms = ?1, closed_message = ?2
+                     WHERE run_id = ?3 AND kind = ?4 AND closed_at_ms IS NULL",
+                )?
+                .execute(params![
+                    event.at_ms,
+                    event.message,
+                    self.run_id,
+                    event.condition
+                ])?;
+            }
+        }
+        self.announce(event);
+        Ok(())
+    }
+
+    fn announce(&self, event: &AlertEvent) {
+        match event.state {
+            AlertState::Opened => tracing::warn!(
+                condition = %event.condition,
+                file = event.file.as_deref().unwrap_or(""),
+                "alert: {}",
+                event.message
+            ),
+            AlertState::Recovered => tracing::info!(
+                condition = %event.condition,
+                "recovered: {}",
+                event.message
+            ),
+        }
+        self.dispatcher.send(event);
+    }
+
+    /// Feeds the run's recorded frames to a fresh monitor, in recording order,
+    /// discarding the events (they are already stored), then marks the stored
+    /// open alerts open. Returns the number of frames replayed.
+    fn replay(&mut self, conn: &Connection) -> rusqlite::Result<usize> {
+        let mut stmt = conn.prepare(&format!(
+            "SELECT path, {POSITION_SQL}, analysed_at_ms, status,
+                    method, threshold, separability, object_count, foreground_fraction,
+                    background_level, saturation_fraction, focus, illumination_change
+             FROM frames WHERE run_id = ?1 AND status IN ('done', 'failed') ORDER BY analysed_at_ms, id"
+        ))?;
+        let mut rows = stmt.query([self.run_id])?;
+        let mut n = 0;
+        while let Some(r) = rows.next()? {
+            let path: String = r.get(0)?;
+            let at_ms: i64 = r.get::<_, Option<i64>>(2)?.unwrap_or(0);
+            if r.get::<_, String>(3)? == "failed" {
+                self.monitor.observe_failure(&path, at_ms);
+            } else {
+                let method: String = r.get::<_, Option<String>>(4)?.unwrap_or_default();
+                let num = |i: usize| -> rusqlite::Result<f64> {
+                    Ok(r.get::<_, Option<f64>>(i)?.unwrap_or(0.0))
+                };
+                let m = FrameMetrics {
+                    otsu_based: FrameMetrics::is_otsu_method(&method),
+                    threshold: num(5)?,
+                    separability: num(6)?,
+                    object_count: r.get::<_, Option<i64>>(7)?.unwrap_or(0).max(0) as usize,
+                    foreground_fraction: num(8)?,
+                    background_level: num(9)?,
+                    saturation_fraction: num(10)?,
+                    focus: num(11)?,
+                    illumination_change: num(12)?,
+                };
+                let position: String = r.get(1)?;
+                self.monitor.observe(&position, &path, at_ms, &m);
+            }
+            n += 1;
+        }
+        let mut open = conn.prepare(
+            "SELECT kind, raised_at_ms FROM alerts WHERE run_id = ?1 AND closed_at_ms IS NULL",
+        )?;
+        let rows = open.query_map([self.run_id], |r| Ok((r.get::<_, String>(0)?, r.get(1)?)))?;
+        for row in rows {
+            let (kind, at): (String, i64) = row?;
+            self.monitor.restore_open(&kind, at);
+        }
+        Ok(n)
+    }
+}
+
+/// The run, path and position of a frame row.
+fn frame_row(conn: &Connection, frame_id: i64) -> rusqlite::Result<(i64, String, String)> {
+    conn.prepare_cached(&format!(
+        "SELECT run_id, path, {POSITION_SQL} FROM frames WHERE id = ?1"
+    ))?
+    .query_row([frame_id], |r| Ok((r.get(0)?, r.get(1)?, r.get(2)?)))
+}

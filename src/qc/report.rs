@@ -1,0 +1,148 @@
+//! The quality part of `framewarden status`: the run's alert episodes and its
+//! flagged frames (failures included), read from the store and rendered.
+//!
+//! [`crate::status`] owns the read transaction and the rest of the report; this
+//! file only adds its two lists.
+
+use std::fmt::Write as _;
+
+use rusqlite::{params, Connection};
+use serde::Serialize;
+
+use crate::qc::flags::failure_flag;
+
+/// One alert episode.
+#[derive(Debug, Clone, Serialize, PartialEq)]
+pub struct AlertRow {
+    pub condition: String,
+    /// UTC, RFC 3339.
+    pub opened_at: String,
+    /// `None` while the condition holds.
+    pub closed_at: Option<String>,
+    /// The file that triggered it, when a frame did.
+    pub frame: Option<String>,
+    pub message: String,
+    /// What ended it.
+    pub closed_message: Option<String>,
+}
+
+/// One flag with its evidence, as shown.
+#[derive(Debug, Clone, Serialize, PartialEq)]
+pub struct FlagRow {
+    pub flag: String,
+    pub value: Option<f64>,
+    pub limit: Option<f64>,
+    pub message: String,
+}
+
+#[derive(Debug, Clone, Serialize, PartialEq)]
+pub struct FlaggedFrame {
+    pub file: String,
+    pub flags: Vec<FlagRow>,
+}
+
+/// Every alert episode of the run: open ones first, then the newest.
+///
+/// # Errors
+/// SQLite errors.
+pub fn alerts(conn: &Connection, run_id: i64) -> rusqlite::Result<Vec<AlertRow>> {
+    let iso = |col: &str| format!("strftime('%Y-%m-%dT%H:%M:%fZ', {col} / 1000.0, 'unixepoch')");
+    let mut stmt = conn.prepare(&format!(
+        "SELECT kind, {}, {}, COALESCE(file, (SELECT path FROM frames WHERE id = alerts.frame_id)),
+                message, closed_message
+         FROM alerts WHERE run_id = ?1
+         ORDER BY closed_at_ms IS NOT NULL, raised_at_ms DESC, id DESC",
+        iso("raised_at_ms"),
+        iso("closed_at_ms")
+    ))?;
+    let rows = stmt.query_map([run_id], |r| {
+        Ok(AlertRow {
+            condition: r.get(0)?,
+            opened_at: r.get(1)?,
+            closed_at: r.get(2)?,
+            frame: r.get(3)?,
+            message: r.get(4)?,
+            closed_message: r.get(5)?,
+        })
+    })?;
+    rows.collect()
+}
+
+/// The `limit` newest frames of the run with flags or a failure, with their flags.
+///
+/// # Errors
+/// SQLite errors.
+pub fn flagged_frames(
+    conn: &Connection,
+    run_id: i64,
+    limit: usize,
+) -> rusqlite::Result<Vec<FlaggedFrame>> {
+    let mut frames_stmt = conn.prepare(
+        "SELECT id, path, status, error FROM frames
+         WHERE run_id = ?1 AND (status = 'failed' OR EXISTS (SELECT 1 FROM flags WHERE frame_id = frames.id))
+         ORDER BY id DESC LIMIT ?2",
+    )?;
+    let mut flags_stmt = conn.prepare(
+        "SELECT kind, value, limit_value, message FROM flags WHERE frame_id = ?1 ORDER BY id",
+    )?;
+    let frames: Vec<(i64, String, String, Option<String>)> = frames_stmt
+        .query_map(params![run_id, limit as i64], |r| {
+            Ok((r.get(0)?, r.get(1)?, r.get(2)?, r.get(3)?))
+        })?
+        .collect::<Result<_, _>>()?;
+    let mut out = Vec::with_capacity(frames.len());
+    for (id, file, status, error) in frames {
+        let mut flags: Vec<FlagRow> = flags_stmt
+            .query_map([id], |r| {
+                Ok(FlagRow {
+                    flag: r.get(0)?,
+                    value: r.get(1)?,
+                    limit: r.get(2)?,
+                    message: r.get(3)?,
+                })
+            })?
+            .collect::<Result<_, _>>()?;
+        if status == "failed" {
+            let f = failure_flag(error.as_deref().unwrap_or("no reason recorded"));
+            flags.push(FlagRow {
+                flag: f.kind.as_str().to_string(),
+                value: f.value,
+                limit: f.limit,
+                message: f.message,
+            });
+        }
+        out.push(FlaggedFrame { file, flags });
+    }
+    Ok(out)
+}
+
+/// The two lists as text for a terminal.
+pub fn render(alerts: &[AlertRow], flagged: &[FlaggedFrame], out: &mut String) {
+    if !alerts.is_empty() {
+        let open = alerts.iter().filter(|a| a.closed_at.is_none()).count();
+        let _ = writeln!(out, "\nalerts ({open} open):");
+        for a in alerts {
+            let state = a
+                .closed_at
+                .as_ref()
+                .map_or_else(|| "OPEN".to_string(), |c| format!("closed {c}"));
+            let _ = writeln!(
+                out,
+                "  [{state}] {} since {}: {}",
+                a.condition, a.opened_at, a.message
+            );
+            if let Some(m) = &a.closed_message {
+                let _ = writeln!(out, "      recovered: {m}");
+            }
+        }
+    }
+    if !flagged.is_empty() {
+        let _ = writeln!(out, "\nflagged frames:");
+        for f in flagged {
+            let _ = writeln!(out, "  {}", f.file);
+            for flag in &f.flags {
+                let _ = writeln!(out, "    {}: {}", flag.flag, flag.message);
+            }
+        }
+    }
+}
