@@ -150,8 +150,10 @@ pub fn analyze_frame(
     } else {
         raw_hist.clone()
     };
+    // Otsu's separability is reported whatever the method.
+    let (otsu_level, separability) = threshold::otsu_split(&seg_hist);
     let t = match &settings.method {
-        Method::Otsu => threshold::otsu(&seg_hist),
+        Method::Otsu => otsu_level,
         Method::Triangle => threshold::triangle(&seg_hist),
         Method::Li => threshold::li(&seg_hist),
         Method::MultiOtsu { classes, boundary } => {
@@ -183,7 +185,7 @@ pub fn analyze_frame(
         bit_depth: frame.bit_depth,
         method: settings.method.name().to_string(),
         threshold: f64::from(t),
-        separability: threshold::separability(&seg_hist),
+        separability,
         object_count: objects.len(),
         foreground_fraction: kept_area as f64 / frame.len().max(1) as f64,
         background_level: q.background_level,

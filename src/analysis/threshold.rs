@@ -138,12 +138,15 @@ fn otsu_with_variance(hist: &Histogram) -> (u16, f64) {
 /// Otsu's separability η = σ_B² / σ_T² at Otsu's threshold (Otsu 1979, eq. 12):
 /// 1 for two pure levels, near 0 for a unimodal histogram; 0 for a constant frame.
 pub fn separability(hist: &Histogram) -> f64 {
+    otsu_split(hist).1
+}
+
+/// Otsu's level and its separability η from one pass over the histogram.
+pub fn otsu_split(hist: &Histogram) -> (u16, f64) {
+    let (level, between) = otsu_with_variance(hist);
     let Some((lo, hi)) = hist.range() else {
-        return 0.0;
+        return (level, 0.0);
     };
-    if lo == hi {
-        return 0.0;
-    }
     let n = hist.total as f64;
     let (mut s, mut s2) = (0.0f64, 0.0f64);
     for (v, &c) in hist.counts.iter().enumerate().take(hi + 1).skip(lo) {
@@ -153,12 +156,12 @@ pub fn separability(hist: &Histogram) -> f64 {
     }
     let mean = s / n;
     let total_var = s2 / n - mean * mean;
-    let (_, between) = otsu_with_variance(hist);
-    if total_var > 0.0 {
+    let eta = if lo < hi && total_var > 0.0 {
         (between / total_var).clamp(0.0, 1.0)
     } else {
         0.0
-    }
+    };
+    (level, eta)
 }
 
 /// Triangle method (Zack, Rogers & Latt 1977, "Automatic measurement of sister
