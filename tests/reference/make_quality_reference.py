@@ -1,0 +1,110 @@
+"""Reference values for the corrections and frame-quality measures, computed
+with SciPy and numpy on images written by tifffile.
+
+Usage: python3 make_quality_reference.py OUT_DIR
+
+Writes q_*.tif and quality_references.json with, per image:
+- gaussian: scipy.ndimage.gaussian_filter(float64 image, sigma, mode="reflect",
+  truncate=4.0), rounded and clipped to the bit depth (raw little-endian uint16
+  in q_NAME.gauss.bin);
+- focus: numpy.var of scipy.ndimage.laplace(float64 image)[1:-1, 1:-1];
+- background_level: numpy.median(image[image <= t]) at the given threshold;
+- saturation_fraction: numpy.mean(image == top of the bit depth);
+- illumination_change: the documented definition (16 x 16 block means of the
+  background, blocks at least a quarter background, quadratic surface
+  z = a + b u + c v + d u^2 + e v^2 + f u v by numpy.linalg.lstsq, evaluated on
+  a 33 x 33 grid over [-1, 1]^2, (max - min) / mean);
+- flat_field: (raw - dark) / (flat - dark) * mean(flat - dark) in float64,
+  rounded and clipped (q_NAME.flat.bin), for the cases that carry flat frames.
+"""
+import json
+import sys
+from pathlib import Path
+
+import numpy as np
+import tifffile
+from scipy import ndimage as ndi
+from skimage import data
+from skimage.filters import threshold_otsu
+
+out = Path(sys.argv[1])
+out.mkdir(parents=True, exist_ok=True)
+rng = np.random.default_rng(7)
+GRID = 16
+
+
+def illumination(img, t):
+    h, w = img.shape
+    gx, gy = min(GRID, w), min(GRID, h)
+    by = (np.arange(h) * gy) // h
+    bx = (np.arange(w) * gx) // w
+    bg = img <= t
+    sums = np.zeros((gy, gx))
+    counts = np.zeros((gy, gx))
+    np.add.at(sums, (by[:, None].repeat(w, 1)[bg], bx[None, :].repeat(h, 0)[bg]), img[bg].astype(np.float64))
+    np.add.at(counts, (by[:, None].repeat(w, 1)[bg], bx[None, :].repeat(h, 0)[bg]), 1)
+    block_px = (w * h) // (gx * gy)
+    coord = lambda i, g: 2.0 * i / (g - 1) - 1.0 if g > 1 else 0.0
+    pts = [(coord(i % gx, gx), coord(i // gx, gy), sums.flat[i] / counts.flat[i])
+           for i in range(gx * gy) if counts.flat[i] > 0 and counts.flat[i] * 4 >= block_px]
+    if len(pts) < 3:
+        return 0.0
+    terms = 3 if len(pts) < 12 else 6
+    basis = lambda u, v: np.array([1.0, u, v, u * u, v * v, u * v])[:terms]
+    A = np.array([basis(u, v) for u, v, _ in pts])
+    z = np.array([p[2] for p in pts])
+    coef, *_ = np.linalg.lstsq(A, z, rcond=None)
+    grid = [basis(coord(i, 33), coord(j, 33)) @ coef for i in range(33) for j in range(33)]
+    mean = float(np.mean(grid))
+    return 0.0 if mean < 1.0 else float((max(grid) - min(grid)) / mean)
+
+
+def scene16(h, w, gradient):
+    yy, xx = np.mgrid[:h, :w]
+    img = 2000.0 * (1.0 + gradient * (xx / w - 0.5)) + rng.normal(0, 60, (h, w))
+    for _ in range(25):
+        cy, cx, r = rng.integers(10, h - 10), rng.integers(10, w - 10), rng.integers(3, 8)
+        img[(yy - cy) ** 2 + (xx - cx) ** 2 < r * r] += 9000
+    img[5, 5] = 65535  # one saturated pixel
+    return np.clip(img, 0, 65535).astype(np.uint16)
+
+
+cases = []
+images = {
+    "camera8": (data.camera(), 8, 1.5),
+    "coins8": (data.coins(), 8, 0.8),
+    "plate16": (scene16(180, 240, 0.4), 16, 2.0),
+    "flat16": (scene16(96, 128, 0.0), 16, 1.0),
+}
+for name, (img, bits, sigma) in images.items():
+    tifffile.imwrite(out / f"q_{name}.tif", img)
+    top = 255 if bits == 8 else 65535
+    f = img.astype(np.float64)
+    g = np.clip(np.round(ndi.gaussian_filter(f, sigma, mode="reflect", truncate=4.0)), 0, top)
+    (out / f"q_{name}.gauss.bin").write_bytes(g.astype("<u2").tobytes())
+    t = int(threshold_otsu(img))
+    case = dict(
+        name=name, file=f"q_{name}.tif", sigma=sigma, threshold=t,
+        focus=float(np.var(ndi.laplace(f)[1:-1, 1:-1])),
+        background_level=float(np.median(img[img <= t])),
+        saturation_fraction=float(np.mean(img == top)),
+        illumination_change=illumination(img, t),
+        flat=None,
+    )
+    if bits == 16:
+        h, w = img.shape
+        yy, xx = np.mgrid[:h, :w]
+        flat = (20000 * (1.0 - 0.3 * ((xx / w - 0.5) ** 2 + (yy / h - 0.5) ** 2))).astype(np.uint16)
+        dark = np.full((h, w), 100, dtype=np.uint16)
+        dark[::7, ::5] = 130
+        tifffile.imwrite(out / f"q_{name}.flatframe.tif", flat)
+        tifffile.imwrite(out / f"q_{name}.darkframe.tif", dark)
+        d = flat.astype(np.float64) - dark
+        corrected = (img.astype(np.float64) - dark) / d * d.mean()
+        corrected = np.clip(np.round(corrected), 0, top)
+        (out / f"q_{name}.flat.bin").write_bytes(corrected.astype("<u2").tobytes())
+        case["flat"] = dict(flat=f"q_{name}.flatframe.tif", dark=f"q_{name}.darkframe.tif")
+    cases.append(case)
+
+(out / "quality_references.json").write_text(json.dumps(cases, indent=1))
+print(f"wrote {len(cases)} quality cases")
