@@ -127,12 +127,17 @@ pub fn run(
     std::fs::create_dir_all(&acq).map_err(io(&acq))?;
     std::fs::create_dir_all(&staging).map_err(io(&staging))?;
     let db = workdir.join("framewarden.db");
+    // Twelve time points per well: the first four make each well's baseline, so
+    // the late-run dimming and gradient are charted (and alerted) against them.
     let config = format!(
         "[watch]\nfolders = [\"{}\"]\nsettle_ms = 300\nretry_limit = 3\nretry_backoff_ms = 200\n\
          name_pattern = '^(?P<well>[A-P]\\d{{2}})_t(?P<time_point>\\d+)_(?P<channel>[^.]+)\\.tif$'\n\
-         [store]\ndatabase = \"{}\"\n",
+         [store]\ndatabase = \"{}\"\n\
+         [quality]\nbaseline_frames = 4\non_uneven_illumination = \"flatten\"\n\
+         [alerts]\nfile = \"{}\"\n",
         acq.display(),
-        db.display()
+        db.display(),
+        workdir.join("alerts.jsonl").display()
     );
     let settings: Settings = crate::settings::parse(&config, &workdir.join("demo.toml"))
         .map_err(|e| DemoError::Scenario(format!("demo settings: {e}")))?;

@@ -12,6 +12,10 @@ use crate::settings::{CalibrationPreference, Settings};
 #[derive(Debug, Clone)]
 pub struct FileAnalysis {
     pub result: FrameResult,
+    /// The frame segmented again after flattening its background, when it was
+    /// flagged for uneven illumination and `[quality] on_uneven_illumination =
+    /// "flatten"` (see [`crate::qc::remedy`]).
+    pub flattened: Option<FrameResult>,
     pub pixel_size_source: Option<PixelSizeSource>,
 }
 
@@ -54,14 +58,25 @@ pub fn analyze_file(path: &Path, settings: &Settings) -> Result<FileAnalysis, Fi
         .copied()
         .zip(decoded.frames.iter().skip(1))
         .collect();
-    let result = analyze_frame(&decoded.frames[0], &extra, seg, pixel_size.map(|p| p.0)).map_err(
-        |source| FileError::Analysis {
-            path: path.display().to_string(),
-            source,
-        },
-    )?;
+    let analysis_error = |source| FileError::Analysis {
+        path: path.display().to_string(),
+        source,
+    };
+    let pixel_size_um = pixel_size.map(|p| p.0);
+    let result =
+        analyze_frame(&decoded.frames[0], &extra, seg, pixel_size_um).map_err(analysis_error)?;
+    let flattened = crate::qc::remedy::flattened(
+        &decoded.frames[0],
+        &extra,
+        seg,
+        &settings.quality,
+        &result,
+        pixel_size_um,
+    )
+    .map_err(analysis_error)?;
     Ok(FileAnalysis {
         result,
+        flattened,
         pixel_size_source: pixel_size.map(|p| p.1),
     })
 }

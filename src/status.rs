@@ -24,6 +24,7 @@ pub struct StatusReport {
     /// Complete files queued or being analysed.
     pub frames_pending: u64,
     pub frames_failed: u64,
+    /// Objects in done frames (the flattened count where the remedy ran).
     pub objects_total: u64,
     /// Done frames per minute between the first and the last analysis of the run.
     pub frames_per_minute: Option<f64>,
@@ -134,7 +135,7 @@ fn query(conn: &Connection, db: &Path, recent: usize) -> rusqlite::Result<Status
     let (seen, done, pending, failed, objects, first_ms, last_ms): (i64, i64, i64, i64, i64, Option<i64>, Option<i64>) =
         conn.query_row(
             "SELECT count(*), total(status = 'done'), total(status = 'queued'), total(status = 'failed'),
-                    total(CASE WHEN status = 'done' THEN object_count END),
+                    total(CASE WHEN status = 'done' THEN COALESCE(flat_object_count, object_count) END),
                     min(CASE WHEN status = 'done' THEN analysed_at_ms END), max(analysed_at_ms)
              FROM frames WHERE run_id = ?1",
             [run_id],

@@ -1,7 +1,7 @@
 //! Quality control end to end on the real binary: `framewarden watch` records a
 //! small night with a dimming lamp, an unevenly lit frame and a broken file;
 //! `framewarden status --json` shows the alert (opened, then recovered), the
-//! flags with their evidence and the failure; the alert file sink gets the
+//! flags with their evidence (and the flattening remedy) and the failure; the alert file sink gets the
 //! events; a restart mid-run is itself an alert.
 
 // Shared with the watch tests; not every helper is used here.
@@ -72,7 +72,7 @@ fn feed(bench: &Bench, names_specs: &[(String, SceneSpec)], done_before: usize) 
 fn status_shows_a_drift_alert_its_recovery_the_flags_and_failures() {
     let mut bench = Bench::new(concat!(
         "name_pattern = '^(?P<well>[A-Z]\\d{2})_t(?P<time_point>\\d+)\\.tif$'\n",
-        "[quality]\nbaseline_frames = 4\nrecover_frames = 3\n",
+        "[quality]\nbaseline_frames = 4\nrecover_frames = 3\non_uneven_illumination = \"flatten\"\n",
         "[alerts]\nfile = \"alerts.jsonl\"\n",
     ));
     bench.start();
@@ -129,10 +129,13 @@ fn status_shows_a_drift_alert_its_recovery_the_flags_and_failures() {
         u["value"].as_f64().unwrap() > u["limit"].as_f64().unwrap(),
         "{u}"
     );
-    assert!(u["message"]
-        .as_str()
-        .unwrap()
-        .contains("uneven illumination"));
+    let sentence = u["message"].as_str().unwrap();
+    assert!(sentence.contains("uneven illumination"), "{sentence}");
+    // The remedy ran: both results kept, the sentence says which count is used.
+    assert!(
+        sentence.contains("the count is taken from the flattened result"),
+        "{sentence}"
+    );
     let failed = flags_of("C01_t0000.tif");
     assert_eq!(failed[0]["flag"], "failed");
     assert!(failed[0]["value"].is_null() && failed[0]["limit"].is_null());

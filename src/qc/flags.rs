@@ -135,7 +135,7 @@ pub fn frame_flags(m: &FrameMetrics, limits: &FlagLimits, ctx: &PositionContext)
             ),
         );
     }
-    if m.illumination_change > limits.max_illumination_change {
+    if is_uneven(m.illumination_change, limits) {
         flag(
             FlagKind::UnevenIllumination,
             m.illumination_change,
@@ -208,6 +208,12 @@ pub fn frame_flags(m: &FrameMetrics, limits: &FlagLimits, ctx: &PositionContext)
         }
     }
     flags
+}
+
+/// Whether a frame's illumination change is beyond its limit (the flag, and
+/// the trigger of the flattening remedy).
+pub fn is_uneven(illumination_change: f64, limits: &FlagLimits) -> bool {
+    illumination_change > limits.max_illumination_change
 }
 
 /// A number for a sentence: about four significant digits, no exponent for

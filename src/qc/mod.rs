@@ -10,5 +10,6 @@ pub mod drift;
 pub mod flags;
 pub mod monitor;
 pub mod record;
+pub mod remedy;
 pub mod report;
 pub mod sinks;

@@ -8,10 +8,10 @@
 
 use rusqlite::{params, Connection, OptionalExtension, Transaction};
 
-use crate::analysis::FrameResult;
+use crate::pipeline::FileAnalysis;
 use crate::qc::alerts::{AlertEvent, AlertState};
 use crate::qc::config::{AlertSettings, QualitySettings};
-use crate::qc::flags::FrameMetrics;
+use crate::qc::flags::{num, FlagKind, FrameMetrics};
 use crate::qc::monitor::RunMonitor;
 use crate::qc::sinks::AlertDispatcher;
 use crate::settings::Settings;
@@ -85,7 +85,10 @@ impl QcRecorder {
         Ok(recorder)
     }
 
-    /// Judges a frame just recorded as done (`frame_id`) in the writer's transaction.
+    /// Judges a frame just recorded as done (`frame_id`) in the writer's
+    /// transaction. Flags and charts use the first (unflattened) result, so the
+    /// run's metrics stay comparable; a flattened second result is stored beside
+    /// it and becomes the frame's count.
     ///
     /// # Errors
     /// SQLite errors.
@@ -93,14 +96,33 @@ impl QcRecorder {
         &mut self,
         tx: &Transaction<'_>,
         frame_id: i64,
-        result: &FrameResult,
+        analysis: &FileAnalysis,
     ) -> rusqlite::Result<()> {
         let (run_id, path, position) = frame_row(tx, frame_id)?;
         self.switch_run(run_id);
         let at_ms = now_ms();
-        let verdict = self
-            .monitor
-            .observe(&position, &path, at_ms, &FrameMetrics::from(result));
+        let result = &analysis.result;
+        let mut verdict =
+            self.monitor
+                .observe(&position, &path, at_ms, &FrameMetrics::from(result));
+        if let Some(flat) = &analysis.flattened {
+            tx.prepare_cached(
+                "UPDATE frames SET flat_threshold = ?2, flat_object_count = ?3, count_source = 'flattened' WHERE id = ?1",
+            )?
+            .execute(params![frame_id, flat.threshold, flat.object_count as i64])?;
+            for f in verdict
+                .flags
+                .iter_mut()
+                .filter(|f| f.kind == FlagKind::UnevenIllumination)
+            {
+                f.message.push_str(&format!(
+                    "; segmented again after flattening the background: {} objects (threshold {}) against {} without; the count is taken from the flattened result",
+                    flat.object_count,
+                    num(flat.threshold),
+                    result.object_count
+                ));
+            }
+        }
         let mut insert = tx.prepare_cached(
             "INSERT INTO flags (frame_id, kind, value, limit_value, message) VALUES (?1, ?2, ?3, ?4, ?5)",
         )?;

@@ -244,7 +244,7 @@ impl WriterState {
                 } => {
                     let frame_id = record_done(&tx, key, *attempts, analysis)?;
                     if let (Some(qc), Some(id)) = (self.qc.as_mut(), frame_id) {
-                        qc.frame_done(&tx, id, &analysis.result)?;
+                        qc.frame_done(&tx, id, analysis)?;
                     }
                 }
                 StoreOp::Failed {
@@ -545,6 +545,7 @@ mod tests {
                 objects,
             },
             pixel_size_source: None,
+            flattened: None,
         })
     }
 
