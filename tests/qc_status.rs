@@ -186,3 +186,46 @@ fn status_shows_a_drift_alert_its_recovery_the_flags_and_failures() {
     bench.signal("TERM");
     assert_eq!(bench.wait_exit(Duration::from_secs(60)), Some(0));
 }
+
+#[test]
+fn low_free_space_on_a_watched_volume_raises_an_alert() {
+    // A limit no disk meets (about 10^12 MiB): the idle writer's periodic check
+    // must open one alert per watched volume and say how much is free.
+    let mut bench = Bench::new("[quality]\nmin_free_space_mib = 1000000000000\n");
+    bench.start();
+    let mut status = serde_json::Value::Null;
+    for _ in 0..300 {
+        status = status_json(&bench);
+        let low = status["alerts"].as_array().unwrap().iter().any(|a| {
+            a["condition"]
+                .as_str()
+                .unwrap()
+                .starts_with("low_disk_space:")
+        });
+        if low {
+            break;
+        }
+        std::thread::sleep(Duration::from_millis(100));
+    }
+    let low: Vec<&serde_json::Value> = status["alerts"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .filter(|a| {
+            a["condition"]
+                .as_str()
+                .unwrap()
+                .starts_with("low_disk_space:")
+        })
+        .collect();
+    assert!(!low.is_empty(), "{status:#}");
+    let watched = format!("low_disk_space:{}", bench.acq.display());
+    assert!(
+        low.iter().any(|a| a["condition"] == watched.as_str()),
+        "{status:#}"
+    );
+    assert!(low[0]["closed_at"].is_null());
+    assert!(low[0]["message"].as_str().unwrap().contains("MiB free"));
+    bench.signal("TERM");
+    assert_eq!(bench.wait_exit(Duration::from_secs(60)), Some(0));
+}

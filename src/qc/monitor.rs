@@ -255,3 +255,90 @@ fn minutes(ms: i64) -> String {
         format!("{} min", ms / 60_000)
     }
 }
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::qc::alerts::AlertState;
+
+    fn frame() -> FrameMetrics {
+        FrameMetrics {
+            otsu_based: true,
+            threshold: 8000.0,
+            separability: 0.9,
+            object_count: 40,
+            foreground_fraction: 0.05,
+            background_level: 6500.0,
+            saturation_fraction: 0.0,
+            focus: 1.0e7,
+            illumination_change: 0.02,
+        }
+    }
+
+    #[test]
+    fn failure_rate_limit_on_both_sides_one_episode() {
+        // Window 50, limit 20%: 10 failures in 50 is at the limit, 11 beyond.
+        let mut m = RunMonitor::new(QualitySettings::default());
+        let mut events = Vec::new();
+        for i in 0..40 {
+            events.extend(m.observe("", &format!("ok{i}"), i, &frame()).events);
+        }
+        for i in 40..50 {
+            events.extend(m.observe_failure(&format!("bad{i}"), i));
+        }
+        assert!(events.is_empty(), "10 of 50 is not above 20%: {events:?}");
+        let opened = m.observe_failure("bad50", 50);
+        assert_eq!(opened.len(), 1);
+        assert_eq!(
+            (opened[0].condition.as_str(), opened[0].state),
+            (FAILURE_RATE, AlertState::Opened)
+        );
+        assert!(
+            opened[0].message.starts_with("11 of the last 50"),
+            "{}",
+            opened[0].message
+        );
+        // Good frames push the failures out of the window: one recovery.
+        let recovered: Vec<AlertEvent> = (51..120)
+            .flat_map(|i| m.observe("", "ok", i, &frame()).events)
+            .collect();
+        assert_eq!(recovered.len(), 1, "{recovered:?}");
+        assert_eq!(recovered[0].state, AlertState::Recovered);
+    }
+
+    #[test]
+    fn free_space_limit_on_both_sides() {
+        let mut m = RunMonitor::new(QualitySettings::default());
+        let limit = QualitySettings::default().min_free_space_bytes;
+        assert_eq!(m.check_free_space("/data", limit, 0), None, "at the limit");
+        let low = m.check_free_space("/data", limit - 1, 1).unwrap();
+        assert_eq!(
+            (low.condition.as_str(), low.state),
+            ("low_disk_space:/data", AlertState::Opened)
+        );
+        assert_eq!(
+            m.check_free_space("/data", limit - 1, 2),
+            None,
+            "still the same episode"
+        );
+        let back = m.check_free_space("/data", limit, 3).unwrap();
+        assert_eq!(back.state, AlertState::Recovered);
+    }
+
+    #[test]
+    fn no_stall_before_the_first_frame_and_the_limit_on_both_sides() {
+        let mut m = RunMonitor::new(QualitySettings::default());
+        let limit_ms = QualitySettings::default().stall_after.as_millis() as i64;
+        assert_eq!(
+            m.check_stall(10 * limit_ms),
+            None,
+            "no frame yet: not active"
+        );
+        m.observe("", "a.tif", 0, &frame());
+        assert_eq!(m.check_stall(limit_ms), None, "exactly at the limit");
+        assert_eq!(
+            m.check_stall(limit_ms + 1).map(|e| e.state),
+            Some(AlertState::Opened)
+        );
+    }
+}

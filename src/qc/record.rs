@@ -6,6 +6,8 @@
 //! [`crate::qc::monitor`]'s, the delivery [`crate::qc::sinks`]'s. A restart
 //! mid-run rebuilds the monitor from the run's rows, so baselines survive it.
 
+use std::path::{Path, PathBuf};
+
 use rusqlite::{params, Connection, OptionalExtension, Transaction};
 
 use crate::pipeline::FileAnalysis;
@@ -30,13 +32,24 @@ pub const SERVICE_RESTARTED: &str = "service_restarted";
 pub struct QcSetup {
     pub quality: QualitySettings,
     pub alerts: AlertSettings,
+    /// Folders whose volumes' free space is watched (watched folders, database folder).
+    pub volumes: Vec<PathBuf>,
 }
 
 impl QcSetup {
     pub fn from_settings(settings: &Settings) -> QcSetup {
+        let database_folder = settings
+            .store
+            .database
+            .parent()
+            .filter(|p| !p.as_os_str().is_empty())
+            .map_or_else(|| PathBuf::from("."), Path::to_path_buf);
+        let mut volumes = settings.watch.folders.clone();
+        volumes.push(database_folder);
         QcSetup {
             quality: settings.quality.clone(),
             alerts: settings.alerts.clone(),
+            volumes,
         }
     }
 }
@@ -167,13 +180,22 @@ impl QcRecorder {
         Ok(())
     }
 
-    /// Periodic checks that need no frame: the stall.
+    /// Periodic checks that need no frame: the stall, and free space on the
+    /// watched and database volumes.
     ///
     /// # Errors
     /// SQLite errors.
     pub fn tick(&mut self, conn: &Connection) -> rusqlite::Result<()> {
-        if let Some(event) = self.monitor.check_stall(now_ms()) {
-            self.store_event(conn, &event, None)?;
+        let now = now_ms();
+        let mut events: Vec<AlertEvent> = self.monitor.check_stall(now).into_iter().collect();
+        for volume in &self.setup.volumes {
+            if let Some(free) = free_bytes(volume) {
+                let name = volume.display().to_string();
+                events.extend(self.monitor.check_free_space(&name, free, now));
+            }
+        }
+        for event in &events {
+            self.store_event(conn, event, None)?;
         }
         Ok(())
     }
@@ -293,6 +315,26 @@ impl QcRecorder {
         }
         Ok(n)
     }
+}
+
+/// Bytes available to an unprivileged writer on the volume holding `path`
+/// (`statvfs`: f_bavail × f_frsize); `None` where it cannot be asked.
+#[cfg(unix)]
+// The field types are u64 on 64-bit Linux but narrower elsewhere.
+#[allow(clippy::useless_conversion)]
+fn free_bytes(path: &Path) -> Option<u64> {
+    use std::os::unix::ffi::OsStrExt;
+    let c_path = std::ffi::CString::new(path.as_os_str().as_bytes()).ok()?;
+    // SAFETY: a zeroed statvfs is a valid out-parameter, and c_path is a valid
+    // NUL-terminated string that outlives the call.
+    let mut stat: libc::statvfs = unsafe { std::mem::zeroed() };
+    let rc = unsafe { libc::statvfs(c_path.as_ptr(), &mut stat) };
+    (rc == 0).then(|| u64::from(stat.f_bavail).saturating_mul(u64::from(stat.f_frsize)))
+}
+
+#[cfg(not(unix))]
+fn free_bytes(_path: &Path) -> Option<u64> {
+    None
 }
 
 /// The run, path and position of a frame row.
