@@ -1,8 +1,9 @@
 //! Quality control end to end on the real binary: `framewarden watch` records a
 //! small night with a dimming lamp, an unevenly lit frame and a broken file;
 //! `framewarden status --json` shows the alert (opened, then recovered), the
-//! flags with their evidence (and the flattening remedy) and the failure; the alert file sink gets the
-//! events; a restart mid-run is itself an alert.
+//! flags with their evidence (and the flattening remedy) and the failure; the
+//! alert file sink gets the events; a restart mid-run is itself an alert; a
+//! volume below the free-space limit opens an alert.
 
 // Shared with the watch tests; not every helper is used here.
 #[allow(dead_code)]
