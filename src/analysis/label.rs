@@ -64,17 +64,16 @@ impl UnionFind {
 /// use framewarden::analysis::label::label;
 /// // A ring with a hole, and a diagonal pair: 8-connected, filled.
 /// let img: Vec<u16> = vec![
-///     9, 9, 9, 0, 0,
-///     9, 0, 9, 0, 0,
-///     9, 9, 9, 0, 9,
-///     0, 0, 0, 9, 0,
+///     9, 9, 9, 0, 0, 0,
+///     9, 0, 9, 0, 0, 9,
+///     9, 9, 9, 0, 9, 0,
 /// ];
-/// let c = label(&img, 5, 4, 0, 8, true);
+/// let c = label(&img, 6, 3, 0, 8, true);
 /// assert_eq!(c.count, 2); // the ring (9 px once filled) and the diagonal pair
 /// let area0: u32 = c.runs.iter().zip(&c.component).filter(|(_, &k)| k == 0).map(|(r, _)| r.x1 - r.x0).sum();
 /// assert_eq!(area0, 9);
 /// // 4-connected: the pair splits in two.
-/// assert_eq!(label(&img, 5, 4, 0, 4, true).count, 3);
+/// assert_eq!(label(&img, 6, 3, 0, 4, true).count, 3);
 /// ```
 pub fn label(
     pixels: &[u16],

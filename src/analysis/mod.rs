@@ -113,7 +113,7 @@ pub enum AnalysisError {
 /// let f = Frame::from_rows_u8(&[
 ///     &[10, 10, 10, 10, 10, 10],
 ///     &[10, 200, 200, 10, 10, 10],
-///     &[10, 200, 200, 10, 90, 10],
+///     &[10, 200, 200, 10, 150, 10],
 ///     &[10, 10, 10, 10, 10, 10],
 /// ]);
 /// let r = analyze_frame(&f, &[], &SegmentSettings::default(), None).unwrap();
