@@ -32,7 +32,7 @@ fn options() -> Options {
         size: 2048,
         workers: std::thread::available_parallelism().map_or(1, |n| n.get()),
         settle_ms: 100,
-        baseline_frames: 100,
+        baseline_frames: 400,
     };
     let args: Vec<String> = std::env::args().skip(1).collect();
     let mut i = 0;
