@@ -242,12 +242,9 @@ pub fn failure_flag(reason: &str) -> FrameFlag {
 }
 
 #[cfg(test)]
-mod tests {
-    use super::*;
-    use crate::qc::config::QualitySettings;
-
-    /// A frame that passes every check.
-    fn good() -> FrameMetrics {
+impl FrameMetrics {
+    /// A frame that passes every check with the default limits (for tests).
+    pub(crate) fn passing_example() -> Self {
         FrameMetrics {
             otsu_based: true,
             threshold: 8000.0,
@@ -259,6 +256,16 @@ mod tests {
             focus: 1.0e7,
             illumination_change: 0.02,
         }
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::qc::config::QualitySettings;
+
+    fn good() -> FrameMetrics {
+        FrameMetrics::passing_example()
     }
 
     fn context() -> PositionContext {

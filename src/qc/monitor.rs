@@ -262,17 +262,7 @@ mod tests {
     use crate::qc::alerts::AlertState;
 
     fn frame() -> FrameMetrics {
-        FrameMetrics {
-            otsu_based: true,
-            threshold: 8000.0,
-            separability: 0.9,
-            object_count: 40,
-            foreground_fraction: 0.05,
-            background_level: 6500.0,
-            saturation_fraction: 0.0,
-            focus: 1.0e7,
-            illumination_change: 0.02,
-        }
+        FrameMetrics::passing_example()
     }
 
     #[test]
