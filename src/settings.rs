@@ -546,6 +546,11 @@ mod example_config {
             format!("{:?}", example.segment),
             format!("{:?}", empty.segment)
         );
+        // The raw defaults and the validated defaults are written twice; keep them equal.
+        assert_eq!(
+            format!("{:?}", empty.segment),
+            format!("{:?}", super::SegmentSettings::default())
+        );
         assert_eq!(
             format!("{:?}", example.calibration),
             format!("{:?}", empty.calibration)
