@@ -9,27 +9,24 @@ use std::future::Future;
 use crate::settings::Settings;
 use crate::watch::{Service, WatchError, WatchOptions, WatchSummary};
 
-/// Completes on SIGINT (Ctrl-C) or SIGTERM (systemd's stop).
+/// Installs SIGINT (Ctrl-C) and SIGTERM (systemd's stop) handlers now, and
+/// returns a future that completes on the first of them. Installing before the
+/// service starts leaves no window in which a signal would kill the process
+/// without a clean stop. Must be called inside a tokio runtime.
 ///
-/// # Panics
-/// When the signal handlers cannot be installed (no runtime signal driver),
-/// which only happens outside a tokio runtime with signals enabled.
-pub async fn stop_signal() {
-    #[cfg(unix)]
-    {
-        use tokio::signal::unix::{signal, SignalKind};
-        // Installing a handler fails only without a signal driver, which the
-        // runtime built in `watch_until_signal` always has.
-        let mut term = signal(SignalKind::terminate()).expect("SIGTERM handler");
+/// # Errors
+/// When a handler cannot be installed.
+#[cfg(unix)]
+pub fn stop_signal() -> std::io::Result<impl Future<Output = ()>> {
+    use tokio::signal::unix::{signal, SignalKind};
+    let mut interrupt = signal(SignalKind::interrupt())?;
+    let mut terminate = signal(SignalKind::terminate())?;
+    Ok(async move {
         tokio::select! {
-            _ = tokio::signal::ctrl_c() => tracing::info!("interrupted (SIGINT)"),
-            _ = term.recv() => tracing::info!("terminated (SIGTERM)"),
+            _ = interrupt.recv() => tracing::info!("interrupted (SIGINT)"),
+            _ = terminate.recv() => tracing::info!("terminated (SIGTERM)"),
         }
-    }
-    #[cfg(not(unix))]
-    {
-        let _ = tokio::signal::ctrl_c().await;
-    }
+    })
 }
 
 /// Runs `watch` until SIGINT/SIGTERM: builds the runtime, starts the service,
@@ -46,7 +43,11 @@ pub fn watch_until_signal(
         .enable_all()
         .build()
         .map_err(|e| WatchError::Start(format!("async runtime: {e}")))?;
-    runtime.block_on(watch_with_systemd(settings, options, stop_signal()))
+    let shutdown = {
+        let _context = runtime.enter();
+        stop_signal().map_err(|e| WatchError::Start(format!("signal handlers: {e}")))?
+    };
+    runtime.block_on(watch_with_systemd(settings, options, shutdown))
 }
 
 async fn watch_with_systemd(

@@ -97,10 +97,22 @@ impl Bench {
             .spawn()
             .expect("the framewarden binary starts");
         self.child = Some(child);
-        // Ready when the database exists (the writer has opened it).
-        wait_for("the database to appear", Duration::from_secs(30), || {
-            self.db.exists()
-        });
+        // Ready when this start has logged that it is watching: the store is
+        // migrated, the signal handlers and the watcher are in place.
+        let log = self.dir.path().join(format!("watch-{}.log", self.starts));
+        wait_for(
+            "the service to start watching",
+            Duration::from_secs(30),
+            || {
+                let exited = self.child.as_mut().and_then(|c| c.try_wait().unwrap());
+                assert!(
+                    exited.is_none(),
+                    "watch exited at start ({exited:?}); logs:\n{}",
+                    self.logs()
+                );
+                std::fs::read_to_string(&log).is_ok_and(|text| text.contains(" watching "))
+            },
+        );
     }
 
     /// Sends a signal by name (`TERM`, `INT`, `KILL`) with the system's `kill`.
