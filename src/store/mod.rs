@@ -165,17 +165,7 @@ pub fn open_read_only(path: &Path) -> Result<Connection, StoreError> {
     .map_err(StoreError::sqlite(path))?;
     conn.busy_timeout(Duration::from_secs(10))
         .map_err(StoreError::sqlite(path))?;
-    let app_id: i32 = conn
-        .pragma_query_value(None, "application_id", |r| r.get(0))
-        .map_err(|e| match e {
-            rusqlite::Error::SqliteFailure(f, _) if f.code == rusqlite::ErrorCode::NotADatabase => {
-                StoreError::Foreign(path.to_path_buf())
-            }
-            other => StoreError::Sqlite {
-                path: path.to_path_buf(),
-                source: other,
-            },
-        })?;
+    let app_id = application_id(&conn, path)?;
     if app_id != APPLICATION_ID {
         return Err(StoreError::Foreign(path.to_path_buf()));
     }
@@ -191,12 +181,9 @@ pub fn open_read_only(path: &Path) -> Result<Connection, StoreError> {
     Ok(conn)
 }
 
-fn migrate(conn: &mut Connection, path: &Path) -> Result<(), StoreError> {
-    let tx = conn
-        .transaction_with_behavior(rusqlite::TransactionBehavior::Immediate)
-        .map_err(StoreError::sqlite(path))?;
-    let app_id: i32 = tx
-        .pragma_query_value(None, "application_id", |r| r.get(0))
+/// The file's `application_id`; a file that is not SQLite at all is foreign.
+fn application_id(conn: &Connection, path: &Path) -> Result<i32, StoreError> {
+    conn.pragma_query_value(None, "application_id", |r| r.get(0))
         .map_err(|e| match e {
             rusqlite::Error::SqliteFailure(f, _) if f.code == rusqlite::ErrorCode::NotADatabase => {
                 StoreError::Foreign(path.to_path_buf())
@@ -205,7 +192,14 @@ fn migrate(conn: &mut Connection, path: &Path) -> Result<(), StoreError> {
                 path: path.to_path_buf(),
                 source: other,
             },
-        })?;
+        })
+}
+
+fn migrate(conn: &mut Connection, path: &Path) -> Result<(), StoreError> {
+    let tx = conn
+        .transaction_with_behavior(rusqlite::TransactionBehavior::Immediate)
+        .map_err(StoreError::sqlite(path))?;
+    let app_id = application_id(&tx, path)?;
     let version: i32 = tx
         .pragma_query_value(None, "user_version", |r| r.get(0))
         .map_err(StoreError::sqlite(path))?;
