@@ -123,5 +123,5 @@ fn corrections_and_quality_match_scipy_and_numpy() {
             }
         }
     }
-    assert!(failures.is_empty(), "{}", failures.join("\n"));
+    common::check(failures, "corrections and quality against SciPy and numpy");
 }

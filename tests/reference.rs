@@ -13,6 +13,8 @@ use std::sync::OnceLock;
 
 mod common;
 
+use common::check;
+
 use framewarden::analysis::threshold::{li, multi_otsu, otsu, separability, triangle, Histogram};
 use framewarden::analysis::{analyze_frame, FrameResult};
 use framewarden::decode::{read_page, DecodeLimits};
@@ -145,15 +147,6 @@ fn decoded() -> impl Iterator<Item = (&'static Case, &'static Frame)> {
         .cases
         .iter()
         .filter_map(|c| c.frame.as_ref().ok().map(|f| (c, f)))
-}
-
-fn check(failures: Vec<String>, what: &str) {
-    assert!(
-        failures.is_empty(),
-        "{what}: {} mismatch(es)\n{}",
-        failures.len(),
-        failures.join("\n")
-    );
 }
 
 fn close(got: f64, want: f64, rel: f64) -> bool {

@@ -19,6 +19,8 @@ use std::sync::OnceLock;
 
 mod common;
 
+use common::check;
+
 use framewarden::analysis::{analyze_frame, FrameResult};
 use framewarden::decode::{read_page, DecodeLimits};
 use framewarden::frame::Frame;
@@ -157,15 +159,6 @@ fn run_generator(out: &Path) -> Document {
     let text =
         std::fs::read_to_string(&json).unwrap_or_else(|e| panic!("read {}: {e}", json.display()));
     serde_json::from_str(&text).expect("edge_references.json has the expected shape")
-}
-
-fn check(failures: Vec<String>, what: &str) {
-    assert!(
-        failures.is_empty(),
-        "{what}: {} mismatch(es)\n{}",
-        failures.len(),
-        failures.join("\n")
-    );
 }
 
 /// Compares one reference value with ours: integers exactly, other numbers

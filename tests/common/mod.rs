@@ -26,3 +26,13 @@ pub fn run_reference_script(script: &str, out: &Path) {
         String::from_utf8_lossy(&output.stderr)
     );
 }
+
+/// Fails with every mismatch listed, after a check has looked at all cases.
+pub fn check(failures: Vec<String>, what: &str) {
+    assert!(
+        failures.is_empty(),
+        "{what}: {} mismatch(es)\n{}",
+        failures.len(),
+        failures.join("\n")
+    );
+}
