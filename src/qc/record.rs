@@ -60,6 +60,16 @@ pub struct QcRecorder {
     run_id: i64,
     monitor: RunMonitor,
     dispatcher: AlertDispatcher,
+    /// Events stored in the writer's open transaction, announced (logged and
+    /// sent to the sinks) only once it commits.
+    pending: Vec<AlertEvent>,
+}
+
+/// The monitor's state before a transaction, restored if the transaction fails,
+/// so a retried batch is judged once.
+pub struct QcCheckpoint {
+    run_id: i64,
+    monitor: RunMonitor,
 }
 
 impl QcRecorder {
@@ -76,6 +86,7 @@ impl QcRecorder {
             setup,
             run_id,
             dispatcher,
+            pending: Vec::new(),
         };
         let replayed = recorder.replay(conn)?;
         if replayed > 0 {
@@ -197,7 +208,31 @@ impl QcRecorder {
         for event in &events {
             self.store_event(conn, event, None)?;
         }
+        // Outside a transaction each statement is already committed.
+        self.committed();
         Ok(())
+    }
+
+    /// The state to restore if the transaction about to start fails.
+    pub fn checkpoint(&self) -> QcCheckpoint {
+        QcCheckpoint {
+            run_id: self.run_id,
+            monitor: self.monitor.clone(),
+        }
+    }
+
+    /// The writer's transaction committed: announce what it stored.
+    pub fn committed(&mut self) {
+        for event in std::mem::take(&mut self.pending) {
+            self.announce(&event);
+        }
+    }
+
+    /// The writer's transaction failed: forget its events and judgements.
+    pub fn rolled_back(&mut self, checkpoint: QcCheckpoint) {
+        self.pending.clear();
+        self.run_id = checkpoint.run_id;
+        self.monitor = checkpoint.monitor;
     }
 
     /// Waits for the sinks to deliver what is queued.
@@ -214,7 +249,7 @@ impl QcRecorder {
     }
 
     fn store_event(
-        &self,
+        &mut self,
         conn: &Connection,
         event: &AlertEvent,
         frame_id: Option<i64>,
@@ -246,7 +281,7 @@ impl QcRecorder {
                 ])?;
             }
         }
-        self.announce(event);
+        self.pending.push(event.clone());
         Ok(())
     }
 
@@ -343,4 +378,78 @@ fn frame_row(conn: &Connection, frame_id: i64) -> rusqlite::Result<(i64, String,
         "SELECT run_id, path, {POSITION_SQL} FROM frames WHERE id = ?1"
     ))?
     .query_row([frame_id], |r| Ok((r.get(0)?, r.get(1)?, r.get(2)?)))
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::settings;
+
+    /// Judges the failed frames inside a transaction, as the writer does.
+    fn judge<'c>(
+        recorder: &mut QcRecorder,
+        conn: &'c mut Connection,
+        keys: &[FrameKey],
+    ) -> Transaction<'c> {
+        let tx = conn.transaction().unwrap();
+        for k in keys {
+            recorder.frame_failed(&tx, k).unwrap();
+        }
+        tx
+    }
+
+    /// A batch the writer has to retry is judged once: the first, rolled-back
+    /// attempt neither stores nor announces its alert, the committed retry does
+    /// both, exactly once (real SQLite, real JSON-lines sink).
+    #[test]
+    fn a_rolled_back_batch_is_judged_once_and_announced_after_commit() {
+        let dir = tempfile::tempdir().unwrap();
+        let config = dir.path().join("c.toml");
+        let text = "[quality]\nfailure_window = 4\nmax_failure_fraction = 0.2\n[alerts]\nfile = \"alerts.jsonl\"\n";
+        let settings = settings::parse(text, &config).unwrap();
+        let mut conn = crate::store::open_for_writing(&dir.path().join("fw.db")).unwrap();
+        conn.execute(
+            "INSERT INTO runs (id, folders, started_at_ms, last_frame_at_ms, settings) VALUES (1, '[]', 0, 0, '{}')",
+            [],
+        )
+        .unwrap();
+        let mut setup = QcSetup::from_settings(&settings);
+        setup.volumes.clear();
+        let mut recorder = QcRecorder::start(&conn, 1, setup).unwrap();
+        let keys: Vec<FrameKey> = (0..4)
+            .map(|i| FrameKey {
+                path: format!("/acq/f{i}.tif"),
+                size_bytes: 10,
+                mtime_ns: i,
+            })
+            .collect();
+        for k in &keys {
+            conn.execute(
+                "INSERT INTO frames (run_id, path, size_bytes, mtime_ns, version, status, error, detected_at_ms, ready_at_ms)
+                 VALUES (1, ?1, ?2, ?3, 1, 'failed', 'bad', 0, 0)",
+                params![k.path, k.size_bytes as i64, k.mtime_ns],
+            )
+            .unwrap();
+        }
+        let checkpoint = recorder.checkpoint();
+        drop(judge(&mut recorder, &mut conn, &keys)); // the commit failed: rolled back
+        recorder.rolled_back(checkpoint);
+        judge(&mut recorder, &mut conn, &keys).commit().unwrap();
+        recorder.committed();
+        recorder.close();
+        let stored: i64 = conn
+            .query_row(
+                "SELECT COUNT(*) FROM alerts WHERE kind = 'failure_rate'",
+                [],
+                |r| r.get(0),
+            )
+            .unwrap();
+        assert_eq!(stored, 1, "the retried batch opens the alert once");
+        let lines = std::fs::read_to_string(dir.path().join("alerts.jsonl")).unwrap();
+        assert_eq!(
+            lines.lines().filter(|l| l.contains("failure_rate")).count(),
+            1,
+            "{lines}"
+        );
+    }
 }

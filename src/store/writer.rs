@@ -199,7 +199,15 @@ impl WriterState {
     fn commit_with_retry(&mut self, batch: &[StoreOp]) {
         const ATTEMPTS: u32 = 5;
         for attempt in 1..=ATTEMPTS {
-            match self.commit(batch) {
+            let checkpoint = self.qc.as_ref().map(QcRecorder::checkpoint);
+            let result = self.commit(batch);
+            if let (Some(qc), Some(checkpoint)) = (self.qc.as_mut(), checkpoint) {
+                match result {
+                    Ok(()) => qc.committed(),
+                    Err(_) => qc.rolled_back(checkpoint),
+                }
+            }
+            match result {
                 Ok(()) => return,
                 Err(e) if attempt < ATTEMPTS => {
                     tracing::warn!(
