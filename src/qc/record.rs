@@ -63,6 +63,17 @@ pub struct QcRecorder {
     /// Events stored in the writer's open transaction, announced (logged and
     /// sent to the sinks) only once it commits.
     pending: Vec<AlertEvent>,
+    /// The per-frame log lines of the open transaction, logged once it commits.
+    pending_lines: Vec<FrameLine>,
+}
+
+/// One frame's log line: what was recorded and how it was judged.
+struct FrameLine {
+    file: String,
+    objects: usize,
+    threshold: f64,
+    flags: String,
+    latency_ms: i64,
 }
 
 /// The monitor's state before a transaction, restored if the transaction fails,
@@ -87,6 +98,7 @@ impl QcRecorder {
             run_id,
             dispatcher,
             pending: Vec::new(),
+            pending_lines: Vec::new(),
         };
         let replayed = recorder.replay(conn)?;
         if replayed > 0 {
@@ -122,7 +134,7 @@ impl QcRecorder {
         frame_id: i64,
         analysis: &FileAnalysis,
     ) -> rusqlite::Result<()> {
-        let (run_id, path, position) = frame_row(tx, frame_id)?;
+        let (run_id, path, position, latency_ms) = frame_row(tx, frame_id)?;
         self.switch_run(run_id);
         let at_ms = now_ms();
         let result = &analysis.result;
@@ -164,6 +176,17 @@ impl QcRecorder {
         for event in &verdict.events {
             self.store_event(tx, event, Some(frame_id))?;
         }
+        let flags: Vec<&str> = verdict.flags.iter().map(|f| f.kind.as_str()).collect();
+        self.pending_lines.push(FrameLine {
+            file: path,
+            objects: analysis
+                .flattened
+                .as_ref()
+                .map_or(result.object_count, |f| f.object_count),
+            threshold: result.threshold,
+            flags: flags.join(","),
+            latency_ms: latency_ms.unwrap_or(0),
+        });
         Ok(())
     }
 
@@ -221,8 +244,19 @@ impl QcRecorder {
         }
     }
 
-    /// The writer's transaction committed: announce what it stored.
+    /// The writer's transaction committed: log each frame it recorded (one line
+    /// per frame at info level) and announce the alerts it stored.
     pub fn committed(&mut self) {
+        for line in self.pending_lines.drain(..) {
+            tracing::info!(
+                file = %line.file,
+                objects = line.objects,
+                threshold = line.threshold,
+                flags = %line.flags,
+                latency_ms = line.latency_ms,
+                "frame"
+            );
+        }
         for event in std::mem::take(&mut self.pending) {
             self.announce(&event);
         }
@@ -231,6 +265,7 @@ impl QcRecorder {
     /// The writer's transaction failed: forget its events and judgements.
     pub fn rolled_back(&mut self, checkpoint: QcCheckpoint) {
         self.pending.clear();
+        self.pending_lines.clear();
         self.run_id = checkpoint.run_id;
         self.monitor = checkpoint.monitor;
     }
@@ -373,11 +408,17 @@ fn free_bytes(_path: &Path) -> Option<u64> {
 }
 
 /// The run, path and position of a frame row.
-fn frame_row(conn: &Connection, frame_id: i64) -> rusqlite::Result<(i64, String, String)> {
+/// The run, path, position and latency (ready to recorded, ms) of a frame row.
+fn frame_row(
+    conn: &Connection,
+    frame_id: i64,
+) -> rusqlite::Result<(i64, String, String, Option<i64>)> {
     conn.prepare_cached(&format!(
-        "SELECT run_id, path, {POSITION_SQL} FROM frames WHERE id = ?1"
+        "SELECT run_id, path, {POSITION_SQL}, latency_ms FROM frames WHERE id = ?1"
     ))?
-    .query_row([frame_id], |r| Ok((r.get(0)?, r.get(1)?, r.get(2)?)))
+    .query_row([frame_id], |r| {
+        Ok((r.get(0)?, r.get(1)?, r.get(2)?, r.get(3)?))
+    })
 }
 
 #[cfg(test)]

@@ -333,15 +333,7 @@ impl Worker {
                     retry_or_fail(&job, limit, "the file changed while it was read".into())
                 }
                 Ok(Ok(analysis)) => {
-                    let r = &analysis.result;
-                    tracing::info!(
-                        file = %job.path.display(),
-                        objects = r.object_count,
-                        threshold = r.threshold,
-                        saturated = r.saturation_fraction,
-                        latency_ms = job.ready_at.elapsed().as_millis() as u64,
-                        "frame"
-                    );
+                    // The frame's log line is written once its row commits (qc::record).
                     self.progress.done.fetch_add(1, Ordering::Relaxed);
                     Next::Record(StoreOp::Done {
                         key: job.key.clone(),
