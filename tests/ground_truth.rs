@@ -289,3 +289,41 @@ fn counts_follow_a_growing_population_over_one_layout() {
         assert_eq!(otsu(&scene.frame).object_count, count);
     }
 }
+
+/// A frame of pure Gaussian noise has no objects, yet Otsu's separability stays
+/// near 2/π ≈ 0.64 (the between-class share of a normal split at its mean), above
+/// the usual 0.6 limit; Sarle's bimodality coefficient is near 1/3 for a normal
+/// histogram (published reference value) and exposes it. With objects, both are high.
+#[test]
+fn pure_noise_is_told_apart_by_the_bimodality_coefficient() {
+    let noise = generate(&SceneSpec {
+        object_count: 0,
+        noise_sigma: 0.02,
+        seed: 11,
+        ..SceneSpec::default()
+    })
+    .unwrap();
+    let r = otsu(&noise.frame);
+    assert!(
+        (r.separability - 2.0 / std::f64::consts::PI).abs() < 0.02,
+        "η = {}",
+        r.separability
+    );
+    assert!(
+        (r.bimodality - 1.0 / 3.0).abs() < 0.02,
+        "BC = {}",
+        r.bimodality
+    );
+    let cells = generate(&SceneSpec {
+        seed: 11,
+        ..SceneSpec::default()
+    })
+    .unwrap();
+    let r = otsu(&cells.frame);
+    assert!(
+        r.separability > 0.8 && r.bimodality > 5.0 / 9.0,
+        "η = {}, BC = {}",
+        r.separability,
+        r.bimodality
+    );
+}

@@ -3,7 +3,7 @@
 //! Gaussian smoothing vs `scipy.ndimage.gaussian_filter`, focus vs the variance
 //! of `scipy.ndimage.laplace`, background level vs `numpy.median`, saturation vs
 //! `numpy.mean`, the illumination surface vs `numpy.linalg.lstsq`, flat-field vs
-//! the formula in float64.
+//! the formula in float64, Sarle's bimodality coefficient vs `scipy.stats`.
 
 mod common;
 
@@ -11,7 +11,7 @@ use std::path::Path;
 
 use framewarden::analysis::correct::{gaussian, FlatField};
 use framewarden::analysis::quality::assess;
-use framewarden::analysis::threshold::{otsu, Histogram};
+use framewarden::analysis::threshold::{bimodality, otsu, Histogram};
 use framewarden::decode::{read_page, DecodeLimits};
 use serde::Deserialize;
 
@@ -31,6 +31,7 @@ struct Case {
     background_level: f64,
     saturation_fraction: f64,
     illumination_change: f64,
+    bimodality: f64,
     flat: Option<FlatRef>,
 }
 
@@ -78,6 +79,11 @@ fn corrections_and_quality_match_scipy_and_numpy() {
         let d = max_abs_diff(&smoothed.pixels, &want);
         if d > 1 {
             failures.push(format!("{}: gaussian differs by up to {d} levels", c.name));
+        }
+        // Sarle's coefficient from scipy.stats' bias-corrected skewness and kurtosis.
+        let bc = bimodality(&hist);
+        if rel(bc, c.bimodality) > 1e-9 {
+            failures.push(format!("{}: bimodality {bc} vs {}", c.name, c.bimodality));
         }
         let q = assess(&frame, &hist, None, c.threshold);
         // Integer sums here, float64 in numpy: agreement to 1e-9 relative.

@@ -29,6 +29,9 @@ pub struct FrameResult {
     /// Otsu's separability η = σ_B² / σ_T² at Otsu's threshold (Otsu 1979),
     /// reported whatever the method. 0 for a constant frame.
     pub separability: f64,
+    /// Sarle's bimodality coefficient of the segmented image's histogram
+    /// (5/9 for a flat histogram, higher for two modes); see [`threshold::bimodality`].
+    pub bimodality: f64,
     pub object_count: usize,
     /// Fraction of the frame covered by kept objects (after fill and filters).
     pub foreground_fraction: f64,
@@ -186,6 +189,7 @@ pub fn analyze_frame(
         method: settings.method.name().to_string(),
         threshold: f64::from(t),
         separability,
+        bimodality: threshold::bimodality(&seg_hist),
         object_count: objects.len(),
         foreground_fraction: kept_area as f64 / frame.len().max(1) as f64,
         background_level: q.background_level,

@@ -14,6 +14,7 @@ use serde::Deserialize;
 #[serde(deny_unknown_fields, default)]
 pub struct RawQuality {
     min_separability: f64,
+    min_bimodality: f64,
     min_foreground_fraction: f64,
     max_illumination_change: f64,
     max_saturation_fraction: f64,
@@ -40,6 +41,7 @@ impl Default for RawQuality {
     fn default() -> Self {
         Self {
             min_separability: 0.6,
+            min_bimodality: 5.0 / 9.0,
             min_foreground_fraction: 0.005,
             max_illumination_change: 0.25,
             max_saturation_fraction: 0.001,
@@ -94,6 +96,8 @@ impl Default for RawAlerts {
 #[derive(Debug, Clone, PartialEq)]
 pub struct FlagLimits {
     pub min_separability: f64,
+    /// Sarle's bimodality coefficient below this: the histogram looks unimodal.
+    pub min_bimodality: f64,
     pub min_foreground_fraction: f64,
     pub max_illumination_change: f64,
     pub max_saturation_fraction: f64,
@@ -212,6 +216,7 @@ pub fn validate(
         }
     };
     fraction("min_separability", q.min_separability)?;
+    fraction("min_bimodality", q.min_bimodality)?;
     fraction("min_foreground_fraction", q.min_foreground_fraction)?;
     fraction("max_saturation_fraction", q.max_saturation_fraction)?;
     fraction("min_focus_ratio", q.min_focus_ratio)?;
@@ -279,6 +284,7 @@ pub fn validate(
     let quality = QualitySettings {
         flags: FlagLimits {
             min_separability: q.min_separability,
+            min_bimodality: q.min_bimodality,
             min_foreground_fraction: q.min_foreground_fraction,
             max_illumination_change: q.max_illumination_change,
             max_saturation_fraction: q.max_saturation_fraction,

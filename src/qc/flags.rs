@@ -18,6 +18,8 @@ pub struct FrameMetrics {
     pub otsu_based: bool,
     pub threshold: f64,
     pub separability: f64,
+    /// Sarle's bimodality coefficient; NaN when unknown (never flags).
+    pub bimodality: f64,
     pub object_count: usize,
     pub foreground_fraction: f64,
     pub background_level: f64,
@@ -39,6 +41,7 @@ impl From<&FrameResult> for FrameMetrics {
             otsu_based: FrameMetrics::is_otsu_method(&r.method),
             threshold: r.threshold,
             separability: r.separability,
+            bimodality: r.bimodality,
             object_count: r.object_count,
             foreground_fraction: r.foreground_fraction,
             background_level: r.background_level,
@@ -54,6 +57,7 @@ impl From<&FrameResult> for FrameMetrics {
 #[serde(rename_all = "snake_case")]
 pub enum FlagKind {
     LowSeparability,
+    UnimodalHistogram,
     SmallForeground,
     UnevenIllumination,
     Saturated,
@@ -68,6 +72,7 @@ impl FlagKind {
     pub fn as_str(self) -> &'static str {
         match self {
             FlagKind::LowSeparability => "low_separability",
+            FlagKind::UnimodalHistogram => "unimodal_histogram",
             FlagKind::SmallForeground => "small_foreground",
             FlagKind::UnevenIllumination => "uneven_illumination",
             FlagKind::Saturated => "saturated",
@@ -119,6 +124,17 @@ pub fn frame_flags(m: &FrameMetrics, limits: &FlagLimits, ctx: &PositionContext)
             format!(
                 "histogram not bimodal enough for a global threshold: Otsu separability {:.2} is below {:.2}",
                 m.separability, limits.min_separability
+            ),
+        );
+    }
+    if m.bimodality < limits.min_bimodality {
+        flag(
+            FlagKind::UnimodalHistogram,
+            m.bimodality,
+            limits.min_bimodality,
+            format!(
+                "histogram looks unimodal: bimodality coefficient {:.2} is below {:.2} (a flat histogram scores 0.56, pure noise 0.33); the frame may hold no distinct objects",
+                m.bimodality, limits.min_bimodality
             ),
         );
     }
@@ -249,6 +265,7 @@ impl FrameMetrics {
             otsu_based: true,
             threshold: 8000.0,
             separability: 0.9,
+            bimodality: 0.9,
             object_count: 40,
             foreground_fraction: 0.05,
             background_level: 6500.0,
@@ -292,12 +309,18 @@ mod tests {
         let ctx = context();
         let eps = 1e-9;
         type Set = fn(&mut FrameMetrics, f64);
-        let cases: [(FlagKind, f64, f64, Set); 5] = [
+        let cases: [(FlagKind, f64, f64, Set); 6] = [
             (
                 FlagKind::LowSeparability,
                 l.min_separability,
                 -eps,
                 |m, v| m.separability = v,
+            ),
+            (
+                FlagKind::UnimodalHistogram,
+                l.min_bimodality,
+                -eps,
+                |m, v| m.bimodality = v,
             ),
             (
                 FlagKind::SmallForeground,

@@ -344,7 +344,7 @@ impl QcRecorder {
         let mut stmt = conn.prepare(&format!(
             "SELECT path, {POSITION_SQL}, analysed_at_ms, status,
                     method, threshold, separability, object_count, foreground_fraction,
-                    background_level, saturation_fraction, focus, illumination_change
+                    background_level, saturation_fraction, focus, illumination_change, bimodality
              FROM frames WHERE run_id = ?1 AND status IN ('done', 'failed') ORDER BY analysed_at_ms, id"
         ))?;
         let mut rows = stmt.query([self.run_id])?;
@@ -363,6 +363,8 @@ impl QcRecorder {
                     otsu_based: FrameMetrics::is_otsu_method(&method),
                     threshold: num(5)?,
                     separability: num(6)?,
+                    // Rows from before schema 3 have none: unknown, never flags.
+                    bimodality: r.get::<_, Option<f64>>(13)?.unwrap_or(f64::NAN),
                     object_count: r.get::<_, Option<i64>>(7)?.unwrap_or(0).max(0) as usize,
                     foreground_fraction: num(8)?,
                     background_level: num(9)?,

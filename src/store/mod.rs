@@ -18,7 +18,11 @@ pub const APPLICATION_ID: i32 = 0x4657_4431;
 
 /// Schema migrations, in order; `PRAGMA user_version` counts the applied ones.
 /// Append only: a released migration is never edited.
-const MIGRATIONS: &[&str] = &[include_str!("schema_v1.sql"), include_str!("schema_v2.sql")];
+const MIGRATIONS: &[&str] = &[
+    include_str!("schema_v1.sql"),
+    include_str!("schema_v2.sql"),
+    include_str!("schema_v3.sql"),
+];
 
 /// The schema version this build writes and reads.
 pub const SCHEMA_VERSION: i32 = MIGRATIONS.len() as i32;

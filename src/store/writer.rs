@@ -394,7 +394,7 @@ fn record_done(
                  width = ?6, height = ?7, bit_depth = ?8, method = ?9, threshold = ?10, separability = ?11,
                  object_count = ?12, foreground_fraction = ?13, background_level = ?14,
                  saturation_fraction = ?15, focus = ?16, illumination_change = ?17,
-                 pixel_size_um = ?18, pixel_size_source = ?19
+                 pixel_size_um = ?18, pixel_size_source = ?19, bimodality = ?20
              WHERE path = ?1 AND size_bytes = ?2 AND mtime_ns = ?3 AND status <> 'done'
              RETURNING id",
         )?
@@ -419,6 +419,7 @@ fn record_done(
                 r.illumination_change,
                 r.pixel_size_um,
                 analysis.pixel_size_source.map(|s| s.as_str()),
+                r.bimodality,
             ],
             |row| row.get(0),
         )
@@ -565,6 +566,7 @@ mod tests {
                 method: "otsu".into(),
                 threshold: 3.0,
                 separability: 0.9,
+                bimodality: 0.8,
                 object_count: objects.len(),
                 foreground_fraction: 0.25,
                 background_level: 1.0,

@@ -10,6 +10,8 @@ Writes q_*.tif and quality_references.json with, per image:
 - focus: numpy.var of scipy.ndimage.laplace(float64 image)[1:-1, 1:-1];
 - background_level: numpy.median(image[image <= t]) at the given threshold;
 - saturation_fraction: numpy.mean(image == top of the bit depth);
+- bimodality: Sarle's coefficient (G1^2 + 1) / (G2 + 3 (n-1)^2 / ((n-2)(n-3)))
+  with G1 = scipy.stats.skew(bias=False), G2 = scipy.stats.kurtosis(bias=False);
 - illumination_change: the documented definition (16 x 16 block means of the
   background, blocks at least a quarter background, quadratic surface
   z = a + b u + c v + d u^2 + e v^2 + f u v by numpy.linalg.lstsq, evaluated on
@@ -24,6 +26,7 @@ from pathlib import Path
 import numpy as np
 import tifffile
 from scipy import ndimage as ndi
+from scipy import stats
 from skimage import data
 from skimage.filters import threshold_otsu
 
@@ -59,6 +62,15 @@ def illumination(img, t):
     return 0.0 if mean < 1.0 else float((max(grid) - min(grid)) / mean)
 
 
+def bimodality(img):
+    # Sarle's coefficient with scipy's bias-corrected sample skewness and excess kurtosis.
+    x = img.astype(np.float64).ravel()
+    n = x.size
+    g = stats.skew(x, bias=False)
+    k = stats.kurtosis(x, fisher=True, bias=False)
+    return float((g * g + 1.0) / (k + 3.0 * (n - 1) ** 2 / ((n - 2) * (n - 3))))
+
+
 def scene16(h, w, gradient):
     yy, xx = np.mgrid[:h, :w]
     img = 2000.0 * (1.0 + gradient * (xx / w - 0.5)) + rng.normal(0, 60, (h, w))
@@ -89,6 +101,7 @@ for name, (img, bits, sigma) in images.items():
         background_level=float(np.median(img[img <= t])),
         saturation_fraction=float(np.mean(img == top)),
         illumination_change=illumination(img, t),
+        bimodality=bimodality(img),
         flat=None,
     )
     if bits == 16:
