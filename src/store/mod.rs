@@ -273,6 +273,38 @@ mod tests {
     use super::*;
 
     #[test]
+    fn an_older_database_is_migrated_forward_keeping_its_rows() {
+        let dir = tempfile::tempdir().unwrap();
+        let db = dir.path().join("fw.db");
+        {
+            // A database written by a version-1 framewarden, with one run.
+            let conn = Connection::open(&db).unwrap();
+            conn.execute_batch(MIGRATIONS[0]).unwrap();
+            conn.pragma_update(None, "user_version", 1).unwrap();
+            conn.pragma_update(None, "application_id", APPLICATION_ID)
+                .unwrap();
+            conn.execute(
+                "INSERT INTO runs (folders, started_at_ms, last_frame_at_ms, settings) VALUES ('[]', 1, 1, '{}')",
+                [],
+            )
+            .unwrap();
+        }
+        drop(open_for_writing(&db).unwrap());
+        let conn = open_read_only(&db).unwrap();
+        let v: i32 = conn
+            .pragma_query_value(None, "user_version", |r| r.get(0))
+            .unwrap();
+        assert_eq!(v, SCHEMA_VERSION);
+        let runs: i64 = conn
+            .query_row("SELECT count(*) FROM runs", [], |r| r.get(0))
+            .unwrap();
+        assert_eq!(runs, 1);
+        // Columns of later versions exist (v2: remedy, v3: bimodality).
+        conn.prepare("SELECT count_source, bimodality FROM frames")
+            .unwrap();
+    }
+
+    #[test]
     fn migrates_once_and_marks_the_file_as_ours() {
         let dir = tempfile::tempdir().unwrap();
         let db = dir.path().join("sub/fw.db");
