@@ -3,7 +3,7 @@
 //! real append-only file. Only loopback traffic; every wait is bounded.
 
 use std::io::{BufRead, BufReader, Read, Write};
-use std::net::{TcpListener, TcpStream};
+use std::net::TcpListener;
 use std::path::Path;
 use std::sync::mpsc;
 use std::time::Duration;
@@ -43,6 +43,9 @@ fn server(
                 return;
             };
             let (status, body_tx) = (answer(n), body_tx.clone());
+            stream
+                .set_read_timeout(Some(Duration::from_secs(5)))
+                .unwrap();
             std::thread::spawn(move || handle(stream, status, hold, &body_tx));
         }
     });
@@ -50,30 +53,30 @@ fn server(
 }
 
 fn handle(
-    mut stream: TcpStream,
+    mut stream: impl Read + Write,
     status: Option<u16>,
     hold: Duration,
     body_tx: &mpsc::Sender<String>,
 ) {
-    stream
-        .set_read_timeout(Some(Duration::from_secs(5)))
-        .unwrap();
-    let mut reader = BufReader::new(stream.try_clone().unwrap());
-    let mut length = 0usize;
-    let mut first = String::new();
-    reader.read_line(&mut first).unwrap();
-    assert!(first.starts_with("POST /hooks/night HTTP/1.1"), "{first}");
-    loop {
-        let mut line = String::new();
-        if reader.read_line(&mut line).unwrap_or(0) == 0 || line == "\r\n" {
-            break;
+    let body = {
+        let mut reader = BufReader::new(&mut stream);
+        let mut length = 0usize;
+        let mut first = String::new();
+        reader.read_line(&mut first).unwrap();
+        assert!(first.starts_with("POST /hooks/night HTTP/1.1"), "{first}");
+        loop {
+            let mut line = String::new();
+            if reader.read_line(&mut line).unwrap_or(0) == 0 || line == "\r\n" {
+                break;
+            }
+            if let Some(v) = line.to_ascii_lowercase().strip_prefix("content-length:") {
+                length = v.trim().parse().unwrap();
+            }
         }
-        if let Some(v) = line.to_ascii_lowercase().strip_prefix("content-length:") {
-            length = v.trim().parse().unwrap();
-        }
-    }
-    let mut body = vec![0u8; length];
-    reader.read_exact(&mut body).unwrap();
+        let mut body = vec![0u8; length];
+        reader.read_exact(&mut body).unwrap();
+        body
+    };
     let _ = body_tx.send(String::from_utf8(body).unwrap());
     match status {
         Some(status) => {
@@ -81,6 +84,7 @@ fn handle(
                 stream,
                 "HTTP/1.1 {status} X\r\nContent-Length: 0\r\nConnection: close\r\n\r\n"
             );
+            let _ = stream.flush();
         }
         None => std::thread::sleep(hold),
     }
@@ -92,6 +96,7 @@ fn webhook(url: &str, retries: u32) -> WebhookSink {
         timeout: Duration::from_millis(300),
         retries,
         backoff: Duration::from_millis(20),
+        ca_file: None,
     }
 }
 
@@ -113,6 +118,7 @@ fn webhook_posts_the_alert_as_json() {
         &url,
         &serde_json::to_string(&e).unwrap(),
         Duration::from_secs(2),
+        None,
     )
     .unwrap();
     let got: serde_json::Value =
@@ -141,7 +147,7 @@ fn an_erroring_webhook_gives_up_after_its_retries() {
     deliver_via_webhook(webhook(&url, 2), &event("a.tif"));
     assert_eq!(bodies.try_iter().count(), 3, "one attempt and two retries");
     assert_eq!(
-        post_once(&url, "{}", Duration::from_secs(2)),
+        post_once(&url, "{}", Duration::from_secs(2), None),
         Err("HTTP status 500".into())
     );
 }
@@ -164,7 +170,7 @@ fn a_down_webhook_fails_cleanly() {
         .unwrap()
         .port();
     let url = format!("http://127.0.0.1:{port}/x");
-    let err = post_once(&url, "{}", Duration::from_millis(300)).unwrap_err();
+    let err = post_once(&url, "{}", Duration::from_millis(300), None).unwrap_err();
     assert!(err.starts_with("connect"), "{err}");
     // The dispatcher logs and moves on: close() returns after the bounded retries.
     deliver_via_webhook(webhook(&url, 1), &event("a.tif"));
@@ -194,6 +200,7 @@ fn sending_never_waits_for_a_stuck_webhook() {
             timeout: Duration::from_secs(5),
             retries: 0,
             backoff: Duration::ZERO,
+            ca_file: None,
         }),
         ..AlertSettings::default()
     })
@@ -321,4 +328,82 @@ fn the_file_sink_appends_one_json_line_per_event() {
     assert_eq!(lines[1]["state"], "opened");
     assert_eq!(lines[1]["file"], HOSTILE);
     assert_eq!(lines[2]["state"], "recovered");
+}
+
+/// A TLS server on 127.0.0.1 with a fresh self-signed certificate for
+/// "localhost" (rcgen), answering one connection with 200 through the same
+/// request handler as the plain server. Returns the URL, the CA file to trust,
+/// the bodies channel, and the folder holding the CA file.
+fn tls_server(
+    answer: bool,
+) -> (
+    String,
+    std::path::PathBuf,
+    mpsc::Receiver<String>,
+    tempfile::TempDir,
+) {
+    use rustls::pki_types::{PrivateKeyDer, PrivatePkcs8KeyDer};
+    let rcgen::CertifiedKey { cert, signing_key } =
+        rcgen::generate_simple_self_signed(vec!["localhost".to_string()]).unwrap();
+    let dir = tempfile::tempdir().unwrap();
+    let ca = dir.path().join("in-house-ca.pem");
+    std::fs::write(&ca, cert.pem()).unwrap();
+    let key = PrivateKeyDer::Pkcs8(PrivatePkcs8KeyDer::from(signing_key.serialize_der()));
+    let config = rustls::ServerConfig::builder_with_provider(std::sync::Arc::new(
+        rustls::crypto::ring::default_provider(),
+    ))
+    .with_safe_default_protocol_versions()
+    .unwrap()
+    .with_no_client_auth()
+    .with_single_cert(vec![cert.der().clone()], key)
+    .unwrap();
+    let listener = TcpListener::bind("127.0.0.1:0").unwrap();
+    let url = format!(
+        "https://localhost:{}/hooks/night",
+        listener.local_addr().unwrap().port()
+    );
+    let (body_tx, body_rx) = mpsc::channel();
+    std::thread::spawn(move || {
+        let Ok((tcp, _)) = listener.accept() else {
+            return;
+        };
+        tcp.set_read_timeout(Some(Duration::from_secs(5))).unwrap();
+        let conn = rustls::ServerConnection::new(std::sync::Arc::new(config)).unwrap();
+        let mut tls = rustls::StreamOwned::new(conn, tcp);
+        if answer {
+            handle(tls, Some(200), Duration::ZERO, &body_tx);
+        } else {
+            // The client refuses the handshake: nothing to read.
+            let _ = tls.read(&mut [0u8; 1]);
+        }
+    });
+    (url, ca, body_rx, dir)
+}
+
+#[test]
+fn an_https_webhook_is_posted_through_tls_trusting_the_configured_ca() {
+    let (url, ca, bodies, _dir) = tls_server(true);
+    let e = event(HOSTILE);
+    post_once(
+        &url,
+        &serde_json::to_string(&e).unwrap(),
+        Duration::from_secs(5),
+        Some(&ca),
+    )
+    .unwrap();
+    let got: serde_json::Value =
+        serde_json::from_str(&bodies.recv_timeout(Duration::from_secs(5)).unwrap()).unwrap();
+    assert_eq!(got["file"], HOSTILE);
+}
+
+#[test]
+fn an_https_webhook_with_an_untrusted_certificate_is_refused() {
+    // Same server, but the client trusts only the bundled public roots.
+    let (url, _ca, bodies, _dir) = tls_server(false);
+    let err = post_once(&url, "{}", Duration::from_secs(5), None).unwrap_err();
+    assert!(err.to_lowercase().contains("certificate"), "{err}");
+    assert!(
+        bodies.recv_timeout(Duration::from_millis(200)).is_err(),
+        "nothing was delivered"
+    );
 }

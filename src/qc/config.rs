@@ -75,6 +75,7 @@ pub struct RawAlerts {
     webhook_timeout_s: u64,
     webhook_retries: u32,
     webhook_backoff_s: u64,
+    webhook_ca_file: Option<PathBuf>,
     file: Option<PathBuf>,
 }
 
@@ -87,6 +88,7 @@ impl Default for RawAlerts {
             webhook_timeout_s: 10,
             webhook_retries: 3,
             webhook_backoff_s: 2,
+            webhook_ca_file: None,
             file: None,
         }
     }
@@ -174,8 +176,11 @@ pub struct CommandSink {
 
 #[derive(Debug, Clone, PartialEq)]
 pub struct WebhookSink {
-    /// `http://host[:port]/path`.
+    /// `http://host[:port]/path` or `https://...`.
     pub url: String,
+    /// Extra trusted CA certificates (PEM) for an https webhook, e.g. an
+    /// in-house server's own CA; the bundled public roots are always trusted.
+    pub ca_file: Option<PathBuf>,
     pub timeout: Duration,
     /// Further attempts after a failed first one.
     pub retries: u32,
@@ -322,9 +327,9 @@ pub fn validate(
     let webhook = if a.webhook_url.is_empty() {
         None
     } else {
-        if !a.webhook_url.starts_with("http://") {
+        if !a.webhook_url.starts_with("http://") && !a.webhook_url.starts_with("https://") {
             return Err(format!(
-                "alerts.webhook_url = \"{}\" (expected http://host[:port]/path; for https, point it at a local relay)",
+                "alerts.webhook_url = \"{}\" (expected http://host[:port]/path or https://...)",
                 a.webhook_url
             ));
         }
@@ -338,6 +343,7 @@ pub fn validate(
             timeout: Duration::from_secs(a.webhook_timeout_s),
             retries: a.webhook_retries,
             backoff: Duration::from_secs(a.webhook_backoff_s),
+            ca_file: a.webhook_ca_file.map(|f| base.join(f)),
         })
     };
     let alerts = AlertSettings {
@@ -408,7 +414,7 @@ mod tests {
             (
                 RawQuality::default(),
                 RawAlerts {
-                    webhook_url: "https://example.org/x".into(),
+                    webhook_url: "ftp://example.org/x".into(),
                     ..RawAlerts::default()
                 },
                 "alerts.webhook_url",

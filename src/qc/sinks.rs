@@ -10,6 +10,7 @@ use std::io::{Read, Write};
 use std::net::{TcpStream, ToSocketAddrs};
 use std::path::{Path, PathBuf};
 use std::process::{Command, Stdio};
+use std::sync::Arc;
 use std::thread::JoinHandle;
 use std::time::{Duration, Instant};
 
@@ -183,7 +184,7 @@ fn post_with_retries(w: &WebhookSink, event: &AlertEvent) -> Result<(), String> 
             std::thread::sleep(delay);
             delay = delay.saturating_mul(2);
         }
-        match post_once(&w.url, &body, w.timeout) {
+        match post_once(&w.url, &body, w.timeout, w.ca_file.as_deref()) {
             Ok(()) => return Ok(()),
             Err(e) => {
                 tracing::debug!("webhook attempt {} failed: {e}", attempt + 1);
@@ -197,36 +198,78 @@ fn post_with_retries(w: &WebhookSink, event: &AlertEvent) -> Result<(), String> 
     ))
 }
 
-/// One HTTP/1.1 POST; success is a 2xx status line.
-pub fn post_once(url: &str, body: &str, timeout: Duration) -> Result<(), String> {
-    let rest = url
-        .strip_prefix("http://")
-        .ok_or_else(|| format!("{url}: only http:// is supported"))?;
+/// One HTTP/1.1 POST, over plain TCP for `http://` or TLS for `https://`
+/// (trusting the Mozilla roots bundled by `webpki-roots` plus the certificates in
+/// `ca_file`); success is a 2xx status line.
+///
+/// # Errors
+/// A message naming what failed: the address, the connection, TLS, or the status.
+pub fn post_once(
+    url: &str,
+    body: &str,
+    timeout: Duration,
+    ca_file: Option<&Path>,
+) -> Result<(), String> {
+    let (tls, rest) = if let Some(rest) = url.strip_prefix("https://") {
+        (true, rest)
+    } else if let Some(rest) = url.strip_prefix("http://") {
+        (false, rest)
+    } else {
+        return Err(format!("{url}: only http:// and https:// are supported"));
+    };
     let (authority, path) = rest.split_at(rest.find('/').unwrap_or(rest.len()));
     let path = if path.is_empty() { "/" } else { path };
-    let with_port = if authority.contains(':') {
-        authority.to_string()
-    } else {
-        format!("{authority}:80")
+    // `host:port`, `host`, `[v6]:port` or `[v6]`.
+    let (host, port) = match authority.rsplit_once(':') {
+        Some((h, p)) if !p.contains(']') => (
+            h,
+            p.parse::<u16>()
+                .map_err(|e| format!("{authority}: port: {e}"))?,
+        ),
+        _ => (authority, if tls { 443 } else { 80 }),
     };
-    let addr = with_port
-        .to_socket_addrs()
-        .map_err(|e| format!("{authority}: {e}"))?
-        .next()
-        .ok_or_else(|| format!("{authority}: no address"))?;
-    let mut stream =
-        TcpStream::connect_timeout(&addr, timeout).map_err(|e| format!("connect {addr}: {e}"))?;
-    stream
-        .set_read_timeout(Some(timeout))
-        .and_then(|()| stream.set_write_timeout(Some(timeout)))
+    let host = host.trim_start_matches('[').trim_end_matches(']');
+    let tcp = connect(host, port, timeout)?;
+    tcp.set_read_timeout(Some(timeout))
+        .and_then(|()| tcp.set_write_timeout(Some(timeout)))
         .map_err(|e| e.to_string())?;
     let request = format!(
         "POST {path} HTTP/1.1\r\nHost: {authority}\r\nUser-Agent: framewarden/{}\r\nContent-Type: application/json\r\nContent-Length: {}\r\nConnection: close\r\n\r\n{body}",
         env!("CARGO_PKG_VERSION"),
         body.len()
     );
+    if tls {
+        let name = rustls::pki_types::ServerName::try_from(host.to_string())
+            .map_err(|e| format!("{host}: {e}"))?;
+        let conn = rustls::ClientConnection::new(client_config(ca_file)?, name)
+            .map_err(|e| format!("TLS: {e}"))?;
+        exchange(&mut rustls::StreamOwned::new(conn, tcp), &request)
+    } else {
+        exchange(&mut { tcp }, &request)
+    }
+}
+
+/// Connects to the first address of `host` that answers within `timeout`.
+fn connect(host: &str, port: u16, timeout: Duration) -> Result<TcpStream, String> {
+    let addrs: Vec<_> = (host, port)
+        .to_socket_addrs()
+        .map_err(|e| format!("{host}: {e}"))?
+        .collect();
+    let mut last = format!("{host}: no address");
+    for addr in addrs {
+        match TcpStream::connect_timeout(&addr, timeout) {
+            Ok(s) => return Ok(s),
+            Err(e) => last = format!("connect {addr}: {e}"),
+        }
+    }
+    Err(last)
+}
+
+/// Sends the request and reads the status line.
+fn exchange(stream: &mut (impl Read + Write), request: &str) -> Result<(), String> {
     stream
         .write_all(request.as_bytes())
+        .and_then(|()| stream.flush())
         .map_err(|e| format!("send: {e}"))?;
     let mut head = [0u8; 64];
     let mut got = 0;
@@ -248,6 +291,32 @@ pub fn post_once(url: &str, body: &str, timeout: Duration) -> Result<(), String>
     } else {
         Err(format!("HTTP status {status}"))
     }
+}
+
+/// TLS client settings: safe default protocol versions, ring's primitives, and
+/// the bundled roots plus the certificates of `ca_file` (PEM).
+fn client_config(ca_file: Option<&Path>) -> Result<Arc<rustls::ClientConfig>, String> {
+    use rustls::pki_types::{pem::PemObject, CertificateDer};
+    let mut roots = rustls::RootCertStore {
+        roots: webpki_roots::TLS_SERVER_ROOTS.to_vec(),
+    };
+    if let Some(path) = ca_file {
+        let certs =
+            CertificateDer::pem_file_iter(path).map_err(|e| format!("{}: {e}", path.display()))?;
+        for cert in certs {
+            let cert = cert.map_err(|e| format!("{}: {e}", path.display()))?;
+            roots
+                .add(cert)
+                .map_err(|e| format!("{}: {e}", path.display()))?;
+        }
+    }
+    let provider = Arc::new(rustls::crypto::ring::default_provider());
+    let config = rustls::ClientConfig::builder_with_provider(provider)
+        .with_safe_default_protocol_versions()
+        .map_err(|e| format!("TLS: {e}"))?
+        .with_root_certificates(roots)
+        .with_no_client_auth();
+    Ok(Arc::new(config))
 }
 
 fn append_line(path: &Path, event: &AlertEvent) -> Result<(), String> {
