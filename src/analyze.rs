@@ -10,6 +10,8 @@ use serde::Serialize;
 
 use crate::analysis::FrameResult;
 use crate::pipeline::{analyze_file, FileAnalysis, FileError};
+use crate::qc::flags::{frame_flags, FrameMetrics, PositionContext};
+use crate::qc::report::FlagRow;
 use crate::settings::Settings;
 
 /// File name endings taken from folders (explicit file arguments are always tried).
@@ -55,11 +57,12 @@ fn collect_dir(dir: &Path, out: &mut Vec<PathBuf>) -> Result<(), String> {
     Ok(())
 }
 
-/// One JSON line: the file, its pixel-size source and every frame measure.
+/// One JSON line: the file, its pixel-size source, its flags and every frame measure.
 #[derive(Serialize)]
 struct JsonLine<'a> {
     file: String,
     pixel_size_source: Option<&'static str>,
+    flags: Vec<FlagRow>,
     #[serde(flatten)]
     result: &'a FrameResult,
 }
@@ -111,10 +114,13 @@ pub fn run(
                 if result.is_err() {
                     failed += 1;
                 }
+                let flags = result
+                    .as_ref()
+                    .map_or_else(|_| Vec::new(), |a| flags_of(a, settings));
                 let line = if json {
-                    json_line(file, &result)
+                    json_line(file, &result, flags)
                 } else {
-                    table_line(&file, &result)
+                    table_line(&file, &result, &flags)
                 };
                 writeln!(out, "{line}")?;
                 printed += 1;
@@ -125,12 +131,32 @@ pub fn run(
     Ok(failed)
 }
 
-fn json_line(file: String, result: &Result<FileAnalysis, FileError>) -> String {
+/// The flags a single frame earns on its own, with the `[quality]` limits: those
+/// that need the run's history (focus against a baseline, count jumps, empty
+/// frames) belong to `watch`.
+fn flags_of(a: &FileAnalysis, settings: &Settings) -> Vec<FlagRow> {
+    let metrics = FrameMetrics::from(&a.result);
+    frame_flags(
+        &metrics,
+        &settings.quality.flags,
+        &PositionContext::default(),
+    )
+    .into_iter()
+    .map(FlagRow::from)
+    .collect()
+}
+
+fn json_line(
+    file: String,
+    result: &Result<FileAnalysis, FileError>,
+    flags: Vec<FlagRow>,
+) -> String {
     // Serialising plain data with finite floats cannot fail.
     match result {
         Ok(a) => serde_json::to_string(&JsonLine {
             file,
             pixel_size_source: a.pixel_size_source.map(|s| s.as_str()),
+            flags,
             result: &a.result,
         }),
         Err(e) => serde_json::to_string(&JsonError {
@@ -143,12 +169,12 @@ fn json_line(file: String, result: &Result<FileAnalysis, FileError>) -> String {
 
 fn table_header() -> String {
     format!(
-        "{:<40} {:>7} {:>9} {:>6} {:>7} {:>10} {:>6} {:>10} {:>7}",
+        "{:<40} {:>7} {:>9} {:>6} {:>7} {:>10} {:>6} {:>10} {:>7}  flags",
         "file", "objects", "threshold", "eta", "fg %", "background", "sat %", "focus", "illum %"
     )
 }
 
-fn table_line(file: &str, result: &Result<FileAnalysis, FileError>) -> String {
+fn table_line(file: &str, result: &Result<FileAnalysis, FileError>, flags: &[FlagRow]) -> String {
     let name = if file.chars().count() > 40 {
         let tail: String = file
             .chars()
@@ -166,7 +192,7 @@ fn table_line(file: &str, result: &Result<FileAnalysis, FileError>) -> String {
         Ok(a) => {
             let r = &a.result;
             format!(
-                "{:<40} {:>7} {:>9} {:>6.3} {:>7.2} {:>10.1} {:>6.2} {:>10.1} {:>7.1}",
+                "{:<40} {:>7} {:>9} {:>6.3} {:>7.2} {:>10.1} {:>6.2} {:>10.1} {:>7.1}  {}",
                 name,
                 r.object_count,
                 r.threshold,
@@ -175,7 +201,12 @@ fn table_line(file: &str, result: &Result<FileAnalysis, FileError>) -> String {
                 r.background_level,
                 100.0 * r.saturation_fraction,
                 r.focus,
-                100.0 * r.illumination_change
+                100.0 * r.illumination_change,
+                flags
+                    .iter()
+                    .map(|f| f.flag.as_str())
+                    .collect::<Vec<_>>()
+                    .join(",")
             )
         }
         Err(e) => format!("{name:<40} error: {e}"),

@@ -169,3 +169,45 @@ fn config_settings_change_the_analysis() {
         (Some("fixed"), Some(0))
     );
 }
+
+#[test]
+fn frames_carry_the_flags_they_earn_on_their_own() {
+    let dir = tempfile::tempdir().unwrap();
+    let cells = scene(dir.path(), "a_cells.tif", 6, 7);
+    // Pure noise: no objects to find, a unimodal histogram.
+    let spec = SceneSpec {
+        width: 160,
+        height: 120,
+        object_count: 0,
+        noise_sigma: 0.02,
+        seed: 8,
+        ..SceneSpec::default()
+    };
+    let noise = dir.path().join("b_noise.tif");
+    write_tiff(&noise, &generate(&spec).unwrap().frame).unwrap();
+    let out = binary()
+        .args(["analyze", "--json"])
+        .arg(&cells)
+        .arg(&noise)
+        .output()
+        .unwrap();
+    assert!(out.status.success());
+    let lines: Vec<serde_json::Value> = String::from_utf8(out.stdout)
+        .unwrap()
+        .lines()
+        .map(|l| serde_json::from_str(l).unwrap())
+        .collect();
+    assert_eq!(
+        lines[0]["flags"],
+        serde_json::json!([]),
+        "{}",
+        lines[0]["flags"]
+    );
+    let flags = lines[1]["flags"].as_array().unwrap();
+    let unimodal = flags
+        .iter()
+        .find(|f| f["flag"] == "unimodal_histogram")
+        .expect("noise is flagged");
+    assert!(unimodal["value"].as_f64().unwrap() < unimodal["limit"].as_f64().unwrap());
+    assert!(unimodal["message"].as_str().unwrap().contains("unimodal"));
+}

@@ -9,7 +9,7 @@ use std::fmt::Write as _;
 use rusqlite::{params, Connection};
 use serde::Serialize;
 
-use crate::qc::flags::failure_flag;
+use crate::qc::flags::{failure_flag, FrameFlag};
 
 /// One alert episode.
 #[derive(Debug, Clone, Serialize, PartialEq)]
@@ -33,6 +33,17 @@ pub struct FlagRow {
     pub value: Option<f64>,
     pub limit: Option<f64>,
     pub message: String,
+}
+
+impl From<FrameFlag> for FlagRow {
+    fn from(f: FrameFlag) -> Self {
+        FlagRow {
+            flag: f.kind.as_str().to_string(),
+            value: f.value,
+            limit: f.limit,
+            message: f.message,
+        }
+    }
 }
 
 #[derive(Debug, Clone, Serialize, PartialEq)]
@@ -103,13 +114,7 @@ pub fn flagged_frames(
             })?
             .collect::<Result<_, _>>()?;
         if status == "failed" {
-            let f = failure_flag(error.as_deref().unwrap_or("no reason recorded"));
-            flags.push(FlagRow {
-                flag: f.kind.as_str().to_string(),
-                value: f.value,
-                limit: f.limit,
-                message: f.message,
-            });
+            flags.push(failure_flag(error.as_deref().unwrap_or("no reason recorded")).into());
         }
         out.push(FlaggedFrame { file, flags });
     }
