@@ -129,11 +129,15 @@ pub fn run(
     let db = workdir.join("framewarden.db");
     // Twelve time points per well: the first four make each well's baseline, so
     // the late-run dimming and gradient are charted (and alerted) against them.
+    // The cells divide through the run, which raises counts and image detail on
+    // purpose: like a user of a growing culture, the demo leaves object_count and
+    // focus out of the alerting charts.
     let config = format!(
         "[watch]\nfolders = [\"{}\"]\nsettle_ms = 300\nretry_limit = 3\nretry_backoff_ms = 200\n\
          name_pattern = '^(?P<well>[A-P]\\d{{2}})_t(?P<time_point>\\d+)_(?P<channel>[^.]+)\\.tif$'\n\
          [store]\ndatabase = \"{}\"\n\
          [quality]\nbaseline_frames = 4\non_uneven_illumination = \"flatten\"\n\
+         charted_metrics = [\"background_level\", \"illumination_change\", \"threshold\", \"separability\"]\n\
          [alerts]\nfile = \"{}\"\n",
         acq.display(),
         db.display(),

@@ -10,6 +10,8 @@ use std::time::Duration;
 
 use serde::Deserialize;
 
+use crate::qc::drift::Metric;
+
 #[derive(Debug, Deserialize)]
 #[serde(deny_unknown_fields, default)]
 pub struct RawQuality {
@@ -29,6 +31,7 @@ pub struct RawQuality {
     cusum_h: f64,
     outlier_clip: f64,
     recover_frames: usize,
+    charted_metrics: Vec<String>,
     on_uneven_illumination: String,
     flatten_radius_px: f64,
     stall_after_s: u64,
@@ -56,6 +59,7 @@ impl Default for RawQuality {
             cusum_h: 5.0,
             outlier_clip: 4.0,
             recover_frames: 5,
+            charted_metrics: Metric::ALL.iter().map(|m| m.as_str().to_string()).collect(),
             on_uneven_illumination: "keep".into(),
             flatten_radius_px: 50.0,
             stall_after_s: 900,
@@ -131,6 +135,9 @@ pub struct ChartParams {
     pub outlier_clip: f64,
     /// Consecutive in-control frames that end a drift.
     pub recover_frames: usize,
+    /// Metrics whose drift raises alerts (all by default; a proliferating
+    /// culture, for example, drops `object_count`).
+    pub charted: Vec<Metric>,
 }
 
 /// What to do with a frame flagged for uneven illumination.
@@ -286,6 +293,19 @@ pub fn validate(
             ))
         }
     };
+    let charted = q
+        .charted_metrics
+        .iter()
+        .map(|name| {
+            Metric::ALL.into_iter().find(|m| m.as_str() == name).ok_or_else(|| {
+                let known: Vec<&str> = Metric::ALL.iter().map(|m| m.as_str()).collect();
+                format!(
+                    "quality.charted_metrics: \"{name}\" is not a charted metric (expected any of {})",
+                    known.join(", ")
+                )
+            })
+        })
+        .collect::<Result<Vec<Metric>, String>>()?;
     let quality = QualitySettings {
         flags: FlagLimits {
             min_separability: q.min_separability,
@@ -306,6 +326,7 @@ pub fn validate(
             cusum_h: q.cusum_h,
             outlier_clip: q.outlier_clip,
             recover_frames: q.recover_frames,
+            charted,
         },
         on_uneven_illumination,
         stall_after: Duration::from_secs(q.stall_after_s),
@@ -387,6 +408,14 @@ mod tests {
     #[test]
     fn bad_values_name_their_key() {
         for (q, a, needle) in [
+            (
+                RawQuality {
+                    charted_metrics: vec!["brightness".into()],
+                    ..RawQuality::default()
+                },
+                RawAlerts::default(),
+                "quality.charted_metrics: \"brightness\"",
+            ),
             (
                 RawQuality {
                     min_separability: 1.5,

@@ -98,7 +98,7 @@ impl RunMonitor {
         } else {
             for (chart, metric) in state.charts.iter_mut().zip(Metric::ALL) {
                 let step = chart.update(metric.value(m));
-                if step.signal != Signal::Quiet {
+                if step.signal != Signal::Quiet && params.charted.contains(&metric) {
                     changed.push((metric, step));
                 }
             }
@@ -263,6 +263,33 @@ mod tests {
 
     fn frame() -> FrameMetrics {
         FrameMetrics::passing_example()
+    }
+
+    /// A count that doubles after the baseline opens a count drift, unless
+    /// `object_count` is left out of the charted metrics.
+    #[test]
+    fn only_charted_metrics_raise_drift_alerts() {
+        let drifts = |settings: QualitySettings| -> Vec<String> {
+            let mut m = RunMonitor::new(settings);
+            let mut events = Vec::new();
+            for i in 0..20 {
+                events.extend(m.observe("A01", "base", i, &frame()).events);
+            }
+            let grown = FrameMetrics {
+                object_count: 80,
+                ..frame()
+            };
+            for i in 20..40 {
+                events.extend(m.observe("A01", "grown", i, &grown).events);
+            }
+            events.into_iter().map(|e| e.condition).collect()
+        };
+        let all = drifts(QualitySettings::default());
+        assert!(all.contains(&"drift:object_count".to_string()), "{all:?}");
+        let mut without = QualitySettings::default();
+        without.charts.charted.retain(|&m| m != Metric::ObjectCount);
+        let some = drifts(without);
+        assert!(!some.iter().any(|c| c == "drift:object_count"), "{some:?}");
     }
 
     #[test]
