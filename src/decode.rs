@@ -614,6 +614,16 @@ fn read_tiled_lzw<R: Read + Seek>(
     if tile_w == 0 || tile_h == 0 || tile_w > 1 << 16 || tile_h > 1 << 16 {
         return Err(corrupt(format!("tile size {tile_w} x {tile_h}")));
     }
+    // A tile buffer is allocated before any data is read: keep it in proportion
+    // to the frame (at most 4x its size, or 16 MiB for small frames).
+    let tile_bytes_declared = u64::from(tile_w) * u64::from(tile_h) * u64::from(bits / 8);
+    let frame_bytes = u64::from(width) * u64::from(height) * u64::from(bits / 8);
+    if tile_bytes_declared > frame_bytes.max(1 << 22) * 4 {
+        return Err(DecodeError::TooLarge {
+            path: path.into(),
+            detail: format!("{tile_w} x {tile_h} tiles for a {width} x {height} frame"),
+        });
+    }
     let offsets = decoder
         .get_tag_u64_vec(Tag::TileOffsets)
         .map_err(|e| tiff_error(path, e))?;

@@ -33,6 +33,27 @@ fn valid_png(w: u32, h: u32) -> Vec<u8> {
     buf.into_inner()
 }
 
+/// A little-endian TIFF header with one IFD of `(tag, type, count, value)`
+/// entries (type 3 = SHORT, 4 = LONG) and no pixel data.
+fn tiff_header(entries: &[(u16, u16, u32, u32)]) -> Vec<u8> {
+    let mut b = b"II*\0".to_vec();
+    b.extend_from_slice(&8u32.to_le_bytes());
+    b.extend_from_slice(&(entries.len() as u16).to_le_bytes());
+    for &(tag, typ, count, value) in entries {
+        b.extend_from_slice(&tag.to_le_bytes());
+        b.extend_from_slice(&typ.to_le_bytes());
+        b.extend_from_slice(&count.to_le_bytes());
+        if typ == 3 {
+            b.extend_from_slice(&(value as u16).to_le_bytes());
+            b.extend_from_slice(&[0, 0]);
+        } else {
+            b.extend_from_slice(&value.to_le_bytes());
+        }
+    }
+    b.extend_from_slice(&0u32.to_le_bytes());
+    b
+}
+
 /// A little-endian TIFF header plus one IFD declaring `w × h` 16-bit grey with a
 /// single strip at offset 8 of `strip_bytes` bytes, and no pixel data behind it.
 fn hostile_header(w: u32, h: u32, strip_bytes: u32) -> Vec<u8> {
@@ -46,22 +67,24 @@ fn hostile_header(w: u32, h: u32, strip_bytes: u32) -> Vec<u8> {
         (278, 4, 1, h),           // RowsPerStrip
         (279, 4, 1, strip_bytes), // StripByteCounts
     ];
-    let mut b = b"II*\0".to_vec();
-    b.extend_from_slice(&8u32.to_le_bytes());
-    b.extend_from_slice(&(entries.len() as u16).to_le_bytes());
-    for (tag, typ, count, value) in entries {
-        b.extend_from_slice(&tag.to_le_bytes());
-        b.extend_from_slice(&typ.to_le_bytes());
-        b.extend_from_slice(&count.to_le_bytes());
-        if typ == 3 {
-            b.extend_from_slice(&(value as u16).to_le_bytes());
-            b.extend_from_slice(&[0, 0]);
-        } else {
-            b.extend_from_slice(&value.to_le_bytes());
-        }
-    }
-    b.extend_from_slice(&0u32.to_le_bytes());
-    b
+    tiff_header(&entries)
+}
+
+/// A little-endian tiled LZW TIFF header: a `w × h` 16-bit frame declared with
+/// `tile × tile` tiles (one tile, no data behind it).
+fn hostile_tiled_header(w: u32, h: u32, tile: u32) -> Vec<u8> {
+    let entries: [(u16, u16, u32, u32); 9] = [
+        (256, 4, 1, w),    // ImageWidth
+        (257, 4, 1, h),    // ImageLength
+        (258, 3, 1, 16),   // BitsPerSample
+        (259, 3, 1, 5),    // Compression: LZW
+        (262, 3, 1, 1),    // Photometric: min-is-black
+        (322, 4, 1, tile), // TileWidth
+        (323, 4, 1, tile), // TileLength
+        (324, 4, 1, 8),    // TileOffsets
+        (325, 4, 1, 16),   // TileByteCounts
+    ];
+    tiff_header(&entries)
 }
 
 fn assert_names_file(e: &DecodeError, p: &Path) {
@@ -149,6 +172,20 @@ fn huge_declared_size_is_refused_before_allocation() {
     assert!(read_page(&p, 0, &DecodeLimits::default())
         .unwrap_err()
         .is_incomplete());
+}
+
+#[test]
+fn huge_tiles_on_a_small_frame_are_refused_before_allocation() {
+    let dir = tempfile::tempdir().unwrap();
+    // A 16 × 16 frame in one 65536 × 65536 tile: an 8 GiB tile buffer, declared.
+    let p = write(
+        dir.path(),
+        "tiles.tif",
+        &hostile_tiled_header(16, 16, 65536),
+    );
+    let e = read_page(&p, 0, &DecodeLimits::default()).unwrap_err();
+    assert!(matches!(e, DecodeError::TooLarge { .. }), "{e}");
+    assert_names_file(&e, &p);
 }
 
 #[test]
