@@ -163,17 +163,18 @@ fn a_slow_webhook_times_out_and_is_retried() {
 
 #[test]
 fn a_down_webhook_fails_cleanly() {
-    // A port that was just free: nobody listens there.
-    let port = TcpListener::bind("127.0.0.1:0")
-        .unwrap()
-        .local_addr()
-        .unwrap()
-        .port();
-    let url = format!("http://127.0.0.1:{port}/x");
+    // Nobody listens on 127.0.0.2:P. Holding 127.0.0.1:P for the whole test keeps
+    // the port from being handed to another test's server (tests run in parallel
+    // and bind 127.0.0.1:0), and Linux refuses a wildcard bind on a port that has
+    // a listener, so no one can answer at 127.0.0.2:P either.
+    let held = TcpListener::bind("127.0.0.1:0").unwrap();
+    let port = held.local_addr().unwrap().port();
+    let url = format!("http://127.0.0.2:{port}/x");
     let err = post_once(&url, "{}", Duration::from_millis(300), None).unwrap_err();
     assert!(err.starts_with("connect"), "{err}");
     // The dispatcher logs and moves on: close() returns after the bounded retries.
     deliver_via_webhook(webhook(&url, 1), &event("a.tif"));
+    drop(held);
 }
 
 #[test]
