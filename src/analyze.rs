@@ -11,6 +11,7 @@ use serde::Serialize;
 use crate::analysis::FrameResult;
 use crate::pipeline::{analyze_file, FileAnalysis, FileError};
 use crate::qc::flags::{frame_flags, FrameMetrics, PositionContext};
+use crate::qc::remedy::explain_recount;
 use crate::qc::report::FlagRow;
 use crate::settings::Settings;
 
@@ -57,7 +58,9 @@ fn collect_dir(dir: &Path, out: &mut Vec<PathBuf>) -> Result<(), String> {
     Ok(())
 }
 
-/// One JSON line: the file, its pixel-size source, its flags and every frame measure.
+/// One JSON line: the file, its pixel-size source, its flags, every frame
+/// measure, and the flattened second result (null unless the frame was flagged
+/// for uneven illumination and `[quality] on_uneven_illumination = "flatten"`).
 #[derive(Serialize)]
 struct JsonLine<'a> {
     file: String,
@@ -65,6 +68,7 @@ struct JsonLine<'a> {
     flags: Vec<FlagRow>,
     #[serde(flatten)]
     result: &'a FrameResult,
+    flattened: Option<&'a FrameResult>,
 }
 
 #[derive(Serialize)]
@@ -136,14 +140,15 @@ pub fn run(
 /// frames) belong to `watch`.
 fn flags_of(a: &FileAnalysis, settings: &Settings) -> Vec<FlagRow> {
     let metrics = FrameMetrics::from(&a.result);
-    frame_flags(
+    let mut flags = frame_flags(
         &metrics,
         &settings.quality.flags,
         &PositionContext::default(),
-    )
-    .into_iter()
-    .map(FlagRow::from)
-    .collect()
+    );
+    if let Some(flat) = &a.flattened {
+        explain_recount(&mut flags, &a.result, flat);
+    }
+    flags.into_iter().map(FlagRow::from).collect()
 }
 
 fn json_line(
@@ -158,6 +163,7 @@ fn json_line(
             pixel_size_source: a.pixel_size_source.map(|s| s.as_str()),
             flags,
             result: &a.result,
+            flattened: a.flattened.as_ref(),
         }),
         Err(e) => serde_json::to_string(&JsonError {
             file,
@@ -191,10 +197,15 @@ fn table_line(file: &str, result: &Result<FileAnalysis, FileError>, flags: &[Fla
     match result {
         Ok(a) => {
             let r = &a.result;
+            // The count used: the flattened recount when there is one (marked *).
+            let objects = a.flattened.as_ref().map_or_else(
+                || r.object_count.to_string(),
+                |f| format!("{}*", f.object_count),
+            );
             format!(
                 "{:<40} {:>7} {:>9} {:>6.3} {:>7.2} {:>10.1} {:>6.2} {:>10.1} {:>7.1}  {}",
                 name,
-                r.object_count,
+                objects,
                 r.threshold,
                 r.separability,
                 100.0 * r.foreground_fraction,

@@ -254,7 +254,7 @@ fn per_well(db: &Path, s: &Scenario) -> Result<Vec<String>, DemoError> {
     };
     let mut stmt = conn
         .prepare(
-            "SELECT well, time_point, object_count, status FROM frames
+            "SELECT well, time_point, COALESCE(flat_object_count, object_count), status FROM frames
              WHERE run_id = (SELECT max(id) FROM runs) AND (CAST(time_point AS INTEGER) IN (0, ?1))
              ORDER BY well, time_point",
         )

@@ -55,7 +55,10 @@ pub struct RecentFrame {
     pub file: String,
     pub version: i64,
     pub status: String,
+    /// The count used: the flattened recount where the uneven-illumination
+    /// remedy ran, otherwise the first result's.
     pub object_count: Option<i64>,
+    /// The first result's threshold (a flattened recount thresholds other pixels).
     pub threshold: Option<f64>,
     pub error: Option<String>,
     pub analysed_at: Option<String>,
@@ -158,7 +161,7 @@ fn query(conn: &Connection, db: &Path, recent: usize) -> rusqlite::Result<Status
         }
     }
     let recent_sql = concat!(
-        "SELECT path, version, status, object_count, threshold, error, ",
+        "SELECT path, version, status, COALESCE(flat_object_count, object_count), threshold, error, ",
         iso!("analysed_at_ms"),
         ", latency_ms FROM frames WHERE run_id = ?1 AND (?2 = 0 OR status = 'failed') ORDER BY id DESC LIMIT ?3"
     );

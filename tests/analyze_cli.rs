@@ -211,3 +211,70 @@ fn frames_carry_the_flags_they_earn_on_their_own() {
     assert!(unimodal["value"].as_f64().unwrap() < unimodal["limit"].as_f64().unwrap());
     assert!(unimodal["message"].as_str().unwrap().contains("unimodal"));
 }
+
+#[test]
+fn a_flattened_recount_is_reported_beside_the_first_result() {
+    // Dim objects on a background that doubles across the field (the scene of
+    // the remedy's unit test): flagged uneven, so segmented again flattened.
+    let dir = tempfile::tempdir().unwrap();
+    let spec = SceneSpec {
+        width: 256,
+        height: 256,
+        object_count: 20,
+        radius_px: (4.0, 7.0),
+        object_level: 0.25,
+        gradient: 0.9,
+        ..SceneSpec::default()
+    };
+    let frame = dir.path().join("uneven.tif");
+    write_tiff(&frame, &generate(&spec).unwrap().frame).unwrap();
+    let even = scene(dir.path(), "even.tif", 6, 7);
+    let config = dir.path().join("fw.toml");
+    std::fs::write(
+        &config,
+        "[quality]\non_uneven_illumination = \"flatten\"\nflatten_radius_px = 30.0\n",
+    )
+    .unwrap();
+    let run = |json: bool| {
+        let mut cmd = binary();
+        cmd.args(["analyze", "--config"]).arg(&config);
+        if json {
+            cmd.arg("--json");
+        }
+        let out = cmd.arg(&frame).arg(&even).output().unwrap();
+        assert!(out.status.success(), "{out:?}");
+        String::from_utf8(out.stdout).unwrap()
+    };
+    let lines: Vec<serde_json::Value> = run(true)
+        .lines()
+        .map(|l| serde_json::from_str(l).unwrap())
+        .collect();
+    let flat = &lines[0]["flattened"];
+    let recount = flat["object_count"].as_u64().expect("a flattened result");
+    assert_eq!(flat["objects"].as_array().unwrap().len() as u64, recount);
+    let first = lines[0]["object_count"].as_u64().unwrap();
+    assert!(
+        recount.abs_diff(20) < first.abs_diff(20),
+        "flattened {recount}, first {first}, truth 20"
+    );
+    let sentence = lines[0]["flags"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .find(|f| f["flag"] == "uneven_illumination")
+        .unwrap()["message"]
+        .as_str()
+        .unwrap()
+        .to_string();
+    assert!(
+        sentence.contains(&format!("{recount} objects"))
+            && sentence.contains("the count is taken from the flattened result"),
+        "{sentence}"
+    );
+    // An evenly lit frame is analysed once.
+    assert!(lines[1]["flattened"].is_null(), "{}", lines[1]);
+    // The table shows the count used, marked.
+    let table = run(false);
+    let row = table.lines().nth(1).unwrap();
+    assert!(row.contains(&format!(" {recount}* ")), "{table}");
+}

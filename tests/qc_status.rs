@@ -137,6 +137,37 @@ fn status_shows_a_drift_alert_its_recovery_the_flags_and_failures() {
         sentence.contains("the count is taken from the flattened result"),
         "{sentence}"
     );
+    // Both results' objects are stored; the count used is the flattened one's.
+    let conn = rusqlite::Connection::open_with_flags(
+        &bench.db,
+        rusqlite::OpenFlags::SQLITE_OPEN_READ_ONLY,
+    )
+    .unwrap();
+    let (raw, flat, raw_count, flat_count, source): (i64, i64, i64, i64, String) = conn
+        .query_row(
+            "SELECT (SELECT count(*) FROM objects WHERE frame_id = f.id AND result = 'raw'),
+                    (SELECT count(*) FROM objects WHERE frame_id = f.id AND result = 'flattened'),
+                    object_count, flat_object_count, count_source
+             FROM frames f WHERE path LIKE '%B01_t0000.tif'",
+            [],
+            |r| Ok((r.get(0)?, r.get(1)?, r.get(2)?, r.get(3)?, r.get(4)?)),
+        )
+        .unwrap();
+    assert_eq!((raw, flat), (raw_count, flat_count));
+    assert!(flat > 0);
+    assert_eq!(source, "flattened");
+    drop(conn);
+    let listed = status["frames"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .find(|f| f["file"].as_str().unwrap().ends_with("B01_t0000.tif"))
+        .unwrap_or_else(|| panic!("B01 among the recent frames: {status:#}"));
+    assert_eq!(
+        listed["object_count"].as_i64(),
+        Some(flat_count),
+        "{listed}"
+    );
     let failed = flags_of("C01_t0000.tif");
     assert_eq!(failed[0]["flag"], "failed");
     assert!(failed[0]["value"].is_null() && failed[0]["limit"].is_null());

@@ -13,7 +13,7 @@ use rusqlite::{params, Connection, OptionalExtension, Transaction};
 use crate::pipeline::FileAnalysis;
 use crate::qc::alerts::{AlertEvent, AlertState};
 use crate::qc::config::{AlertSettings, QualitySettings};
-use crate::qc::flags::{num, FlagKind, FrameMetrics};
+use crate::qc::flags::FrameMetrics;
 use crate::qc::monitor::RunMonitor;
 use crate::qc::sinks::AlertDispatcher;
 use crate::settings::Settings;
@@ -146,18 +146,7 @@ impl QcRecorder {
                 "UPDATE frames SET flat_threshold = ?2, flat_object_count = ?3, count_source = 'flattened' WHERE id = ?1",
             )?
             .execute(params![frame_id, flat.threshold, flat.object_count as i64])?;
-            for f in verdict
-                .flags
-                .iter_mut()
-                .filter(|f| f.kind == FlagKind::UnevenIllumination)
-            {
-                f.message.push_str(&format!(
-                    "; segmented again after flattening the background: {} objects (threshold {}) against {} without; the count is taken from the flattened result",
-                    flat.object_count,
-                    num(flat.threshold),
-                    result.object_count
-                ));
-            }
+            crate::qc::remedy::explain_recount(&mut verdict.flags, result, flat);
         }
         let mut insert = tx.prepare_cached(
             "INSERT INTO flags (frame_id, kind, value, limit_value, message) VALUES (?1, ?2, ?3, ?4, ?5)",

@@ -9,7 +9,7 @@
 use crate::analysis::{analyze_frame, AnalysisError, FrameResult};
 use crate::frame::Frame;
 use crate::qc::config::{QualitySettings, UnevenRemedy};
-use crate::qc::flags::is_uneven;
+use crate::qc::flags::{is_uneven, num, FlagKind, FrameFlag};
 use crate::settings::{Background, SegmentSettings};
 
 /// The flattened second result, when the remedy is on, the first result is
@@ -39,6 +39,22 @@ pub fn flattened(
         ..segment.clone()
     };
     analyze_frame(frame, extra_pages, &flat, pixel_size_um).map(Some)
+}
+
+/// Adds the flattened recount to the uneven-illumination flag's sentence, so
+/// whoever reads the flag learns both counts and which one is used.
+pub fn explain_recount(flags: &mut [FrameFlag], first: &FrameResult, flat: &FrameResult) {
+    for f in flags
+        .iter_mut()
+        .filter(|f| f.kind == FlagKind::UnevenIllumination)
+    {
+        f.message.push_str(&format!(
+            "; segmented again after flattening the background: {} objects (threshold {}) against {} without; the count is taken from the flattened result",
+            flat.object_count,
+            num(flat.threshold),
+            first.object_count
+        ));
+    }
 }
 
 #[cfg(test)]

@@ -22,6 +22,7 @@ const MIGRATIONS: &[&str] = &[
     include_str!("schema_v1.sql"),
     include_str!("schema_v2.sql"),
     include_str!("schema_v3.sql"),
+    include_str!("schema_v4.sql"),
 ];
 
 /// The schema version this build writes and reads.
@@ -277,15 +278,19 @@ mod tests {
         let dir = tempfile::tempdir().unwrap();
         let db = dir.path().join("fw.db");
         {
-            // A database written by a version-1 framewarden, with one run.
+            // A database written by a version-1 framewarden: one run, one
+            // frame with one object.
             let conn = Connection::open(&db).unwrap();
             conn.execute_batch(MIGRATIONS[0]).unwrap();
             conn.pragma_update(None, "user_version", 1).unwrap();
             conn.pragma_update(None, "application_id", APPLICATION_ID)
                 .unwrap();
-            conn.execute(
-                "INSERT INTO runs (folders, started_at_ms, last_frame_at_ms, settings) VALUES ('[]', 1, 1, '{}')",
-                [],
+            conn.execute_batch(
+                "INSERT INTO runs (folders, started_at_ms, last_frame_at_ms, settings) VALUES ('[]', 1, 1, '{}');
+                 INSERT INTO frames (run_id, path, size_bytes, mtime_ns, version, status, detected_at_ms, ready_at_ms)
+                     VALUES (1, '/acq/a.tif', 10, 1, 1, 'done', 1, 1);
+                 INSERT INTO objects VALUES (1, 7, 12, NULL, 1.5, 2.5, 0, 0, 4, 4, 9.0, 108.0, 11.0,
+                                             12.0, 0.9, 4.0, 3.5, 0.5, NULL);",
             )
             .unwrap();
         }
@@ -302,6 +307,24 @@ mod tests {
         // Columns of later versions exist (v2: remedy, v3: bimodality).
         conn.prepare("SELECT count_source, bimodality FROM frames")
             .unwrap();
+        // v4: the old objects are the raw result's, every measure kept.
+        let object: (i64, String, i64, i64, f64, Option<String>) = conn
+            .query_row(
+                "SELECT frame_id, result, label, area_px, eccentricity, channels FROM objects",
+                [],
+                |r| {
+                    Ok((
+                        r.get(0)?,
+                        r.get(1)?,
+                        r.get(2)?,
+                        r.get(3)?,
+                        r.get(4)?,
+                        r.get(5)?,
+                    ))
+                },
+            )
+            .unwrap();
+        assert_eq!(object, (1, "raw".into(), 7, 12, 0.5, None));
     }
 
     #[test]

@@ -430,7 +430,10 @@ fn record_done(
     };
     tx.prepare_cached("DELETE FROM objects WHERE frame_id = ?1")?
         .execute([frame_id])?;
-    insert_objects(tx, frame_id, &r.objects)?;
+    insert_objects(tx, frame_id, "raw", &r.objects)?;
+    if let Some(flat) = &analysis.flattened {
+        insert_objects(tx, frame_id, "flattened", &flat.objects)?;
+    }
     Ok(Some(frame_id))
 }
 
@@ -441,24 +444,26 @@ const OBJECTS_PER_INSERT: usize = 32;
 fn insert_objects(
     tx: &Transaction<'_>,
     frame_id: i64,
+    result: &str,
     objects: &[crate::analysis::ObjectMeasures],
 ) -> rusqlite::Result<()> {
     use rusqlite::types::Value;
     for chunk in objects.chunks(OBJECTS_PER_INSERT) {
-        let row = "(?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)";
+        let row = "(?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)";
         let sql = format!(
-            "INSERT INTO objects (frame_id, label, area_px, area_um2, centroid_x, centroid_y,
+            "INSERT INTO objects (frame_id, result, label, area_px, area_um2, centroid_x, centroid_y,
                  bbox_x_min, bbox_y_min, bbox_x_max, bbox_y_max, mean_intensity, integrated_intensity,
                  max_intensity, perimeter_px, circularity, major_axis_px, minor_axis_px, eccentricity, channels)
              VALUES {}",
             vec![row; chunk.len()].join(", ")
         );
-        let mut values: Vec<Value> = Vec::with_capacity(chunk.len() * 19);
+        let mut values: Vec<Value> = Vec::with_capacity(chunk.len() * 20);
         for o in chunk {
             let channels = (!o.channels.is_empty())
                 .then(|| serde_json::to_string(&o.channels).unwrap_or_default());
             values.extend([
                 Value::Integer(frame_id),
+                Value::Text(result.to_owned()),
                 Value::Integer(i64::from(o.label)),
                 Value::Integer(o.area_px as i64),
                 o.area_um2.map_or(Value::Null, Value::Real),
@@ -652,6 +657,44 @@ mod tests {
         assert!(ended.is_some());
         let reported = seen.lock().unwrap().clone();
         assert_eq!(reported, vec![a.clone(), a, b, c]);
+    }
+
+    #[test]
+    fn both_results_of_a_flattened_frame_keep_their_objects() {
+        let dir = tempfile::tempdir().unwrap();
+        let db = dir.path().join("fw.db");
+        let (w, tx) = Writer::start(
+            open_for_writing(&db).unwrap(),
+            policy(false),
+            4,
+            4,
+            Box::new(|_| {}),
+        )
+        .unwrap();
+        let a = key("/acq/a.tif", 10);
+        let mut two_results = analysis(3);
+        two_results.flattened = Some(analysis(5).result);
+        tx.send(queued(&a)).unwrap();
+        for _ in 0..2 {
+            // Done twice (redone after a crash): still one set of each.
+            tx.send(StoreOp::Done {
+                key: a.clone(),
+                attempts: 1,
+                analysis: two_results.clone(),
+            })
+            .unwrap();
+        }
+        drop(tx);
+        w.join();
+        let conn = open_for_writing(&db).unwrap();
+        let per_result: Vec<(String, i64)> = conn
+            .prepare("SELECT result, count(*) FROM objects GROUP BY result ORDER BY result")
+            .unwrap()
+            .query_map([], |r| Ok((r.get(0)?, r.get(1)?)))
+            .unwrap()
+            .collect::<Result<_, _>>()
+            .unwrap();
+        assert_eq!(per_result, vec![("flattened".into(), 5), ("raw".into(), 3)]);
     }
 
     #[test]
