@@ -78,6 +78,10 @@ pub fn gaussian(frame: &Frame, sigma_px: f64) -> Frame {
 /// bilinearly; this is the usual speed-up and keeps the ball at ≥ 10 px.
 /// Offsets beyond the frame are ignored, so within about `radius / √2` of an
 /// edge that a steep slope runs into, part of the slope remains.
+///
+/// Checked against SciPy's grey erosion and dilation by the same non-flat ball
+/// in tests/quality_reference.rs: equal up to radius 10, within 1% of the
+/// background's range on average when shrunk.
 pub fn rolling_ball(frame: &Frame, radius_px: f64) -> Frame {
     let background = rolling_ball_background(frame, radius_px);
     let pixels = frame

@@ -17,7 +17,13 @@ Writes q_*.tif and quality_references.json with, per image:
   z = a + b u + c v + d u^2 + e v^2 + f u v by numpy.linalg.lstsq, evaluated on
   a 33 x 33 grid over [-1, 1]^2, (max - min) / mean);
 - flat_field: (raw - dark) / (flat - dark) * mean(flat - dark) in float64,
-  rounded and clipped (q_NAME.flat.bin), for the cases that carry flat frames.
+  rounded and clipped (q_NAME.flat.bin), for the cases that carry flat frames;
+- rolling-ball background (Sternberg 1983: the grey opening by a ball whose
+  height equals its radius): scipy.ndimage.grey_erosion then grey_dilation of
+  the float64 image with footprint = the disc d^2 <= r^2 and structure = the
+  ball's height sqrt(r^2 - d^2) over it, offsets beyond the frame ignored
+  (mode "constant" with cval +inf for the erosion, -inf for the dilation),
+  rounded (q_NAME.rball.bin, radius `ball_radius`).
 """
 import json
 import sys
@@ -81,22 +87,36 @@ def scene16(h, w, gradient):
     return np.clip(img, 0, 65535).astype(np.uint16)
 
 
+def rolling_ball_background(img, r):
+    reach = int(np.floor(r))
+    dy, dx = np.mgrid[-reach:reach + 1, -reach:reach + 1]
+    d2 = (dx * dx + dy * dy).astype(np.float64)
+    disc = d2 <= r * r
+    height = np.where(disc, np.sqrt(np.maximum(r * r - d2, 0.0)), 0.0)
+    f = img.astype(np.float64)
+    eroded = ndi.grey_erosion(f, footprint=disc, structure=height, mode="constant", cval=np.inf)
+    opened = ndi.grey_dilation(eroded, footprint=disc, structure=height, mode="constant", cval=-np.inf)
+    return np.round(opened)
+
+
 cases = []
+# name: (image, bit depth, Gaussian sigma, rolling-ball radius)
 images = {
-    "camera8": (data.camera(), 8, 1.5),
-    "coins8": (data.coins(), 8, 0.8),
-    "plate16": (scene16(180, 240, 0.4), 16, 2.0),
-    "flat16": (scene16(96, 128, 0.0), 16, 1.0),
+    "camera8": (data.camera(), 8, 1.5, 6.0),
+    "coins8": (data.coins(), 8, 0.8, 10.0),
+    "plate16": (scene16(180, 240, 0.4), 16, 2.0, 30.0),
+    "flat16": (scene16(96, 128, 0.0), 16, 1.0, 8.5),
 }
-for name, (img, bits, sigma) in images.items():
+for name, (img, bits, sigma, ball_radius) in images.items():
     tifffile.imwrite(out / f"q_{name}.tif", img)
     top = 255 if bits == 8 else 65535
     f = img.astype(np.float64)
     g = np.clip(np.round(ndi.gaussian_filter(f, sigma, mode="reflect", truncate=4.0)), 0, top)
     (out / f"q_{name}.gauss.bin").write_bytes(g.astype("<u2").tobytes())
+    (out / f"q_{name}.rball.bin").write_bytes(rolling_ball_background(img, ball_radius).astype("<u2").tobytes())
     t = int(threshold_otsu(img))
     case = dict(
-        name=name, file=f"q_{name}.tif", sigma=sigma, threshold=t,
+        name=name, file=f"q_{name}.tif", sigma=sigma, ball_radius=ball_radius, threshold=t,
         focus=float(np.var(ndi.laplace(f)[1:-1, 1:-1])),
         background_level=float(np.median(img[img <= t])),
         saturation_fraction=float(np.mean(img == top)),
