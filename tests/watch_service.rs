@@ -9,7 +9,7 @@ mod watch_support;
 use std::collections::HashMap;
 use std::io::Write;
 use std::process::Command;
-use std::time::Duration;
+use std::time::{Duration, Instant};
 
 use watch_support::{tiff_bytes, wait_for, Bench, BIN};
 
@@ -357,6 +357,69 @@ fn tells_systemd_it_is_ready_feeds_the_watchdog_and_says_stopping() {
     receive_until("WATCHDOG=1", &mut seen);
     bench.signal("TERM");
     receive_until("STOPPING=1", &mut seen);
+    assert_eq!(bench.wait_exit(Duration::from_secs(60)), Some(0));
+}
+
+#[test]
+fn a_stuck_writer_starves_the_watchdog_and_nothing_is_lost_once_it_moves() {
+    use std::os::unix::net::UnixDatagram;
+    // A tiny queue, so that a writer that cannot commit soon holds up the
+    // scheduler and the worker as well.
+    let mut bench = Bench::new("queue_capacity = 1\nworkers = 1\nsettle_ms = 100");
+    let socket_path = bench.dir.path().join("notify.sock");
+    let socket = UnixDatagram::bind(&socket_path).unwrap();
+    bench.start_with_env(&[
+        ("NOTIFY_SOCKET", socket_path.to_str().unwrap()),
+        ("WATCHDOG_USEC", "200000"),
+    ]);
+    let mut buf = [0u8; 512];
+    // Messages that arrive within `window`.
+    let mut messages = |window: Duration| -> Vec<String> {
+        let end = Instant::now() + window;
+        let mut got = Vec::new();
+        while let Some(left) = end.checked_duration_since(Instant::now()) {
+            socket
+                .set_read_timeout(Some(left.max(Duration::from_millis(1))))
+                .unwrap();
+            match socket.recv(&mut buf) {
+                Ok(n) => got.push(String::from_utf8_lossy(&buf[..n]).into_owned()),
+                Err(_) => break,
+            }
+        }
+        got
+    };
+    let fed = |m: &[String]| m.iter().any(|m| m.contains("WATCHDOG=1"));
+    assert!(fed(&messages(Duration::from_secs(5))), "fed while idle");
+
+    // Another connection takes the write lock: the writer waits on it (its
+    // busy timeout is 10 s) exactly as a stuck writer would.
+    let locker = rusqlite::Connection::open(&bench.db).unwrap();
+    locker.busy_timeout(Duration::from_secs(10)).unwrap();
+    locker.execute_batch("BEGIN IMMEDIATE").unwrap();
+    let (bytes, truth) = tiff_bytes(31, 96, 3);
+    for i in 0..12 {
+        bench.write(&format!("M01_t{i:04}.tif"), &bytes);
+    }
+    wait_for("the watchdog to go hungry", LONG, || {
+        bench.logs().contains("with work outstanding")
+    });
+    // Once the queues are full nothing moves (a hungry look may also come a
+    // little earlier, from a slow moment): after a second, no feed at all.
+    std::thread::sleep(Duration::from_secs(1));
+    messages(Duration::from_millis(200));
+    let starved = messages(Duration::from_millis(1500));
+    assert!(!fed(&starved), "fed while stuck: {starved:?}");
+
+    locker.execute_batch("ROLLBACK").unwrap();
+    drop(locker);
+    let rows = bench.wait_finished(12, LONG);
+    assert_each_done_once(&rows, 12);
+    assert!(rows.iter().all(|r| r.object_count == Some(truth as i64)));
+    assert!(
+        fed(&messages(Duration::from_secs(5))),
+        "fed again once the pipeline moves"
+    );
+    bench.signal("TERM");
     assert_eq!(bench.wait_exit(Duration::from_secs(60)), Some(0));
 }
 

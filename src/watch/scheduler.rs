@@ -256,6 +256,10 @@ impl Scheduler {
             c.due = now + MIN_LOOK_GAP;
             return Look::Again;
         }
+        // Outstanding from here on: the store send below blocks while the
+        // writer is stuck and its queue full, and the watchdog must then see
+        // work waiting rather than an idle pipeline.
+        self.progress.enqueued.fetch_add(1, Ordering::Relaxed);
         if recorded.is_none() {
             // Ordered before the job itself, so the row exists when its result arrives.
             self.send_store(StoreOp::Queued {
@@ -272,10 +276,12 @@ impl Scheduler {
             ready_at: now,
             attempts: c.attempts,
         };
-        // Only this thread sends, so a queue that was not full has room.
+        // Only this thread sends, so a queue that was not full has room; it
+        // fails only once the workers are gone (shutdown).
         if self.work_tx.try_send(job).is_ok() {
-            self.progress.enqueued.fetch_add(1, Ordering::Relaxed);
             in_flight.insert(path.to_path_buf(), key);
+        } else {
+            self.progress.enqueued.fetch_sub(1, Ordering::Relaxed);
         }
         Look::Drop
     }
