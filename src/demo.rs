@@ -132,17 +132,7 @@ pub fn run(
     // The cells divide through the run, which raises counts and image detail on
     // purpose: like a user of a growing culture, the demo leaves object_count and
     // focus out of the alerting charts.
-    let config = format!(
-        "[watch]\nfolders = [\"{}\"]\nsettle_ms = 300\nretry_limit = 3\nretry_backoff_ms = 200\n\
-         name_pattern = '^(?P<well>[A-P]\\d{{2}})_t(?P<time_point>\\d+)_(?P<channel>[^.]+)\\.tif$'\n\
-         [store]\ndatabase = \"{}\"\n\
-         [quality]\nbaseline_frames = 4\non_uneven_illumination = \"flatten\"\n\
-         charted_metrics = [\"background_level\", \"illumination_change\", \"threshold\", \"separability\"]\n\
-         [alerts]\nfile = \"{}\"\n",
-        acq.display(),
-        db.display(),
-        workdir.join("alerts.jsonl").display()
-    );
+    let config = demo_config(&acq, &db, &workdir.join("alerts.jsonl"));
     let settings: Settings = crate::settings::parse(&config, &workdir.join("demo.toml"))
         .map_err(|e| DemoError::Scenario(format!("demo settings: {e}")))?;
     let service = Service::start(&settings, &WatchOptions { new_run: true })?;
@@ -276,9 +266,75 @@ fn per_well(db: &Path, s: &Scenario) -> Result<Vec<String>, DemoError> {
     Ok(rows.collect::<Result<_, _>>().map_err(sqlite)?)
 }
 
+/// A new, empty folder `framewarden-demo-<pid>[-n]` under `parent`: never one
+/// left by an earlier demo (`--keep`, or a process id used again).
+///
+/// # Errors
+/// A message naming the folder when none can be created.
+pub fn fresh_folder(parent: &Path) -> Result<PathBuf, String> {
+    let stem = format!("framewarden-demo-{}", std::process::id());
+    let mut last_error = String::new();
+    for n in 1..=100 {
+        let dir = parent.join(if n == 1 {
+            stem.clone()
+        } else {
+            format!("{stem}-{n}")
+        });
+        match std::fs::create_dir(&dir) {
+            Ok(()) => return Ok(dir),
+            Err(e) if e.kind() == std::io::ErrorKind::AlreadyExists => {
+                last_error = format!("{} exists", dir.display());
+            }
+            Err(e) => return Err(format!("{}: {e}", dir.display())),
+        }
+    }
+    Err(format!(
+        "no free demo folder under {}: {last_error}",
+        parent.display()
+    ))
+}
+
+/// The demo's settings as TOML. Paths are written as escaped TOML strings:
+/// Windows paths are full of backslashes.
+fn demo_config(acq: &Path, db: &Path, alerts: &Path) -> String {
+    let quoted = |p: &Path| toml::Value::String(p.display().to_string()).to_string();
+    format!(
+        "[watch]\nfolders = [{}]\nsettle_ms = 300\nretry_limit = 3\nretry_backoff_ms = 200\n\
+         name_pattern = '^(?P<well>[A-P]\\d{{2}})_t(?P<time_point>\\d+)_(?P<channel>[^.]+)\\.tif$'\n\
+         [store]\ndatabase = {}\n\
+         [quality]\nbaseline_frames = 4\non_uneven_illumination = \"flatten\"\n\
+         charted_metrics = [\"background_level\", \"illumination_change\", \"threshold\", \"separability\"]\n\
+         [alerts]\nfile = {}\n",
+        quoted(acq),
+        quoted(db),
+        quoted(alerts)
+    )
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    #[test]
+    fn each_demo_gets_a_folder_of_its_own() {
+        let parent = tempfile::tempdir().unwrap();
+        let first = fresh_folder(parent.path()).unwrap();
+        std::fs::write(first.join("left-over.tif"), b"x").unwrap();
+        let second = fresh_folder(parent.path()).unwrap();
+        assert_ne!(first, second);
+        assert_eq!(std::fs::read_dir(&second).unwrap().count(), 0);
+    }
+
+    #[test]
+    fn demo_settings_keep_paths_with_backslashes_and_quotes() {
+        let dir = Path::new("/tmp/night \\ \"run\" 'A'");
+        let (acq, db, alerts) = (dir.join("acq"), dir.join("fw.db"), dir.join("a.jsonl"));
+        let text = demo_config(&acq, &db, &alerts);
+        let settings = crate::settings::parse(&text, &dir.join("demo.toml")).unwrap();
+        assert_eq!(settings.watch.folders, vec![acq]);
+        assert_eq!(settings.store.database, db);
+        assert_eq!(settings.alerts.file, Some(alerts));
+    }
 
     #[test]
     fn the_built_in_scenario_parses_and_declines_late() {

@@ -127,8 +127,13 @@ fn main() -> ExitCode {
                     }
                 },
             };
-            let workdir =
-                std::env::temp_dir().join(format!("framewarden-demo-{}", std::process::id()));
+            let workdir = match framewarden::demo::fresh_folder(&std::env::temp_dir()) {
+                Ok(dir) => dir,
+                Err(e) => {
+                    eprintln!("framewarden demo: {e}");
+                    return ExitCode::from(1);
+                }
+            };
             let result = framewarden::demo::Scenario::parse(&text)
                 .and_then(|s| framewarden::demo::run(&s, &workdir, &mut std::io::stdout().lock()));
             if keep {

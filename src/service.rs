@@ -29,6 +29,28 @@ pub fn stop_signal() -> std::io::Result<impl Future<Output = ()>> {
     })
 }
 
+/// On Windows: Ctrl-C or Ctrl-Break in the console, the console window being
+/// closed, or the system shutting down (Windows then allows a few seconds).
+///
+/// # Errors
+/// When a handler cannot be installed.
+#[cfg(windows)]
+pub fn stop_signal() -> std::io::Result<impl Future<Output = ()>> {
+    use tokio::signal::windows::{ctrl_break, ctrl_c, ctrl_close, ctrl_shutdown};
+    let mut interrupt = ctrl_c()?;
+    let mut brk = ctrl_break()?;
+    let mut close = ctrl_close()?;
+    let mut shutdown = ctrl_shutdown()?;
+    Ok(async move {
+        tokio::select! {
+            _ = interrupt.recv() => tracing::info!("interrupted (Ctrl-C)"),
+            _ = brk.recv() => tracing::info!("interrupted (Ctrl-Break)"),
+            _ = close.recv() => tracing::info!("console closed"),
+            _ = shutdown.recv() => tracing::info!("system shutting down"),
+        }
+    })
+}
+
 /// Runs `watch` until SIGINT/SIGTERM: builds the runtime, starts the service,
 /// tells systemd it is ready, feeds the watchdog while the pipeline makes
 /// progress, and stops within the configured bound.
@@ -56,11 +78,11 @@ async fn watch_with_systemd(
     shutdown: impl Future<Output = ()>,
 ) -> Result<WatchSummary, WatchError> {
     let service = Service::start(settings, options)?;
-    notify_systemd(&[sd_notify::NotifyState::Ready]);
+    tell_systemd(Note::Ready);
     let progress = service.progress();
     let watchdog = async move {
         // Without a watchdog configured, this arm never completes.
-        let Some(interval) = sd_notify::watchdog_enabled() else {
+        let Some(interval) = watchdog_interval() else {
             return std::future::pending::<()>().await;
         };
         let mut last_finished = u64::MAX;
@@ -71,7 +93,7 @@ async fn watch_with_systemd(
             // at least one frame finished since the last feed. A stuck worker
             // or writer starves it and systemd restarts the service.
             if progress.outstanding() == 0 || finished != last_finished {
-                notify_systemd(&[sd_notify::NotifyState::Watchdog]);
+                tell_systemd(Note::Watchdog);
                 last_finished = finished;
             } else {
                 tracing::warn!(
@@ -85,7 +107,7 @@ async fn watch_with_systemd(
         () = shutdown => {}
         () = watchdog => {}
     }
-    notify_systemd(&[sd_notify::NotifyState::Stopping]);
+    tell_systemd(Note::Stopping);
     tracing::info!("stopping: finishing frames in hand");
     let summary = service.stop_within_bound().await;
     tracing::info!(
@@ -102,9 +124,38 @@ async fn watch_with_systemd(
     Ok(summary)
 }
 
-fn notify_systemd(states: &[sd_notify::NotifyState<'_>]) {
+/// What the service tells systemd.
+#[derive(Debug, Clone, Copy)]
+enum Note {
+    Ready,
+    Watchdog,
+    Stopping,
+}
+
+#[cfg(unix)]
+fn tell_systemd(note: Note) {
+    let state = match note {
+        Note::Ready => sd_notify::NotifyState::Ready,
+        Note::Watchdog => sd_notify::NotifyState::Watchdog,
+        Note::Stopping => sd_notify::NotifyState::Stopping,
+    };
     // Outside systemd NOTIFY_SOCKET is unset and this is a no-op.
-    if let Err(e) = sd_notify::notify(states) {
+    if let Err(e) = sd_notify::notify(&[state]) {
         tracing::debug!("systemd notify failed: {e}");
     }
+}
+
+/// No systemd here: nothing to tell.
+#[cfg(not(unix))]
+fn tell_systemd(_note: Note) {}
+
+/// The watchdog interval systemd asks for (`WATCHDOG_USEC`), if any.
+#[cfg(unix)]
+fn watchdog_interval() -> Option<std::time::Duration> {
+    sd_notify::watchdog_enabled()
+}
+
+#[cfg(not(unix))]
+fn watchdog_interval() -> Option<std::time::Duration> {
+    None
 }

@@ -393,12 +393,32 @@ fn free_bytes(path: &Path) -> Option<u64> {
     (rc == 0).then(|| u64::from(stat.f_bavail).saturating_mul(u64::from(stat.f_frsize)))
 }
 
-#[cfg(not(unix))]
+/// Bytes available to the caller on the volume holding `path`
+/// (`GetDiskFreeSpaceExW`); `None` where it cannot be asked.
+#[cfg(windows)]
+fn free_bytes(path: &Path) -> Option<u64> {
+    use std::os::windows::ffi::OsStrExt;
+    use windows_sys::Win32::Storage::FileSystem::GetDiskFreeSpaceExW;
+    let wide: Vec<u16> = path.as_os_str().encode_wide().chain([0]).collect();
+    let mut available = 0u64;
+    // SAFETY: `wide` is NUL-terminated and outlives the call; the two totals
+    // we do not want may be null.
+    let ok = unsafe {
+        GetDiskFreeSpaceExW(
+            wide.as_ptr(),
+            &mut available,
+            std::ptr::null_mut(),
+            std::ptr::null_mut(),
+        )
+    };
+    (ok != 0).then_some(available)
+}
+
+#[cfg(not(any(unix, windows)))]
 fn free_bytes(_path: &Path) -> Option<u64> {
     None
 }
 
-/// The run, path and position of a frame row.
 /// The run, path, position and latency (ready to recorded, ms) of a frame row.
 fn frame_row(
     conn: &Connection,

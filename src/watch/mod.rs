@@ -120,7 +120,8 @@ impl Service {
         watch.folders = watch
             .folders
             .iter()
-            .map(|f| match f.canonicalize() {
+            // dunce: the plain `C:\...` form on Windows, not `\\?\C:\...`.
+            .map(|f| match dunce::canonicalize(f) {
                 Ok(c) if c.is_dir() => Ok(c),
                 _ => Err(WatchError::MissingFolder(f.clone())),
             })
