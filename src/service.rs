@@ -69,7 +69,12 @@ pub fn watch_until_signal(
         let _context = runtime.enter();
         stop_signal().map_err(|e| WatchError::Start(format!("signal handlers: {e}")))?
     };
-    runtime.block_on(watch_with_systemd(settings, options, shutdown))
+    let result = runtime.block_on(watch_with_systemd(settings, options, shutdown));
+    // A stop that overran its bound is still running on the blocking pool;
+    // dropping the runtime would wait for it forever. Leave it: the process is
+    // about to exit, and whatever it held stays queued for the next start.
+    runtime.shutdown_background();
+    result
 }
 
 async fn watch_with_systemd(

@@ -424,6 +424,44 @@ fn a_stuck_writer_starves_the_watchdog_and_nothing_is_lost_once_it_moves() {
 }
 
 #[test]
+fn a_stop_held_up_by_a_locked_database_keeps_its_bound_and_a_restart_loses_nothing() {
+    let mut bench =
+        Bench::new("queue_capacity = 1\nworkers = 1\nsettle_ms = 100\nshutdown_timeout_s = 2");
+    bench.start();
+    // Another connection holds the write lock through the stop.
+    let locker = rusqlite::Connection::open(&bench.db).unwrap();
+    locker.busy_timeout(Duration::from_secs(10)).unwrap();
+    locker.execute_batch("BEGIN IMMEDIATE").unwrap();
+    let (bytes, truth) = tiff_bytes(32, 96, 3);
+    for i in 0..8 {
+        bench.write(&format!("N01_t{i:04}.tif"), &bytes);
+    }
+    // Settled (100 ms), analysed, and stuck at the store.
+    std::thread::sleep(Duration::from_millis(1500));
+    let asked = Instant::now();
+    bench.signal("TERM");
+    // The writer cannot finish; the stop gives up at its 2 s bound instead of
+    // waiting for it (its busy timeout alone is 10 s).
+    assert_eq!(bench.wait_exit(Duration::from_secs(60)), Some(0));
+    let took = asked.elapsed();
+    assert!(took < Duration::from_secs(8), "stopped after {took:?}");
+    assert!(
+        bench.logs().contains("shutdown exceeded 2 s"),
+        "{}",
+        bench.logs()
+    );
+    locker.execute_batch("ROLLBACK").unwrap();
+    drop(locker);
+    // The next start's catch-up redoes whatever was not committed: each file once.
+    bench.start();
+    let rows = bench.wait_finished(8, LONG);
+    assert_each_done_once(&rows, 8);
+    assert!(rows.iter().all(|r| r.object_count == Some(truth as i64)));
+    bench.signal("TERM");
+    assert_eq!(bench.wait_exit(Duration::from_secs(60)), Some(0));
+}
+
+#[test]
 fn a_folder_moved_in_with_files_already_inside_is_scanned() {
     // No periodic rescan within the test: only the folder's own event can find them.
     let mut bench = Bench::new("rescan_interval_s = 3600");
