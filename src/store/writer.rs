@@ -196,9 +196,14 @@ impl WriterState {
         }
     }
 
+    /// Commits `batch`, retrying: for as long as it takes while the database
+    /// is busy, locked, full or failing I/O (conditions that clear: another
+    /// program's transaction ends, space is freed), so nothing is dropped and
+    /// the bounded channel holds the pipeline back meanwhile; up to
+    /// `GIVE_UP_AFTER` attempts for any other error.
     fn commit_with_retry(&mut self, batch: &[StoreOp]) {
-        const ATTEMPTS: u32 = 5;
-        for attempt in 1..=ATTEMPTS {
+        const GIVE_UP_AFTER: u32 = 5;
+        for attempt in 1u32.. {
             let checkpoint = self.qc.as_ref().map(QcRecorder::checkpoint);
             let result = self.commit(batch);
             if let (Some(qc), Some(checkpoint)) = (self.qc.as_mut(), checkpoint) {
@@ -209,17 +214,18 @@ impl WriterState {
             }
             match result {
                 Ok(()) => return,
-                Err(e) if attempt < ATTEMPTS => {
+                Err(e) if attempt < GIVE_UP_AFTER || clears_by_itself(&e) => {
                     tracing::warn!(
-                        "store: commit of {} ops failed ({e}); retrying",
+                        "store: commit of {} ops failed ({e}); retrying (attempt {attempt})",
                         batch.len()
                     );
-                    std::thread::sleep(Duration::from_millis(200 * u64::from(attempt)));
+                    std::thread::sleep(Duration::from_millis(200 * u64::from(attempt.min(25))));
                 }
                 Err(e) => {
                     // Nothing is lost for good: the frames stay unrecorded or
                     // queued, and the next start's catch-up scan redoes them.
                     tracing::error!("store: giving up on a batch of {} ops: {e}", batch.len());
+                    return;
                 }
             }
         }
@@ -282,6 +288,15 @@ impl WriterState {
         self.run = run;
         Ok(())
     }
+}
+
+/// SQLite errors that go away without anything changing in framewarden.
+fn clears_by_itself(e: &rusqlite::Error) -> bool {
+    use rusqlite::ErrorCode::{DatabaseBusy, DatabaseLocked, DiskFull, SystemIoFailure};
+    matches!(
+        e.sqlite_error_code(),
+        Some(DatabaseBusy | DatabaseLocked | DiskFull | SystemIoFailure)
+    )
 }
 
 /// Continues the last run when it watched the same folders and saw a frame
@@ -695,6 +710,32 @@ mod tests {
             .collect::<Result<_, _>>()
             .unwrap();
         assert_eq!(per_result, vec![("flattened".into(), 5), ("raw".into(), 3)]);
+    }
+
+    #[test]
+    fn a_batch_waits_out_a_long_lock_and_is_recorded() {
+        let dir = tempfile::tempdir().unwrap();
+        let db = dir.path().join("fw.db");
+        let conn = open_for_writing(&db).unwrap();
+        // A short busy timeout, so that the lock below outlasts what five
+        // attempts would wait (5 x 50 ms + 200 + 400 + 600 + 800 ms).
+        conn.busy_timeout(Duration::from_millis(50)).unwrap();
+        let (w, tx) = Writer::start(conn, policy(false), 4, 4, Box::new(|_| {})).unwrap();
+        let locker = open_for_writing(&db).unwrap();
+        locker.execute_batch("BEGIN IMMEDIATE").unwrap();
+        let a = key("/acq/a.tif", 10);
+        tx.send(queued(&a)).unwrap();
+        tx.send(StoreOp::Done {
+            key: a.clone(),
+            attempts: 1,
+            analysis: analysis(2),
+        })
+        .unwrap();
+        std::thread::sleep(Duration::from_millis(3500));
+        locker.execute_batch("ROLLBACK").unwrap();
+        drop(tx);
+        w.join();
+        assert_eq!(lookup(&locker, &a).unwrap(), Some(FrameStatus::Done));
     }
 
     #[test]
