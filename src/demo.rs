@@ -198,14 +198,7 @@ pub fn run(
     );
     let report = status::read(&db, 8)?;
     let _ = write!(out, "{}", status::render(&report));
-    let _ = writeln!(
-        out,
-        "\nobjects per well, first and last time point (one SQL query on {}):",
-        db.display()
-    );
-    for line in per_well(&db, scenario)? {
-        let _ = writeln!(out, "  {line}");
-    }
+    let _ = writeln!(out, "\nevery result is in {}", db.display());
     Ok(report)
 }
 
@@ -234,36 +227,6 @@ fn write_like_an_instrument(
         std::fs::rename(&target, path)?;
     }
     Ok(())
-}
-
-fn per_well(db: &Path, s: &Scenario) -> Result<Vec<String>, DemoError> {
-    let conn = crate::store::open_read_only(db)?;
-    let sqlite = |source| crate::store::StoreError::Sqlite {
-        path: db.to_path_buf(),
-        source,
-    };
-    let mut stmt = conn
-        .prepare(
-            "SELECT well, time_point, COALESCE(flat_object_count, object_count), status FROM frames
-             WHERE run_id = (SELECT max(id) FROM runs) AND (CAST(time_point AS INTEGER) IN (0, ?1))
-             ORDER BY well, time_point",
-        )
-        .map_err(sqlite)?;
-    let rows = stmt
-        .query_map([s.time_points as i64 - 1], |r| {
-            let well: Option<String> = r.get(0)?;
-            let t: Option<String> = r.get(1)?;
-            let count: Option<i64> = r.get(2)?;
-            let status: String = r.get(3)?;
-            Ok(format!(
-                "{} t{}: {}",
-                well.unwrap_or_default(),
-                t.unwrap_or_default(),
-                count.map_or(status, |c| format!("{c} objects"))
-            ))
-        })
-        .map_err(sqlite)?;
-    Ok(rows.collect::<Result<_, _>>().map_err(sqlite)?)
 }
 
 /// A new, empty folder `framewarden-demo-<pid>[-n]` under `parent`: never one

@@ -10,7 +10,7 @@ use std::path::Path;
 use rusqlite::{params, Connection, OptionalExtension};
 use serde::Serialize;
 
-use crate::store::{self, now_ms, StoreError};
+use crate::store::{self, now_ms, StoreError, POSITION_SQL};
 
 /// Everything `status` shows; `--json` prints it as one document.
 #[derive(Debug, Clone, Serialize, PartialEq)]
@@ -37,8 +37,30 @@ pub struct StatusReport {
     pub failures: Vec<RecentFrame>,
     /// The run's alert episodes, open ones first.
     pub alerts: Vec<crate::qc::report::AlertRow>,
+    /// Frames per flag over the whole run, most frequent first.
+    pub flag_counts: Vec<crate::qc::report::FlagCount>,
     /// The most recent frames with quality flags or a failure, newest first.
     pub flagged_frames: Vec<crate::qc::report::FlaggedFrame>,
+    /// One line per position (well, and site) when the file-name pattern
+    /// names them; empty otherwise.
+    pub positions: Vec<PositionSummary>,
+}
+
+/// A position's frames and counts over the run.
+#[derive(Debug, Clone, Serialize, PartialEq)]
+pub struct PositionSummary {
+    pub position: String,
+    pub frames_done: u64,
+    pub frames_failed: u64,
+    /// Done frames with at least one quality flag.
+    pub frames_flagged: u64,
+    /// Counts used (flattened recount where the remedy ran) of the position's
+    /// first and last done frames, in the order they were recorded, and the
+    /// smallest and largest.
+    pub first_count: Option<i64>,
+    pub last_count: Option<i64>,
+    pub min_count: Option<i64>,
+    pub max_count: Option<i64>,
 }
 
 #[derive(Debug, Clone, Serialize, PartialEq)]
@@ -108,7 +130,9 @@ fn query(conn: &Connection, db: &Path, recent: usize) -> rusqlite::Result<Status
         frames: Vec::new(),
         failures: Vec::new(),
         alerts: Vec::new(),
+        flag_counts: Vec::new(),
         flagged_frames: Vec::new(),
+        positions: Vec::new(),
     };
     let run = conn
         .query_row(
@@ -184,8 +208,53 @@ fn query(conn: &Connection, db: &Path, recent: usize) -> rusqlite::Result<Status
     report.frames = recent_of(false)?;
     report.failures = recent_of(true)?;
     report.alerts = crate::qc::report::alerts(conn, run_id)?;
+    report.flag_counts = crate::qc::report::flag_counts(conn, run_id)?;
     report.flagged_frames = crate::qc::report::flagged_frames(conn, run_id, recent)?;
+    report.positions = positions(conn, run_id)?;
     Ok(report)
+}
+
+/// Per-position summaries, folded from the run's rows in recording order.
+fn positions(conn: &Connection, run_id: i64) -> rusqlite::Result<Vec<PositionSummary>> {
+    let mut stmt = conn.prepare(&format!(
+        "SELECT {POSITION_SQL} AS position, status, COALESCE(flat_object_count, object_count),
+                EXISTS (SELECT 1 FROM flags WHERE frame_id = frames.id)
+         FROM frames WHERE run_id = ?1 AND {POSITION_SQL} <> '' ORDER BY position, id"
+    ))?;
+    let mut rows = stmt.query([run_id])?;
+    let mut out: Vec<PositionSummary> = Vec::new();
+    while let Some(r) = rows.next()? {
+        let position: String = r.get(0)?;
+        if out.last().is_none_or(|p| p.position != position) {
+            out.push(PositionSummary {
+                position,
+                frames_done: 0,
+                frames_failed: 0,
+                frames_flagged: 0,
+                first_count: None,
+                last_count: None,
+                min_count: None,
+                max_count: None,
+            });
+        }
+        let p = out.last_mut().expect("pushed above");
+        let status: String = r.get(1)?;
+        match status.as_str() {
+            "done" => {
+                p.frames_done += 1;
+                p.frames_flagged += u64::from(r.get::<_, bool>(3)?);
+                if let Some(count) = r.get::<_, Option<i64>>(2)? {
+                    p.first_count.get_or_insert(count);
+                    p.last_count = Some(count);
+                    p.min_count = Some(p.min_count.map_or(count, |m| m.min(count)));
+                    p.max_count = Some(p.max_count.map_or(count, |m| m.max(count)));
+                }
+            }
+            "failed" => p.frames_failed += 1,
+            _ => {}
+        }
+    }
+    Ok(out)
 }
 
 /// The report as text for a terminal.
@@ -255,7 +324,35 @@ pub fn render(report: &StatusReport) -> String {
             );
         }
     }
-    crate::qc::report::render(&report.alerts, &report.flagged_frames, &mut out);
+    if !report.positions.is_empty() {
+        let _ = writeln!(out, "\nper position:");
+        let _ = writeln!(
+            out,
+            "  {:<12} {:>5} {:>6} {:>7}  objects first -> last (min-max)",
+            "position", "done", "failed", "flagged"
+        );
+        let count = |c: Option<i64>| c.map_or_else(|| "-".into(), |c| c.to_string());
+        for p in &report.positions {
+            let _ = writeln!(
+                out,
+                "  {:<12} {:>5} {:>6} {:>7}  {} -> {} ({}-{})",
+                p.position,
+                p.frames_done,
+                p.frames_failed,
+                p.frames_flagged,
+                count(p.first_count),
+                count(p.last_count),
+                count(p.min_count),
+                count(p.max_count)
+            );
+        }
+    }
+    crate::qc::report::render(
+        &report.alerts,
+        &report.flag_counts,
+        &report.flagged_frames,
+        &mut out,
+    );
     out
 }
 

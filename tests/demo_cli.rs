@@ -31,15 +31,21 @@ fn the_demo_records_every_frame_and_explains_its_alerts() {
     // The late frames are flagged for uneven illumination and recounted flat.
     has("uneven_illumination: uneven illumination: the background changes by");
     has("the count is taken from the flattened result");
-    // The per-well counts: the cells divide through the run.
-    let count = |well_time: &str| -> u32 {
+    // The per-well summary: every well's cells divide through the run, and
+    // the cut-off file is B03's.
+    has("per position:");
+    for well in ["A01", "A02", "A03", "A04", "B01", "B02", "B03", "B04"] {
         let line = stdout
             .lines()
-            .find(|l| l.trim_start().starts_with(well_time))
-            .unwrap_or_else(|| panic!("no {well_time} line:\n{stdout}"));
-        line.split_whitespace().nth(2).unwrap().parse().unwrap()
-    };
-    assert!(count("A01 t0011:") > count("A01 t0000:"), "{stdout}");
+            .find(|l| l.trim_start().starts_with(well))
+            .unwrap_or_else(|| panic!("no {well} line:\n{stdout}"));
+        // position, done, failed, flagged, first, "->", last, (min-max)
+        let words: Vec<&str> = line.split_whitespace().collect();
+        let failed = if well == "B03" { "1" } else { "0" };
+        assert_eq!(words[2], failed, "{line}");
+        let (first, last): (u32, u32) = (words[4].parse().unwrap(), words[6].parse().unwrap());
+        assert!(last > first, "{line}");
+    }
     // Nothing is left behind without --keep.
     let acquisition = stdout
         .lines()

@@ -181,6 +181,37 @@ fn status_shows_a_drift_alert_its_recovery_the_flags_and_failures() {
     assert_eq!(drift.len(), 1, "{status:#}");
     assert!(drift[0]["closed_at"].is_string(), "{status:#}");
 
+    // The morning summary: frames per flag over the whole run, and per well.
+    let count_of = |flag: &str| {
+        status["flag_counts"]
+            .as_array()
+            .unwrap()
+            .iter()
+            .find(|c| c["flag"] == flag)
+            .map_or(0, |c| c["frames"].as_u64().unwrap())
+    };
+    assert!(count_of("uneven_illumination") >= 1, "{status:#}");
+    assert_eq!(count_of("failed"), 1, "{status:#}");
+    let positions = status["positions"].as_array().unwrap();
+    let wells: Vec<&str> = positions
+        .iter()
+        .map(|p| p["position"].as_str().unwrap())
+        .collect();
+    assert_eq!(wells, ["A01", "B01", "C01"], "{status:#}");
+    let (a01, b01, c01) = (&positions[0], &positions[1], &positions[2]);
+    assert_eq!(
+        (a01["frames_done"].as_u64(), a01["frames_failed"].as_u64()),
+        (Some(30), Some(0))
+    );
+    assert!(a01["min_count"].as_i64() <= a01["max_count"].as_i64());
+    assert_eq!(b01["frames_flagged"].as_u64(), Some(1), "{b01}");
+    assert_eq!(b01["last_count"].as_i64(), Some(flat_count), "{b01}");
+    assert_eq!(
+        (c01["frames_done"].as_u64(), c01["frames_failed"].as_u64()),
+        (Some(0), Some(1))
+    );
+    assert!(c01["first_count"].is_null());
+
     // The text view explains it in sentences.
     let text = Command::new(BIN)
         .args(["status", "--config"])
@@ -189,6 +220,8 @@ fn status_shows_a_drift_alert_its_recovery_the_flags_and_failures() {
         .unwrap();
     let text = String::from_utf8(text.stdout).unwrap();
     assert!(text.contains("drift:background_level"), "{text}");
+    assert!(text.contains("flags over the run (frames):"), "{text}");
+    assert!(text.contains("per position:"), "{text}");
     assert!(text.contains("uneven illumination"), "{text}");
 
     // The file sink got the opening and the recovery, in that order.

@@ -17,12 +17,7 @@ use crate::qc::flags::FrameMetrics;
 use crate::qc::monitor::RunMonitor;
 use crate::qc::sinks::AlertDispatcher;
 use crate::settings::Settings;
-use crate::store::{now_ms, FrameKey};
-
-/// SQL for a frame row's position: the well, and the site when there is one
-/// (empty when the file-name pattern names neither).
-const POSITION_SQL: &str =
-    "TRIM(COALESCE(well, '') || CASE WHEN site IS NULL THEN '' ELSE ' site ' || site END)";
+use crate::store::{now_ms, FrameKey, POSITION_SQL};
 
 /// Condition of a service restart in the middle of a run.
 pub const SERVICE_RESTARTED: &str = "service_restarted";

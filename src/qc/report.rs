@@ -79,6 +79,35 @@ pub fn alerts(conn: &Connection, run_id: i64) -> rusqlite::Result<Vec<AlertRow>>
     rows.collect()
 }
 
+/// How many frames of the run carry one flag (failures count as `failed`).
+#[derive(Debug, Clone, Serialize, PartialEq)]
+pub struct FlagCount {
+    pub flag: String,
+    pub frames: u64,
+}
+
+/// Frames per flag over the whole run, most frequent first: the morning's
+/// summary, where [`flagged_frames`] lists only the newest.
+///
+/// # Errors
+/// SQLite errors.
+pub fn flag_counts(conn: &Connection, run_id: i64) -> rusqlite::Result<Vec<FlagCount>> {
+    let mut stmt = conn.prepare(
+        "SELECT kind, count(DISTINCT frame_id) FROM flags JOIN frames ON frames.id = flags.frame_id
+         WHERE frames.run_id = ?1 GROUP BY kind
+         UNION ALL
+         SELECT 'failed', count(*) FROM frames WHERE run_id = ?1 AND status = 'failed' HAVING count(*) > 0
+         ORDER BY 2 DESC, 1",
+    )?;
+    let rows = stmt.query_map([run_id], |r| {
+        Ok(FlagCount {
+            flag: r.get(0)?,
+            frames: r.get::<_, i64>(1)? as u64,
+        })
+    })?;
+    rows.collect()
+}
+
 /// The `limit` newest frames of the run with flags or a failure, with their flags.
 ///
 /// # Errors
@@ -121,8 +150,13 @@ pub fn flagged_frames(
     Ok(out)
 }
 
-/// The two lists as text for a terminal.
-pub fn render(alerts: &[AlertRow], flagged: &[FlaggedFrame], out: &mut String) {
+/// The lists as text for a terminal.
+pub fn render(
+    alerts: &[AlertRow],
+    counts: &[FlagCount],
+    flagged: &[FlaggedFrame],
+    out: &mut String,
+) {
     if !alerts.is_empty() {
         let open = alerts.iter().filter(|a| a.closed_at.is_none()).count();
         let _ = writeln!(out, "\nalerts ({open} open):");
@@ -141,8 +175,14 @@ pub fn render(alerts: &[AlertRow], flagged: &[FlaggedFrame], out: &mut String) {
             }
         }
     }
+    if !counts.is_empty() {
+        let _ = writeln!(out, "\nflags over the run (frames):");
+        for c in counts {
+            let _ = writeln!(out, "  {:<24} {:>7}", c.flag, c.frames);
+        }
+    }
     if !flagged.is_empty() {
-        let _ = writeln!(out, "\nflagged frames:");
+        let _ = writeln!(out, "\nflagged frames (newest {}):", flagged.len());
         for f in flagged {
             let _ = writeln!(out, "  {}", f.file);
             for flag in &f.flags {

@@ -28,6 +28,11 @@ const MIGRATIONS: &[&str] = &[
 /// The schema version this build writes and reads.
 pub const SCHEMA_VERSION: i32 = MIGRATIONS.len() as i32;
 
+/// SQL for a frame row's position: the well, and the site when there is one
+/// (empty when the file-name pattern names neither).
+pub const POSITION_SQL: &str =
+    "TRIM(COALESCE(well, '') || CASE WHEN site IS NULL THEN '' ELSE ' site ' || site END)";
+
 /// Errors opening or using the database, with what to do about them.
 #[derive(Debug, thiserror::Error)]
 pub enum StoreError {
