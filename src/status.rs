@@ -326,16 +326,23 @@ pub fn render(report: &StatusReport) -> String {
     }
     if !report.positions.is_empty() {
         let _ = writeln!(out, "\nper position:");
+        let width = report
+            .positions
+            .iter()
+            .map(|p| p.position.chars().count())
+            .max()
+            .unwrap_or(0)
+            .max("position".len());
         let _ = writeln!(
             out,
-            "  {:<12} {:>5} {:>6} {:>7}  objects first -> last (min-max)",
+            "  {:<width$} {:>5} {:>6} {:>7}  objects first -> last (min-max)",
             "position", "done", "failed", "flagged"
         );
         let count = |c: Option<i64>| c.map_or_else(|| "-".into(), |c| c.to_string());
         for p in &report.positions {
             let _ = writeln!(
                 out,
-                "  {:<12} {:>5} {:>6} {:>7}  {} -> {} ({}-{})",
+                "  {:<width$} {:>5} {:>6} {:>7}  {} -> {} ({}-{})",
                 p.position,
                 p.frames_done,
                 p.frames_failed,

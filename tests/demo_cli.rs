@@ -39,11 +39,11 @@ fn the_demo_records_every_frame_and_explains_its_alerts() {
             .lines()
             .find(|l| l.trim_start().starts_with(well))
             .unwrap_or_else(|| panic!("no {well} line:\n{stdout}"));
-        // position, done, failed, flagged, first, "->", last, (min-max)
-        let words: Vec<&str> = line.split_whitespace().collect();
+        // position (well and channel), done, failed, flagged, first, "->", last, (min-max)
+        let words: Vec<&str> = line.split_whitespace().rev().collect();
         let failed = if well == "B03" { "1" } else { "0" };
-        assert_eq!(words[2], failed, "{line}");
-        let (first, last): (u32, u32) = (words[4].parse().unwrap(), words[6].parse().unwrap());
+        assert_eq!(words[5], failed, "{line}");
+        let (first, last): (u32, u32) = (words[3].parse().unwrap(), words[1].parse().unwrap());
         assert!(last > first, "{line}");
     }
     // Nothing is left behind without --keep.

@@ -294,3 +294,46 @@ fn low_free_space_on_a_watched_volume_raises_an_alert() {
     bench.signal("TERM");
     assert_eq!(bench.wait_exit(Duration::from_secs(60)), Some(0));
 }
+
+#[test]
+fn channels_of_one_well_are_judged_apart() {
+    // Two channels per time point at one well: a bright one with many objects
+    // and a dim one with few. Each is steady; only mixing them would look
+    // like jumps in count, background and threshold.
+    let mut bench = Bench::new(concat!(
+        "name_pattern = '^(?P<well>[A-Z]\\d{2})_t(?P<time_point>\\d+)_(?P<channel>[a-z]+)\\.tif$'\n",
+        "[quality]\nbaseline_frames = 4\n",
+    ));
+    bench.start();
+    let mut night = Vec::new();
+    for t in 0..16u64 {
+        night.push((format!("A01_t{t:04}_bright.tif"), scene(t + 1, 1.0, 0.0)));
+        let dim = SceneSpec {
+            object_count: 6,
+            lamp: 0.5,
+            ..scene(t + 101, 1.0, 0.0)
+        };
+        night.push((format!("A01_t{t:04}_dim.tif"), dim));
+    }
+    feed(&bench, &night, 0);
+    let status = status_json(&bench);
+    assert_eq!(status["alerts"], serde_json::json!([]), "{status:#}");
+    assert_eq!(status["flag_counts"], serde_json::json!([]), "{status:#}");
+    let positions: Vec<(&str, u64)> = status["positions"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|p| {
+            (
+                p["position"].as_str().unwrap(),
+                p["frames_done"].as_u64().unwrap(),
+            )
+        })
+        .collect();
+    assert_eq!(
+        positions,
+        [("A01 channel bright", 16), ("A01 channel dim", 16)]
+    );
+    bench.signal("TERM");
+    assert_eq!(bench.wait_exit(Duration::from_secs(60)), Some(0));
+}

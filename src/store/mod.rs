@@ -28,10 +28,13 @@ const MIGRATIONS: &[&str] = &[
 /// The schema version this build writes and reads.
 pub const SCHEMA_VERSION: i32 = MIGRATIONS.len() as i32;
 
-/// SQL for a frame row's position: the well, and the site when there is one
-/// (empty when the file-name pattern names neither).
-pub const POSITION_SQL: &str =
-    "TRIM(COALESCE(well, '') || CASE WHEN site IS NULL THEN '' ELSE ' site ' || site END)";
+/// SQL for a frame row's position, the unit that has its own baseline and
+/// charts: the well, the site and the channel, each when the file-name pattern
+/// names it (empty when it names none). Channels are kept apart because they
+/// differ in everything the charts follow (brightness, counts, detail).
+pub const POSITION_SQL: &str = "TRIM(COALESCE(well, '') \
+     || CASE WHEN site IS NULL THEN '' ELSE ' site ' || site END \
+     || CASE WHEN channel IS NULL THEN '' ELSE ' channel ' || channel END)";
 
 /// Errors opening or using the database, with what to do about them.
 #[derive(Debug, thiserror::Error)]
