@@ -337,3 +337,58 @@ fn channels_of_one_well_are_judged_apart() {
     bench.signal("TERM");
     assert_eq!(bench.wait_exit(Duration::from_secs(60)), Some(0));
 }
+
+#[test]
+fn a_run_with_every_expected_frame_is_complete_and_its_end_is_no_stall() {
+    // Two services side by side, stall limit 1 s: one knows the run has three
+    // frames, the other does not.
+    let quality = "[quality]\nstall_after_s = 1\n";
+    let mut knows = Bench::new(&format!(
+        "{quality}expected_frames = 3\n[alerts]\nfile = \"alerts.jsonl\"\n"
+    ));
+    let mut guesses = Bench::new(quality);
+    for bench in [&mut knows, &mut guesses] {
+        bench.start();
+        let night: Vec<(String, SceneSpec)> = (0..3u64)
+            .map(|t| (format!("A01_t{t:04}.tif"), scene(t + 1, 1.0, 0.0)))
+            .collect();
+        feed(bench, &night, 0);
+    }
+    // The one that does not know calls the quiet after its last frame a stall
+    // (at its next idle check, within a few seconds).
+    watch_support::wait_for("the stall alert", LONG, || {
+        !alerts_of(&status_json(&guesses), "stalled").is_empty()
+    });
+    // The other has had at least one idle check since (one every 5 s).
+    std::thread::sleep(Duration::from_secs(6));
+    let status = status_json(&knows);
+    assert!(alerts_of(&status, "stalled").is_empty(), "{status:#}");
+    let complete = alerts_of(&status, "run_complete");
+    assert_eq!(complete.len(), 1, "{status:#}");
+    assert!(
+        complete[0]["closed_at"].is_string(),
+        "a notice closes as it opens"
+    );
+    assert!(
+        complete[0]["message"]
+            .as_str()
+            .unwrap()
+            .contains("all 3 expected frames recorded (0 flagged, 0 failed)"),
+        "{status:#}"
+    );
+    let sent: Vec<serde_json::Value> =
+        std::fs::read_to_string(knows.dir.path().join("alerts.jsonl"))
+            .unwrap()
+            .lines()
+            .map(|l| serde_json::from_str(l).unwrap())
+            .collect();
+    assert!(
+        sent.iter()
+            .any(|e| e["condition"] == "run_complete" && e["state"] == "notice"),
+        "{sent:?}"
+    );
+    for bench in [&mut knows, &mut guesses] {
+        bench.signal("TERM");
+        assert_eq!(bench.wait_exit(Duration::from_secs(60)), Some(0));
+    }
+}

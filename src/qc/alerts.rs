@@ -1,5 +1,5 @@
 //! Alert episodes: a condition opens one alert when it becomes true and one
-//! "recovered" notice when it clears, however many frames it stays true for.
+//! "recovered" event when it clears, however many frames it stays true for.
 //!
 //! Pure bookkeeping. Deciding whether a condition holds is the monitor's; storing
 //! and delivering alerts belong to [`crate::qc::record`] and [`crate::qc::sinks`].
@@ -8,12 +8,15 @@ use std::collections::BTreeMap;
 
 use serde::Serialize;
 
-/// Whether an event opens or closes an episode.
+/// Whether an event opens or closes an episode, or is a one-off notice (an
+/// episode that opens and closes at once: the service restarted, the run is
+/// complete).
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize)]
 #[serde(rename_all = "snake_case")]
 pub enum AlertState {
     Opened,
     Recovered,
+    Notice,
 }
 
 impl AlertState {
@@ -22,6 +25,7 @@ impl AlertState {
         match self {
             AlertState::Opened => "opened",
             AlertState::Recovered => "recovered",
+            AlertState::Notice => "notice",
         }
     }
 }
@@ -30,7 +34,7 @@ impl AlertState {
 #[derive(Debug, Clone, PartialEq, Serialize)]
 pub struct AlertEvent {
     /// What is wrong: `drift:<metric>`, `stalled`, `low_disk_space`,
-    /// `failure_rate`, `service_restarted`.
+    /// `failure_rate`; or what happened: `service_restarted`, `run_complete`.
     pub condition: String,
     pub state: AlertState,
     /// Milliseconds since the Unix epoch.

@@ -35,6 +35,7 @@ pub struct RawQuality {
     on_uneven_illumination: String,
     flatten_radius_px: f64,
     stall_after_s: u64,
+    expected_frames: u64,
     min_free_space_mib: u64,
     failure_window: usize,
     max_failure_fraction: f64,
@@ -63,6 +64,7 @@ impl Default for RawQuality {
             on_uneven_illumination: "keep".into(),
             flatten_radius_px: 50.0,
             stall_after_s: 900,
+            expected_frames: 0,
             min_free_space_mib: 2048,
             failure_window: 50,
             max_failure_fraction: 0.2,
@@ -157,6 +159,9 @@ pub struct QualitySettings {
     pub on_uneven_illumination: UnevenRemedy,
     /// No new frame for this long while the run is active opens a stall alert.
     pub stall_after: Duration,
+    /// Frames the acquisition writes, when known: once the run has recorded
+    /// this many it is complete (a notice says so) and no longer stalls.
+    pub expected_frames: Option<u64>,
     /// Free space below this on the watched or database volume opens an alert.
     pub min_free_space_bytes: u64,
     /// Recent outcomes whose failure share is watched.
@@ -330,6 +335,7 @@ pub fn validate(
         },
         on_uneven_illumination,
         stall_after: Duration::from_secs(q.stall_after_s),
+        expected_frames: (q.expected_frames > 0).then_some(q.expected_frames),
         min_free_space_bytes: q.min_free_space_mib << 20,
         failure_window: q.failure_window,
         max_failure_fraction: q.max_failure_fraction,

@@ -1,13 +1,14 @@
-//! The run monitor: the memory of a run. It keeps, per position (well/site), the
-//! baseline of the first frames, the drift charts and the recent counts; it turns
-//! each frame into flags, and the run's state into alert episodes.
+//! The run monitor: the memory of a run. It keeps, per position (well, site,
+//! channel), the baseline of the first frames, the drift charts and the recent
+//! counts; it turns each frame into flags, and the run's state into alert
+//! episodes.
 //!
 //! Pure and clock-free: times come in with each call, so a synthetic night runs
 //! in-process in milliseconds. Storing and delivering are the caller's.
 
 use std::collections::{BTreeMap, VecDeque};
 
-use crate::qc::alerts::{AlertBook, AlertEvent};
+use crate::qc::alerts::{AlertBook, AlertEvent, AlertState};
 use crate::qc::config::QualitySettings;
 use crate::qc::drift::{median, Chart, Direction, Metric, Signal, Step};
 use crate::qc::flags::{frame_flags, num, FrameFlag, FrameMetrics, PositionContext};
@@ -16,6 +17,8 @@ use crate::qc::flags::{frame_flags, num, FrameFlag, FrameMetrics, PositionContex
 pub const STALLED: &str = "stalled";
 /// Condition of too many failed frames.
 pub const FAILURE_RATE: &str = "failure_rate";
+/// Notice that the run has recorded every expected frame.
+pub const RUN_COMPLETE: &str = "run_complete";
 
 /// The alert condition of a drift on `metric`.
 pub fn drift_condition(metric: Metric) -> String {
@@ -49,6 +52,10 @@ pub struct RunMonitor {
     last_frame_at_ms: Option<i64>,
     /// Recent outcomes, `true` for a failure.
     outcomes: VecDeque<bool>,
+    /// Frames recorded so far (done or failed), and of them flagged or failed.
+    recorded: u64,
+    flagged: u64,
+    failed: u64,
 }
 
 impl RunMonitor {
@@ -59,6 +66,9 @@ impl RunMonitor {
             book: AlertBook::default(),
             last_frame_at_ms: None,
             outcomes: VecDeque::new(),
+            recorded: 0,
+            flagged: 0,
+            failed: 0,
         }
     }
 
@@ -120,7 +130,31 @@ impl RunMonitor {
             format!("frames arrive again ({file})")
         }));
         events.extend(self.record_outcome(false, at_ms, file));
+        self.flagged += u64::from(!flags.is_empty());
+        events.extend(self.count_recorded(at_ms, file));
         Verdict { flags, events }
+    }
+
+    /// True once the run has recorded `expected_frames` frames.
+    pub fn is_complete(&self) -> bool {
+        self.settings
+            .expected_frames
+            .is_some_and(|n| self.recorded >= n)
+    }
+
+    /// Counts a recorded frame; the notice when it is the last one expected.
+    fn count_recorded(&mut self, at_ms: i64, file: &str) -> Option<AlertEvent> {
+        self.recorded += 1;
+        (self.settings.expected_frames == Some(self.recorded)).then(|| AlertEvent {
+            condition: RUN_COMPLETE.into(),
+            state: AlertState::Notice,
+            at_ms,
+            file: Some(file.into()),
+            message: format!(
+                "the acquisition is complete: all {} expected frames recorded ({} flagged, {} failed); no stall alert from now on",
+                self.recorded, self.flagged, self.failed
+            ),
+        })
     }
 
     /// Records a frame that produced no result (its flag is the error row's
@@ -135,12 +169,18 @@ impl RunMonitor {
             .into_iter()
             .collect();
         events.extend(self.record_outcome(true, at_ms, file));
+        self.failed += 1;
+        events.extend(self.count_recorded(at_ms, file));
         events
     }
 
     /// Checks for a stall: no frame for longer than `stall_after` since the last
-    /// one. Before the first frame the run is not active and nothing is raised.
+    /// one. Before the first frame, and once every expected frame is recorded,
+    /// the run is not active and nothing is raised.
     pub fn check_stall(&mut self, now_ms: i64) -> Option<AlertEvent> {
+        if self.is_complete() {
+            return None;
+        }
         let last = self.last_frame_at_ms?;
         let limit_ms = i64::try_from(self.settings.stall_after.as_millis()).unwrap_or(i64::MAX);
         let idle_ms = now_ms - last;
@@ -357,5 +397,50 @@ mod tests {
             m.check_stall(limit_ms + 1).map(|e| e.state),
             Some(AlertState::Opened)
         );
+    }
+
+    #[test]
+    fn a_run_with_every_expected_frame_is_complete_and_never_stalls() {
+        let settings = QualitySettings {
+            expected_frames: Some(3),
+            ..QualitySettings::default()
+        };
+        let limit_ms = settings.stall_after.as_millis() as i64;
+        let mut m = RunMonitor::new(settings);
+        let notices = |events: &[AlertEvent]| -> Vec<String> {
+            events
+                .iter()
+                .filter(|e| e.state == AlertState::Notice)
+                .map(|e| format!("{} {}", e.condition, e.message))
+                .collect()
+        };
+        assert!(notices(&m.observe("", "a.tif", 0, &frame()).events).is_empty());
+        assert!(notices(&m.observe_failure("b.tif", 1)).is_empty());
+        // Two of three: still active, so a gap is a stall.
+        assert!(!m.is_complete());
+        let stall = m.check_stall(1 + limit_ms + 1).expect("a stall");
+        assert_eq!(stall.state, AlertState::Opened);
+        // The third frame ends the stall and completes the run, once.
+        let events = m.observe("", "c.tif", 2 * limit_ms, &frame()).events;
+        assert!(events
+            .iter()
+            .any(|e| e.condition == STALLED && e.state == AlertState::Recovered));
+        assert_eq!(
+            notices(&events),
+            ["run_complete the acquisition is complete: all 3 expected frames recorded (0 flagged, 1 failed); no stall alert from now on"]
+        );
+        assert!(m.is_complete());
+        assert_eq!(m.check_stall(100 * limit_ms), None);
+        // A frame beyond the expected number: no second notice.
+        assert!(notices(&m.observe("", "d.tif", 3 * limit_ms, &frame()).events).is_empty());
+    }
+
+    #[test]
+    fn without_an_expected_count_the_run_never_completes() {
+        let mut m = RunMonitor::new(QualitySettings::default());
+        for i in 0..10 {
+            m.observe("", &format!("{i}.tif"), i, &frame());
+        }
+        assert!(!m.is_complete());
     }
 }

@@ -100,18 +100,16 @@ impl QcRecorder {
             let at_ms = now_ms();
             let event = AlertEvent {
                 condition: SERVICE_RESTARTED.into(),
-                state: AlertState::Opened,
+                state: AlertState::Notice,
                 at_ms,
                 file: None,
                 message: format!(
                     "framewarden restarted in the middle of run {run_id} ({replayed} frames already recorded); frames in flight are redone"
                 ),
             };
-            conn.execute(
-                "INSERT INTO alerts (run_id, raised_at_ms, kind, message, closed_at_ms) VALUES (?1, ?2, ?3, ?4, ?2)",
-                params![run_id, at_ms, event.condition, event.message],
-            )?;
-            recorder.announce(&event);
+            // Outside a transaction: stored at once, so announced at once.
+            recorder.store_event(conn, &event, None)?;
+            recorder.committed();
         }
         Ok(recorder)
     }
@@ -274,9 +272,12 @@ impl QcRecorder {
         frame_id: Option<i64>,
     ) -> rusqlite::Result<()> {
         match event.state {
-            AlertState::Opened => {
+            AlertState::Opened | AlertState::Notice => {
+                // A notice is an episode closed as it opens.
+                let closed_at_ms = (event.state == AlertState::Notice).then_some(event.at_ms);
                 conn.prepare_cached(
-                    "INSERT INTO alerts (run_id, raised_at_ms, kind, message, frame_id, file) VALUES (?1, ?2, ?3, ?4, ?5, ?6)",
+                    "INSERT INTO alerts (run_id, raised_at_ms, kind, message, frame_id, file, closed_at_ms)
+                     VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7)",
                 )?
                 .execute(params![
                     self.run_id,
@@ -284,7 +285,8 @@ impl QcRecorder {
                     event.condition,
                     event.message,
                     frame_id,
-                    event.file
+                    event.file,
+                    closed_at_ms
                 ])?;
             }
             AlertState::Recovered => {
@@ -315,6 +317,11 @@ impl QcRecorder {
             AlertState::Recovered => tracing::info!(
                 condition = %event.condition,
                 "recovered: {}",
+                event.message
+            ),
+            AlertState::Notice => tracing::info!(
+                condition = %event.condition,
+                "notice: {}",
                 event.message
             ),
         }
