@@ -462,6 +462,35 @@ fn a_stop_held_up_by_a_locked_database_keeps_its_bound_and_a_restart_loses_nothi
 }
 
 #[test]
+fn a_second_service_on_the_same_database_is_refused() {
+    let mut bench = Bench::new("");
+    bench.start();
+    let second = Command::new(BIN)
+        .args(["watch", "--config"])
+        .arg(&bench.config)
+        .output()
+        .unwrap();
+    let stderr = String::from_utf8_lossy(&second.stderr);
+    assert_eq!(second.status.code(), Some(2), "{stderr}");
+    assert!(
+        stderr.contains("another framewarden watch is recording into")
+            && stderr.contains("fw.db")
+            && !stderr.contains("panicked"),
+        "{stderr}"
+    );
+    // The first one is undisturbed and, once stopped, frees the database.
+    let (bytes, truth) = tiff_bytes(33, 96, 3);
+    bench.write("P01_t0000.tif", &bytes);
+    let rows = bench.wait_finished(1, LONG);
+    assert_eq!(rows[0].object_count, Some(truth as i64));
+    bench.signal("TERM");
+    assert_eq!(bench.wait_exit(Duration::from_secs(60)), Some(0));
+    bench.start();
+    bench.signal("TERM");
+    assert_eq!(bench.wait_exit(Duration::from_secs(60)), Some(0));
+}
+
+#[test]
 fn a_folder_moved_in_with_files_already_inside_is_scanned() {
     // No periodic rescan within the test: only the folder's own event can find them.
     let mut bench = Bench::new("rescan_interval_s = 3600");

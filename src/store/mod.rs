@@ -55,6 +55,13 @@ pub enum StoreError {
         path: PathBuf,
         source: std::io::Error,
     },
+    #[error("another framewarden watch is recording into {db} (it holds {lock}); one service per database")]
+    InUse { db: PathBuf, lock: PathBuf },
+    #[error("cannot take the writer's lock {lock}: {source}")]
+    Lock {
+        lock: PathBuf,
+        source: std::io::Error,
+    },
 }
 
 impl StoreError {
@@ -133,6 +140,49 @@ pub fn now_ms() -> i64 {
     SystemTime::now()
         .duration_since(UNIX_EPOCH)
         .map_or(0, |d| i64::try_from(d.as_millis()).unwrap_or(i64::MAX))
+}
+
+/// The claim of the one service that records into a database: an exclusive
+/// lock on `<database>.lock`, held while the value lives and released by the
+/// system if the process dies. `status` needs none.
+#[derive(Debug)]
+pub struct WriterClaim {
+    _file: std::fs::File,
+}
+
+/// Claims `db` for this process's writer.
+///
+/// # Errors
+/// [`StoreError::InUse`] while another process holds the claim,
+/// [`StoreError::Lock`] or [`StoreError::Folder`] when the lock file cannot be
+/// made.
+pub fn claim_writer(db: &Path) -> Result<WriterClaim, StoreError> {
+    if let Some(folder) = db.parent().filter(|p| !p.as_os_str().is_empty()) {
+        std::fs::create_dir_all(folder).map_err(|source| StoreError::Folder {
+            path: folder.to_path_buf(),
+            source,
+        })?;
+    }
+    let mut name = db.as_os_str().to_owned();
+    name.push(".lock");
+    let lock = PathBuf::from(name);
+    let file = std::fs::OpenOptions::new()
+        .create(true)
+        .truncate(false)
+        .write(true)
+        .open(&lock)
+        .map_err(|source| StoreError::Lock {
+            lock: lock.clone(),
+            source,
+        })?;
+    match file.try_lock() {
+        Ok(()) => Ok(WriterClaim { _file: file }),
+        Err(std::fs::TryLockError::WouldBlock) => Err(StoreError::InUse {
+            db: db.to_path_buf(),
+            lock,
+        }),
+        Err(std::fs::TryLockError::Error(source)) => Err(StoreError::Lock { lock, source }),
+    }
 }
 
 /// Opens (creating if needed) the database for writing and migrates it.

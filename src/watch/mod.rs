@@ -102,6 +102,9 @@ pub struct Service {
     stopping: Arc<AtomicBool>,
     progress: Arc<Progress>,
     shutdown_timeout: Duration,
+    /// The database's one writer is this service; released once the writer
+    /// has finished.
+    claim: store::WriterClaim,
 }
 
 impl Service {
@@ -127,6 +130,9 @@ impl Service {
             })
             .collect::<Result<_, _>>()?;
         let db = &settings.store.database;
+        // One service per database: a second one would analyse every file
+        // again and judge the run with half its memory.
+        let claim = store::claim_writer(db)?;
         let conn = store::open_for_writing(db)?;
         // Rows left queued by an earlier process: redone by the catch-up scan if
         // the file is unchanged; otherwise they get their outcome now.
@@ -227,6 +233,7 @@ impl Service {
             stopping,
             progress,
             shutdown_timeout: watch.shutdown_timeout,
+            claim,
         })
     }
 
@@ -253,6 +260,7 @@ impl Service {
             join("worker", w);
         }
         self.writer.join();
+        drop(self.claim);
         WatchSummary {
             run_id,
             done: self.progress.done.load(Ordering::Relaxed),
