@@ -163,7 +163,7 @@ pub fn run(
                 bytes.truncate(bytes.len() / 2);
             }
             let through_temp =
-                scenario.temp_name_every > 0 && written % scenario.temp_name_every == 0;
+                scenario.temp_name_every > 0 && written.is_multiple_of(scenario.temp_name_every);
             write_like_an_instrument(scenario, &acq.join(&name), &bytes, through_temp)
                 .map_err(io(&acq))?;
             written += 1;
