@@ -10,7 +10,7 @@ pub mod writer;
 use std::path::{Path, PathBuf};
 use std::time::{Duration, SystemTime, UNIX_EPOCH};
 
-use rusqlite::{Connection, OpenFlags, OptionalExtension};
+use rusqlite::{params, Connection, OpenFlags, OptionalExtension};
 
 /// `PRAGMA application_id` of a framewarden database ("FWD1"): tells our files
 /// apart from any other SQLite file.
@@ -23,6 +23,7 @@ const MIGRATIONS: &[&str] = &[
     include_str!("schema_v2.sql"),
     include_str!("schema_v3.sql"),
     include_str!("schema_v4.sql"),
+    include_str!("schema_v5.sql"),
 ];
 
 /// The schema version this build writes and reads.
@@ -309,6 +310,54 @@ pub fn lookup(conn: &Connection, key: &FrameKey) -> rusqlite::Result<Option<Fram
     Ok(status.as_deref().and_then(FrameStatus::parse))
 }
 
+/// Unclean stops a frame may be caught in before it is recorded as failed.
+pub const MAX_INTERRUPTIONS: i64 = 3;
+
+/// At start, after an unclean stop (the last run was never marked ended: a
+/// crash, a kill, a hang ended by the watchdog), counts one interruption for
+/// every frame still queued, and records as failed those interrupted
+/// [`MAX_INTERRUPTIONS`] times: a file that crashes or hangs the analysis must
+/// not stop the run by being retried at every restart. Returns those frames.
+///
+/// # Errors
+/// SQLite errors.
+pub fn settle_interrupted(conn: &mut Connection) -> rusqlite::Result<Vec<FrameKey>> {
+    let tx = conn.transaction_with_behavior(rusqlite::TransactionBehavior::Immediate)?;
+    let unclean: bool = tx
+        .query_row(
+            "SELECT ended_at_ms IS NULL FROM runs ORDER BY id DESC LIMIT 1",
+            [],
+            |r| r.get(0),
+        )
+        .optional()?
+        .unwrap_or(false);
+    if !unclean {
+        return Ok(Vec::new());
+    }
+    tx.execute(
+        "UPDATE frames SET interruptions = interruptions + 1 WHERE status = 'queued'",
+        [],
+    )?;
+    let given_up = tx
+        .prepare(
+            "UPDATE frames SET status = 'failed', analysed_at_ms = ?1,
+                 latency_ms = MAX(0, ?1 - ready_at_ms),
+                 error = 'the analysis was interrupted ' || interruptions || ' times (the service stopped uncleanly while this file was queued or in hand: a crash, a kill, or a hang ended by the watchdog); recorded as failed so the run goes on; check the file with framewarden analyze'
+             WHERE status = 'queued' AND interruptions >= ?2
+             RETURNING path, size_bytes, mtime_ns",
+        )?
+        .query_map(params![now_ms(), MAX_INTERRUPTIONS], |r| {
+            Ok(FrameKey {
+                path: r.get(0)?,
+                size_bytes: r.get::<_, i64>(1)? as u64,
+                mtime_ns: r.get(2)?,
+            })
+        })?
+        .collect::<rusqlite::Result<Vec<_>>>()?;
+    tx.commit()?;
+    Ok(given_up)
+}
+
 /// Every frame left `queued` (in flight when the last process stopped).
 ///
 /// # Errors
@@ -383,6 +432,54 @@ mod tests {
             )
             .unwrap();
         assert_eq!(object, (1, "raw".into(), 7, 12, 0.5, None));
+    }
+
+    #[test]
+    fn a_frame_caught_in_three_unclean_stops_is_failed_and_clean_stops_do_not_count() {
+        let dir = tempfile::tempdir().unwrap();
+        let db = dir.path().join("fw.db");
+        let mut conn = open_for_writing(&db).unwrap();
+        conn.execute_batch(
+            "INSERT INTO runs (folders, started_at_ms, last_frame_at_ms, settings) VALUES ('[]', 1, 1, '{}');
+             INSERT INTO frames (run_id, path, size_bytes, mtime_ns, version, status, detected_at_ms, ready_at_ms)
+                 VALUES (1, '/acq/poison.tif', 10, 1, 1, 'queued', 1, 1),
+                        (1, '/acq/done.tif', 10, 1, 1, 'done', 1, 1);",
+        )
+        .unwrap();
+        let state = |conn: &Connection| -> (String, i64, Option<String>) {
+            conn.query_row(
+                "SELECT status, interruptions, error FROM frames WHERE path = '/acq/poison.tif'",
+                [],
+                |r| Ok((r.get(0)?, r.get(1)?, r.get(2)?)),
+            )
+            .unwrap()
+        };
+        // The run was never marked ended: two unclean stops, still queued.
+        for n in 1..MAX_INTERRUPTIONS {
+            assert!(settle_interrupted(&mut conn).unwrap().is_empty());
+            assert_eq!(state(&conn), ("queued".into(), n, None));
+        }
+        // A clean stop in between counts nothing.
+        conn.execute("UPDATE runs SET ended_at_ms = 5", []).unwrap();
+        assert!(settle_interrupted(&mut conn).unwrap().is_empty());
+        assert_eq!(state(&conn).1, MAX_INTERRUPTIONS - 1);
+        // The third unclean stop: failed, with the reason; the done frame untouched.
+        conn.execute("UPDATE runs SET ended_at_ms = NULL", [])
+            .unwrap();
+        let given_up = settle_interrupted(&mut conn).unwrap();
+        assert_eq!(given_up.len(), 1);
+        assert_eq!(given_up[0].path, "/acq/poison.tif");
+        let (status, n, error) = state(&conn);
+        assert_eq!((status.as_str(), n), ("failed", MAX_INTERRUPTIONS));
+        assert!(error.unwrap().contains("interrupted 3 times"));
+        let done: String = conn
+            .query_row(
+                "SELECT status FROM frames WHERE path = '/acq/done.tif'",
+                [],
+                |r| r.get(0),
+            )
+            .unwrap();
+        assert_eq!(done, "done");
     }
 
     #[test]

@@ -133,13 +133,21 @@ impl Service {
         // One service per database: a second one would analyse every file
         // again and judge the run with half its memory.
         let claim = store::claim_writer(db)?;
-        let conn = store::open_for_writing(db)?;
-        // Rows left queued by an earlier process: redone by the catch-up scan if
-        // the file is unchanged; otherwise they get their outcome now.
-        let stale = store::queued_frames(&conn).map_err(|source| StoreError::Sqlite {
+        let mut conn = store::open_for_writing(db)?;
+        let sqlite = |source| StoreError::Sqlite {
             path: db.clone(),
             source,
-        })?;
+        };
+        for key in store::settle_interrupted(&mut conn).map_err(sqlite)? {
+            tracing::warn!(
+                file = %key.path,
+                "failed: interrupted {} times in hand; left out so the run goes on",
+                store::MAX_INTERRUPTIONS
+            );
+        }
+        // Rows left queued by an earlier process: redone by the catch-up scan if
+        // the file is unchanged; otherwise they get their outcome now.
+        let stale = store::queued_frames(&conn).map_err(sqlite)?;
         let progress = Arc::new(Progress::default());
         let stopping = Arc::new(AtomicBool::new(false));
         let (sched_tx, sched_rx) = crossbeam_channel::unbounded();
