@@ -411,9 +411,16 @@ mod tests {
             .query_row("SELECT count(*) FROM runs", [], |r| r.get(0))
             .unwrap();
         assert_eq!(runs, 1);
-        // Columns of later versions exist (v2: remedy, v3: bimodality).
-        conn.prepare("SELECT count_source, bimodality FROM frames")
+        // Columns of later versions exist (v2: remedy, v3: bimodality, v5:
+        // interruptions, 0 for the old rows).
+        let interruptions: i64 = conn
+            .query_row(
+                "SELECT count_source IS NULL AND bimodality IS NULL, interruptions FROM frames",
+                [],
+                |r| r.get(1),
+            )
             .unwrap();
+        assert_eq!(interruptions, 0);
         // v4: the old objects are the raw result's, every measure kept.
         let object: (i64, String, i64, i64, f64, Option<String>) = conn
             .query_row(
