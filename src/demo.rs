@@ -179,7 +179,7 @@ pub fn run(
     // Wait until every written file has its row (done or failed).
     let deadline = Instant::now() + Duration::from_secs(120);
     loop {
-        let report = status::read(&db, 0)?;
+        let report = status::read(&db, 0, None)?;
         if report.frames_seen as usize >= written && report.frames_pending == 0
             || Instant::now() > deadline
         {
@@ -196,7 +196,7 @@ pub fn run(
         summary.failed,
         started.elapsed().as_secs_f64()
     );
-    let report = status::read(&db, 8)?;
+    let report = status::read(&db, 8, None)?;
     let _ = write!(out, "{}", status::render(&report));
     let _ = writeln!(out, "\nevery result is in {}", db.display());
     Ok(report)

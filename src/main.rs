@@ -65,6 +65,9 @@ enum Command {
         /// How many recent frames and failures to list.
         #[arg(long, default_value_t = 10)]
         recent: usize,
+        /// Show this run (by number) instead of the current or last one.
+        #[arg(long)]
+        run: Option<i64>,
     },
     /// Replay an invented overnight plate time-lapse into a temporary folder while
     /// the watch service records it, then print the status (about a minute).
@@ -154,13 +157,14 @@ fn main() -> ExitCode {
             db,
             json,
             recent,
+            run,
         } => {
             let settings = match load_settings(config.as_deref()) {
                 Ok(s) => s,
                 Err(code) => return code,
             };
             let db = db.unwrap_or(settings.store.database);
-            match framewarden::status::read(&db, recent) {
+            match framewarden::status::read(&db, recent, run) {
                 Ok(report) if json => {
                     println!(
                         "{}",

@@ -98,11 +98,13 @@ macro_rules! iso {
     };
 }
 
-/// Reads the status of the current run, with up to `recent` recent frames.
+/// Reads the status of run `run` (by default the current or last one), with up
+/// to `recent` recent frames.
 ///
 /// # Errors
-/// [`StoreError`] for a missing, foreign or unreadable database.
-pub fn read(db: &Path, recent: usize) -> Result<StatusReport, StoreError> {
+/// [`StoreError`] for a missing, foreign or unreadable database, or a run
+/// number it does not have.
+pub fn read(db: &Path, recent: usize, run: Option<i64>) -> Result<StatusReport, StoreError> {
     let mut conn = store::open_read_only(db)?;
     let sqlite = |source| StoreError::Sqlite {
         path: db.to_path_buf(),
@@ -110,12 +112,23 @@ pub fn read(db: &Path, recent: usize) -> Result<StatusReport, StoreError> {
     };
     // One snapshot for every query, kept short so the WAL can be checkpointed.
     let tx = conn.transaction().map_err(sqlite)?;
-    let report = query(&tx, db, recent).map_err(sqlite)?;
+    let report = query(&tx, db, recent, run).map_err(sqlite)?;
     tx.finish().map_err(sqlite)?;
-    Ok(report)
+    match (run, &report.run) {
+        (Some(run), None) => Err(StoreError::NoRun {
+            path: db.to_path_buf(),
+            run,
+        }),
+        _ => Ok(report),
+    }
 }
 
-fn query(conn: &Connection, db: &Path, recent: usize) -> rusqlite::Result<StatusReport> {
+fn query(
+    conn: &Connection,
+    db: &Path,
+    recent: usize,
+    run: Option<i64>,
+) -> rusqlite::Result<StatusReport> {
     let mut report = StatusReport {
         database: db.display().to_string(),
         run: None,
@@ -141,9 +154,9 @@ fn query(conn: &Connection, db: &Path, recent: usize) -> rusqlite::Result<Status
                 iso!("started_at_ms"),
                 ", ",
                 iso!("ended_at_ms"),
-                " FROM runs ORDER BY id DESC LIMIT 1"
+                " FROM runs WHERE ?1 IS NULL OR id = ?1 ORDER BY id DESC LIMIT 1"
             ),
-            [],
+            [run],
             |r| {
                 let folders: String = r.get(1)?;
                 Ok(RunInfo {
@@ -380,10 +393,42 @@ mod tests {
         let dir = tempfile::tempdir().unwrap();
         let db = dir.path().join("fw.db");
         drop(store::open_for_writing(&db).unwrap());
-        let report = read(&db, 5).unwrap();
+        let report = read(&db, 5, None).unwrap();
         assert_eq!(report.run, None);
         assert_eq!(report.frames_seen, 0);
         assert!(render(&report).contains("no run recorded yet"));
+    }
+
+    #[test]
+    fn an_earlier_run_is_shown_on_request_and_a_missing_one_named() {
+        let dir = tempfile::tempdir().unwrap();
+        let db = dir.path().join("fw.db");
+        store::open_for_writing(&db)
+            .unwrap()
+            .execute_batch(
+                "INSERT INTO runs (folders, started_at_ms, last_frame_at_ms, settings, ended_at_ms)
+                     VALUES ('[\"/acq/monday\"]', 1000, 1000, '{}', 2000),
+                            ('[\"/acq/tuesday\"]', 3000, 3000, '{}', NULL);
+                 INSERT INTO frames (run_id, path, size_bytes, mtime_ns, version, status,
+                                     detected_at_ms, ready_at_ms, analysed_at_ms, object_count)
+                     VALUES (1, '/acq/monday/a.tif', 10, 1, 1, 'done', 1000, 1000, 1500, 7),
+                            (1, '/acq/monday/b.tif', 10, 1, 1, 'done', 1000, 1000, 1600, 9),
+                            (2, '/acq/tuesday/a.tif', 10, 1, 1, 'queued', 3000, 3000, NULL, NULL);",
+            )
+            .unwrap();
+        let last = read(&db, 5, None).unwrap();
+        assert_eq!(last.run.as_ref().map(|r| r.id), Some(2));
+        assert_eq!((last.frames_seen, last.frames_pending), (1, 1));
+        let monday = read(&db, 5, Some(1)).unwrap();
+        let run = monday.run.as_ref().unwrap();
+        assert_eq!(
+            (run.id, run.folders.as_slice()),
+            (1, ["/acq/monday".to_string()].as_slice())
+        );
+        assert_eq!((monday.frames_done, monday.objects_total), (2, 16));
+        assert!(run.ended_at.is_some());
+        let err = read(&db, 5, Some(9)).unwrap_err().to_string();
+        assert!(err.contains("has no run 9"), "{err}");
     }
 
     #[test]

@@ -56,6 +56,8 @@ pub enum StoreError {
         path: PathBuf,
         source: std::io::Error,
     },
+    #[error("{path} has no run {run} (`framewarden status` without --run shows the last one)")]
+    NoRun { path: PathBuf, run: i64 },
     #[error("another framewarden watch is recording into {db} (it holds {lock}); one service per database")]
     InUse { db: PathBuf, lock: PathBuf },
     #[error("cannot take the writer's lock {lock}: {source}")]
