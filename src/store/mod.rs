@@ -145,6 +145,17 @@ pub fn now_ms() -> i64 {
         .map_or(0, |d| i64::try_from(d.as_millis()).unwrap_or(i64::MAX))
 }
 
+/// Creates the folder a database (or its lock) lives in.
+fn create_folder_of(path: &Path) -> Result<(), StoreError> {
+    match path.parent().filter(|p| !p.as_os_str().is_empty()) {
+        Some(folder) => std::fs::create_dir_all(folder).map_err(|source| StoreError::Folder {
+            path: folder.to_path_buf(),
+            source,
+        }),
+        None => Ok(()),
+    }
+}
+
 /// The claim of the one service that records into a database: an exclusive
 /// lock on `<database>.lock`, held while the value lives and released by the
 /// system if the process dies. `status` needs none.
@@ -160,12 +171,7 @@ pub struct WriterClaim {
 /// [`StoreError::Lock`] or [`StoreError::Folder`] when the lock file cannot be
 /// made.
 pub fn claim_writer(db: &Path) -> Result<WriterClaim, StoreError> {
-    if let Some(folder) = db.parent().filter(|p| !p.as_os_str().is_empty()) {
-        std::fs::create_dir_all(folder).map_err(|source| StoreError::Folder {
-            path: folder.to_path_buf(),
-            source,
-        })?;
-    }
+    create_folder_of(db)?;
     let mut name = db.as_os_str().to_owned();
     name.push(".lock");
     let lock = PathBuf::from(name);
@@ -194,12 +200,7 @@ pub fn claim_writer(db: &Path) -> Result<WriterClaim, StoreError> {
 /// [`StoreError::Foreign`] for a SQLite file of another program,
 /// [`StoreError::TooNew`] for a newer schema, SQLite errors otherwise.
 pub fn open_for_writing(path: &Path) -> Result<Connection, StoreError> {
-    if let Some(folder) = path.parent().filter(|p| !p.as_os_str().is_empty()) {
-        std::fs::create_dir_all(folder).map_err(|source| StoreError::Folder {
-            path: folder.to_path_buf(),
-            source,
-        })?;
-    }
+    create_folder_of(path)?;
     let mut conn = Connection::open(path).map_err(StoreError::sqlite(path))?;
     conn.busy_timeout(Duration::from_secs(10))
         .map_err(StoreError::sqlite(path))?;
