@@ -11,10 +11,10 @@ use std::process::Command;
 use std::sync::atomic::{AtomicUsize, Ordering};
 use std::time::Instant;
 
-use framewarden::analysis::{label, measure, quality, threshold};
+use framewarden::analysis::{label, measure, quality, threshold, Connectivity, ObjectFilter};
 use framewarden::decode::{self, DecodeLimits};
 use framewarden::pipeline::analyze_file;
-use framewarden::settings::Settings;
+use framewarden::pipeline::PipelineParams;
 use framewarden::synth::{self, SceneSpec};
 
 /// Targets: our time at most 1/4 of OpenCV's and 1/25 of scikit-image's.
@@ -170,9 +170,9 @@ fn ms(t: Instant) -> f64 {
 }
 
 fn time_ours(files: &[PathBuf], reps: usize) -> (f64, Vec<Summary>) {
-    let settings = Settings::default();
+    let params = PipelineParams::default();
     let run =
-        |f: &Path| analyze_file(f, &settings).unwrap_or_else(|e| panic!("bench frame failed: {e}"));
+        |f: &Path| analyze_file(f, &params).unwrap_or_else(|e| panic!("bench frame failed: {e}"));
     run(&files[0]); // warm-up
     let mut times = Vec::new();
     let mut summaries = Vec::new();
@@ -208,13 +208,7 @@ const STAGES: [&str; 6] = [
 /// pipeline is built from.
 fn time_stages(files: &[PathBuf], reps: usize) -> [f64; 6] {
     let limits = DecodeLimits::default();
-    let filter = measure::ObjectFilter {
-        min_area_px: 0,
-        max_area_px: 0,
-        min_area_um2: 0.0,
-        max_area_um2: 0.0,
-        exclude_border: false,
-    };
+    let filter = ObjectFilter::default();
     let mut times: [Vec<f64>; 6] = Default::default();
     for _ in 0..reps {
         for f in files {
@@ -230,7 +224,14 @@ fn time_stages(files: &[PathBuf], reps: usize) -> [f64; 6] {
             std::hint::black_box(threshold::separability(&hist));
             times[2].push(ms(t));
             let t = Instant::now();
-            let comps = label::label(&frame.pixels, frame.width, frame.height, level, 8, true);
+            let comps = label::label(
+                &frame.pixels,
+                frame.width,
+                frame.height,
+                level,
+                Connectivity::Eight,
+                true,
+            );
             times[3].push(ms(t));
             let t = Instant::now();
             std::hint::black_box(measure::measure(&frame, &[], &comps, &filter, None));
@@ -325,8 +326,8 @@ fn main() {
     );
 
     let (ours_ms, ours) = time_ours(&files, opts.reps);
-    let settings = Settings::default();
-    let (_, peak) = peak_heap_during(|| analyze_file(&files[0], &settings));
+    let params = PipelineParams::default();
+    let (_, peak) = peak_heap_during(|| analyze_file(&files[0], &params));
     let frame_bytes = (opts.size * opts.size * 2) as f64;
     let stages = time_stages(&files, opts.reps);
     let reference = if opts.reference {

@@ -219,12 +219,12 @@ fn main() {
         .filter_map(|(name, at)| {
             let path = acq.canonicalize().ok()?.join(name);
             conn.query_row(
-                "SELECT analysed_at_ms FROM frames WHERE path = ?1 AND status = 'done'",
+                "SELECT analyzed_at_ms FROM frames WHERE file = ?1 AND status = 'done'",
                 [path.to_string_lossy()],
                 |r| r.get::<_, i64>(0),
             )
             .ok()
-            .map(|analysed| analysed - at)
+            .map(|analyzed| analyzed - at)
         })
         .collect();
     latencies.sort_unstable();

@@ -10,8 +10,8 @@ use serde::Serialize;
 
 use crate::analysis::FrameResult;
 use crate::pipeline::{analyze_file, FileAnalysis, FileError};
-use crate::qc::flags::{frame_flags, FrameMetrics, PositionContext};
-use crate::qc::remedy::explain_recount;
+use crate::qc::flags::{explain_recount, frame_flags, PositionContext};
+use crate::qc::metrics::FrameMetrics;
 use crate::qc::report::FlagRow;
 use crate::settings::Settings;
 
@@ -59,8 +59,8 @@ fn collect_dir(dir: &Path, out: &mut Vec<PathBuf>) -> Result<(), String> {
 }
 
 /// One JSON line: the file, its pixel-size source, its flags, every frame
-/// measure, and the flattened second result (null unless the frame was flagged
-/// for uneven illumination and `[quality] on_uneven_illumination = "flatten"`).
+/// measure, and the recount (null unless the frame was flagged for uneven
+/// illumination and `[quality] on_uneven_illumination = "flatten"`).
 #[derive(Serialize)]
 struct JsonLine<'a> {
     file: String,
@@ -68,7 +68,7 @@ struct JsonLine<'a> {
     flags: Vec<FlagRow>,
     #[serde(flatten)]
     result: &'a FrameResult,
-    flattened: Option<&'a FrameResult>,
+    recount: Option<&'a FrameResult>,
 }
 
 #[derive(Serialize)]
@@ -100,7 +100,10 @@ pub fn run(
             scope.spawn(move || loop {
                 let i = next.fetch_add(1, Ordering::Relaxed);
                 let Some(path) = files.get(i) else { break };
-                if tx.send((i, analyze_file(path, settings))).is_err() {
+                if tx
+                    .send((i, analyze_file(path, &settings.pipeline)))
+                    .is_err()
+                {
                     break;
                 }
             });
@@ -145,8 +148,8 @@ fn flags_of(a: &FileAnalysis, settings: &Settings) -> Vec<FlagRow> {
         &settings.quality.flags,
         &PositionContext::default(),
     );
-    if let Some(flat) = &a.flattened {
-        explain_recount(&mut flags, &a.result, flat);
+    if let Some(recount) = &a.recount {
+        explain_recount(&mut flags, &a.result, recount);
     }
     flags.into_iter().map(FlagRow::from).collect()
 }
@@ -163,7 +166,7 @@ fn json_line(
             pixel_size_source: a.pixel_size_source.map(|s| s.as_str()),
             flags,
             result: &a.result,
-            flattened: a.flattened.as_ref(),
+            recount: a.recount.as_ref(),
         }),
         Err(e) => serde_json::to_string(&JsonError {
             file,
@@ -197,11 +200,9 @@ fn table_line(file: &str, result: &Result<FileAnalysis, FileError>, flags: &[Fla
     match result {
         Ok(a) => {
             let r = &a.result;
-            // The count used: the flattened recount when there is one (marked *).
-            let objects = a.flattened.as_ref().map_or_else(
-                || r.object_count.to_string(),
-                |f| format!("{}*", f.object_count),
-            );
+            // The count used: the recount's when there is one (marked *).
+            let mark = if a.recount.is_some() { "*" } else { "" };
+            let objects = format!("{}{mark}", a.count_used());
             format!(
                 "{:<40} {:>7} {:>9} {:>6.3} {:>7.2} {:>10.1} {:>6.2} {:>10.1} {:>7.1}  {}",
                 name,

@@ -11,10 +11,10 @@ use std::time::{Duration, Instant};
 
 use serde::Deserialize;
 
+use crate::daemon::{Service, WatchError, WatchOptions};
 use crate::settings::Settings;
 use crate::status::{self, StatusReport};
 use crate::synth::{self, SceneSpec};
-use crate::watch::{Service, WatchOptions};
 
 /// The built-in scenario.
 pub const DEFAULT_SCENARIO: &str = include_str!("../demo-data/plate-timelapse.toml");
@@ -58,7 +58,7 @@ pub enum DemoError {
         source: std::io::Error,
     },
     #[error(transparent)]
-    Watch(#[from] crate::watch::WatchError),
+    Watch(#[from] WatchError),
     #[error(transparent)]
     Store(#[from] crate::store::StoreError),
 }
@@ -133,7 +133,7 @@ pub fn run(
     // purpose: like a user of a growing culture, the demo leaves object_count and
     // focus out of the alerting charts.
     let config = demo_config(&acq, &db, &workdir.join("alerts.jsonl"));
-    let settings: Settings = crate::settings::parse(&config, &workdir.join("demo.toml"))
+    let settings: Settings = crate::settings::from_text(&config, &workdir.join("demo.toml"))
         .map_err(|e| DemoError::Scenario(format!("demo settings: {e}")))?;
     let service = Service::start(&settings, &WatchOptions { new_run: true })?;
     let _ = writeln!(
@@ -180,7 +180,7 @@ pub fn run(
     let deadline = Instant::now() + Duration::from_secs(120);
     loop {
         let report = status::read(&db, 0, None)?;
-        if report.frames_seen as usize >= written && report.frames_pending == 0
+        if report.frames_seen as usize >= written && report.frames_queued == 0
             || Instant::now() > deadline
         {
             break;
@@ -293,7 +293,10 @@ mod tests {
         let dir = Path::new("/tmp/night \\ \"run\" 'A'");
         let (acq, db, alerts) = (dir.join("acq"), dir.join("fw.db"), dir.join("a.jsonl"));
         let text = demo_config(&acq, &db, &alerts);
-        let settings = crate::settings::parse(&text, &dir.join("demo.toml")).unwrap();
+        let settings = crate::settings::parse(&text, &dir.join("demo.toml"))
+            .unwrap()
+            .read_frames()
+            .unwrap();
         assert_eq!(settings.watch.folders, vec![acq]);
         assert_eq!(settings.store.database, db);
         assert_eq!(settings.alerts.file, Some(alerts));

@@ -1,19 +1,39 @@
 //! framewarden: watches a microscope acquisition overnight, segments and
 //! measures every frame, and keeps the results in one SQLite file.
 //!
-//! The analysis core ([`analysis`]) is pure; decoding ([`decode`]), the file
-//! pipeline ([`pipeline`]) and the command line live at the edges.
+//! The modules, from the bottom up; each imports only modules listed before it
+//! (`tests/layers.rs` checks this, and that no file inside a module imports one
+//! above it):
+//!
+//! | layer | modules |
+//! |---|---|
+//! | pixels | [`frame`], [`synth`] |
+//! | reading and analysing one frame | [`decode`], [`analysis`] (pure) |
+//! | one file | [`naming`], [`pipeline`] |
+//! | recording | [`store`] (owns the observer trait quality control implements) |
+//! | judging | [`qc`] |
+//! | watching | [`watch`] |
+//! | configuration | [`settings`] (builds every layer's parameters) |
+//! | commands | [`daemon`], [`analyze`], [`status`], [`demo`] |
+
+pub mod frame;
+pub mod synth;
 
 pub mod analysis;
-pub mod analyze;
 pub mod decode;
-pub mod demo;
-pub mod frame;
+
+pub mod naming;
 pub mod pipeline;
-pub mod qc;
-pub mod service;
-pub mod settings;
-pub mod status;
+
 pub mod store;
-pub mod synth;
+
+pub mod qc;
+
 pub mod watch;
+
+pub mod settings;
+
+pub mod analyze;
+pub mod daemon;
+pub mod demo;
+pub mod status;

@@ -21,7 +21,7 @@ struct Cli {
 
 #[derive(Subcommand)]
 enum Command {
-    /// Analyse image files or folders once and print one line per frame.
+    /// Analyze image files or folders once and print one line per frame.
     Analyze {
         /// Configuration file (defaults apply without one).
         #[arg(long)]
@@ -83,6 +83,8 @@ enum Command {
 
 /// Exit code for usage and configuration errors.
 const USAGE: u8 = 2;
+/// Exit code for everything else that went wrong.
+const FAILURE: u8 = 1;
 
 fn main() -> ExitCode {
     let cli = Cli::parse();
@@ -110,12 +112,12 @@ fn main() -> ExitCode {
             if let Some(db) = db {
                 settings.store.database = db;
             }
-            let options = framewarden::watch::WatchOptions { new_run };
-            match framewarden::service::watch_until_signal(&settings, &options) {
+            let options = framewarden::daemon::WatchOptions { new_run };
+            match framewarden::daemon::process::watch_until_signal(&settings, &options) {
                 Ok(_) => ExitCode::SUCCESS,
                 Err(e) => {
                     eprintln!("framewarden watch: {e}");
-                    ExitCode::from(USAGE)
+                    ExitCode::from(if e.is_usage() { USAGE } else { FAILURE })
                 }
             }
         }
@@ -134,7 +136,7 @@ fn main() -> ExitCode {
                 Ok(dir) => dir,
                 Err(e) => {
                     eprintln!("framewarden demo: {e}");
-                    return ExitCode::from(1);
+                    return ExitCode::from(FAILURE);
                 }
             };
             let result = framewarden::demo::Scenario::parse(&text)
@@ -148,7 +150,7 @@ fn main() -> ExitCode {
                 Ok(_) => ExitCode::SUCCESS,
                 Err(e) => {
                     eprintln!("framewarden demo: {e}");
-                    ExitCode::from(1)
+                    ExitCode::from(FAILURE)
                 }
             }
         }
@@ -178,7 +180,7 @@ fn main() -> ExitCode {
                 }
                 Err(e) => {
                     eprintln!("framewarden status: {e}");
-                    ExitCode::from(1)
+                    ExitCode::from(FAILURE)
                 }
             }
         }
@@ -199,22 +201,20 @@ fn main() -> ExitCode {
                     return ExitCode::from(USAGE);
                 }
             };
-            let workers = workers.unwrap_or_else(default_workers).max(1);
+            let workers = workers
+                .unwrap_or_else(framewarden::watch::default_workers)
+                .max(1);
             let mut out = std::io::stdout().lock();
             match framewarden::analyze::run(&files, &settings, json, workers, &mut out) {
                 Ok(0) => ExitCode::SUCCESS,
-                Ok(_) => ExitCode::from(1),
+                Ok(_) => ExitCode::from(FAILURE),
                 Err(e) => {
                     eprintln!("framewarden analyze: cannot write output: {e}");
-                    ExitCode::from(1)
+                    ExitCode::from(FAILURE)
                 }
             }
         }
     }
-}
-
-fn default_workers() -> usize {
-    std::thread::available_parallelism().map_or(1, |n| n.get())
 }
 
 fn load_settings(path: Option<&std::path::Path>) -> Result<Settings, ExitCode> {

@@ -1,31 +1,92 @@
 //! One file in, one result out: decode the configured pages, settle the pixel
-//! size, run the pure analysis. Used by `analyze`, the watch service and the
-//! benches alike.
+//! size, run the pure analysis (and the recount of an unevenly lit frame).
+//! Used by `analyze`, the watch service and the benches alike.
+//!
+//! What is left to others: choosing the files (the watcher, `analyze`),
+//! judging and storing the result (quality control, the store).
 
 use std::path::Path;
 
-use crate::analysis::{analyze_frame, AnalysisError, FrameResult};
-use crate::decode::{self, DecodeError, PixelSizeSource};
-use crate::settings::{CalibrationPreference, Settings};
+use serde::Deserialize;
+
+use crate::analysis::{analyze_frame, AnalysisError, FrameResult, Recount, SegmentParams};
+use crate::decode::{self, DecodeError, DecodeLimits, PixelSizeSource};
+use crate::frame::Frame;
+
+/// Which source wins for the pixel size.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Deserialize, serde::Serialize)]
+#[serde(rename_all = "kebab-case")]
+pub enum CalibrationPreference {
+    /// File metadata first (OME-XML, then resolution tags), config as fallback.
+    File,
+    /// The configured size always.
+    Config,
+}
+
+/// The configured pixel size and which source wins.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Calibration {
+    /// Pixel size in µm; 0 = none configured.
+    pub pixel_size_um: f64,
+    /// Whether the file's own pixel size wins over the configured one.
+    pub prefer: CalibrationPreference,
+}
+
+impl Default for Calibration {
+    fn default() -> Self {
+        Calibration {
+            pixel_size_um: 0.0,
+            prefer: CalibrationPreference::File,
+        }
+    }
+}
+
+/// Everything [`analyze_file`] needs.
+#[derive(Debug, Clone, PartialEq, Default)]
+pub struct PipelineParams {
+    /// Segmentation and measurement.
+    pub segment: SegmentParams,
+    /// The pixel size for µm² measures.
+    pub calibration: Calibration,
+    /// Caps checked before decoding allocates.
+    pub limits: DecodeLimits,
+    /// Segment unevenly lit frames a second time after flattening; `None` = off.
+    pub recount: Option<Recount>,
+}
 
 /// A file's analysis with where its calibration came from.
 #[derive(Debug, Clone)]
 pub struct FileAnalysis {
+    /// The segmentation as configured.
     pub result: FrameResult,
-    /// The frame segmented again after flattening its background, when it was
-    /// flagged for uneven illumination and `[quality] on_uneven_illumination =
-    /// "flatten"` (see [`crate::qc::remedy`]).
-    pub flattened: Option<FrameResult>,
+    /// The frame segmented again after flattening its background, when it
+    /// was unevenly lit and the recount is on (see [`crate::analysis::recount`]).
+    pub recount: Option<FrameResult>,
+    /// Where the pixel size came from, when there is one.
     pub pixel_size_source: Option<PixelSizeSource>,
+}
+
+impl FileAnalysis {
+    /// The count used: the recount's where there is one, else the first result's.
+    pub fn count_used(&self) -> usize {
+        self.recount.as_ref().unwrap_or(&self.result).object_count
+    }
 }
 
 /// Why a file produced no result. The message names the file.
 #[derive(Debug, thiserror::Error)]
 pub enum FileError {
+    /// The file could not be read.
     #[error(transparent)]
     Decode(#[from] DecodeError),
+    /// The file was read but its pages could not be analyzed together.
     #[error("{path}: {source}")]
-    Analysis { path: String, source: AnalysisError },
+    Analysis {
+        /// The file.
+        path: String,
+        /// The cause.
+        source: AnalysisError,
+    },
 }
 
 impl FileError {
@@ -35,24 +96,24 @@ impl FileError {
     }
 }
 
-/// Decodes and analyses one file.
+/// Decodes and analyzes one file.
 ///
 /// # Errors
 /// [`FileError`] naming the file and the cause.
-pub fn analyze_file(path: &Path, settings: &Settings) -> Result<FileAnalysis, FileError> {
-    let seg = &settings.segment;
+pub fn analyze_file(path: &Path, params: &PipelineParams) -> Result<FileAnalysis, FileError> {
+    let seg = &params.segment;
     let pages: Vec<usize> = std::iter::once(seg.page)
         .chain(seg.measure_pages.iter().copied())
         .collect();
-    let decoded = decode::read_pages(path, &pages, &settings.limits)?;
-    let calibration = &settings.calibration;
+    let decoded = decode::read_pages(path, &pages, &params.limits)?;
+    let calibration = &params.calibration;
     let configured = (calibration.pixel_size_um > 0.0)
         .then_some((calibration.pixel_size_um, PixelSizeSource::Config));
     let pixel_size = match calibration.prefer {
         CalibrationPreference::Config => configured,
         CalibrationPreference::File => decoded.pixel_size.or(configured),
     };
-    let extra: Vec<(usize, &crate::frame::Frame)> = seg
+    let extra: Vec<(usize, &Frame)> = seg
         .measure_pages
         .iter()
         .copied()
@@ -63,20 +124,17 @@ pub fn analyze_file(path: &Path, settings: &Settings) -> Result<FileAnalysis, Fi
         source,
     };
     let pixel_size_um = pixel_size.map(|p| p.0);
-    let result =
-        analyze_frame(&decoded.frames[0], &extra, seg, pixel_size_um).map_err(analysis_error)?;
-    let flattened = crate::qc::remedy::flattened(
-        &decoded.frames[0],
-        &extra,
-        seg,
-        &settings.quality,
-        &result,
-        pixel_size_um,
-    )
-    .map_err(analysis_error)?;
+    let frame = &decoded.frames[0];
+    let result = analyze_frame(frame, &extra, seg, pixel_size_um).map_err(analysis_error)?;
+    let recount = match &params.recount {
+        Some(recount) => recount
+            .run(frame, &extra, seg, &result, pixel_size_um)
+            .map_err(analysis_error)?,
+        None => None,
+    };
     Ok(FileAnalysis {
         result,
-        flattened,
+        recount,
         pixel_size_source: pixel_size.map(|p| p.1),
     })
 }

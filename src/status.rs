@@ -10,7 +10,7 @@ use std::path::Path;
 use rusqlite::{params, Connection, OptionalExtension};
 use serde::Serialize;
 
-use crate::store::{self, now_ms, StoreError, POSITION_SQL};
+use crate::store::{self, iso_time_sql, now_ms, StoreError, COUNT_USED_SQL, POSITION_SQL};
 
 /// Everything `status` shows; `--json` prints it as one document.
 #[derive(Debug, Clone, Serialize, PartialEq)]
@@ -21,8 +21,8 @@ pub struct StatusReport {
     /// Files recorded in this run (any status).
     pub frames_seen: u64,
     pub frames_done: u64,
-    /// Complete files queued or being analysed.
-    pub frames_pending: u64,
+    /// Complete files queued for analysis or being analyzed.
+    pub frames_queued: u64,
     pub frames_failed: u64,
     /// Objects in done frames (the flattened count where the remedy ran).
     pub objects_total: u64,
@@ -83,19 +83,8 @@ pub struct RecentFrame {
     /// The first result's threshold (a flattened recount thresholds other pixels).
     pub threshold: Option<f64>,
     pub error: Option<String>,
-    pub analysed_at: Option<String>,
+    pub analyzed_at: Option<String>,
     pub latency_ms: Option<i64>,
-}
-
-/// SQL for an `*_at_ms` column as RFC 3339 UTC text.
-macro_rules! iso {
-    ($col:literal) => {
-        concat!(
-            "strftime('%Y-%m-%dT%H:%M:%fZ', ",
-            $col,
-            " / 1000.0, 'unixepoch')"
-        )
-    };
 }
 
 /// Reads the status of run `run` (by default the current or last one), with up
@@ -134,7 +123,7 @@ fn query(
         run: None,
         frames_seen: 0,
         frames_done: 0,
-        frames_pending: 0,
+        frames_queued: 0,
         frames_failed: 0,
         objects_total: 0,
         frames_per_minute: None,
@@ -149,12 +138,10 @@ fn query(
     };
     let run = conn
         .query_row(
-            concat!(
-                "SELECT id, folders, ",
-                iso!("started_at_ms"),
-                ", ",
-                iso!("ended_at_ms"),
-                " FROM runs WHERE ?1 IS NULL OR id = ?1 ORDER BY id DESC LIMIT 1"
+            &format!(
+                "SELECT id, folders, {}, {} FROM runs WHERE ?1 IS NULL OR id = ?1 ORDER BY id DESC LIMIT 1",
+                iso_time_sql("started_at_ms"),
+                iso_time_sql("ended_at_ms"),
             ),
             [run],
             |r| {
@@ -172,12 +159,14 @@ fn query(
     let run_id = run.id;
     report.run = Some(run);
 
-    let (seen, done, pending, failed, objects, first_ms, last_ms): (i64, i64, i64, i64, i64, Option<i64>, Option<i64>) =
+    let (seen, done, queued, failed, objects, first_ms, last_ms): (i64, i64, i64, i64, i64, Option<i64>, Option<i64>) =
         conn.query_row(
-            "SELECT count(*), total(status = 'done'), total(status = 'queued'), total(status = 'failed'),
-                    total(CASE WHEN status = 'done' THEN COALESCE(flat_object_count, object_count) END),
-                    min(CASE WHEN status = 'done' THEN analysed_at_ms END), max(analysed_at_ms)
-             FROM frames WHERE run_id = ?1",
+            &format!(
+                "SELECT count(*), total(status = 'done'), total(status = 'queued'), total(status = 'failed'),
+                        total(CASE WHEN status = 'done' THEN {COUNT_USED_SQL} END),
+                        min(CASE WHEN status = 'done' THEN analyzed_at_ms END), max(analyzed_at_ms)
+                 FROM frames WHERE run_id = ?1"
+            ),
             [run_id],
             |r| {
                 let n = |i: usize| r.get::<_, f64>(i).map(|v| v as i64);
@@ -186,23 +175,25 @@ fn query(
         )?;
     report.frames_seen = seen as u64;
     report.frames_done = done as u64;
-    report.frames_pending = pending as u64;
+    report.frames_queued = queued as u64;
     report.frames_failed = failed as u64;
     report.objects_total = objects as u64;
     if let Some(last) = last_ms {
         report.last_frame_at =
-            conn.query_row(concat!("SELECT ", iso!("?1")), [last], |r| r.get(0))?;
+            conn.query_row(&format!("SELECT {}", iso_time_sql("?1")), [last], |r| {
+                r.get(0)
+            })?;
         report.last_frame_age_s = Some((now_ms() - last).max(0) as f64 / 1000.0);
         if let Some(first) = first_ms.filter(|&f| last > f && done > 1) {
             report.frames_per_minute = Some((done - 1) as f64 * 60_000.0 / (last - first) as f64);
         }
     }
-    let recent_sql = concat!(
-        "SELECT path, version, status, COALESCE(flat_object_count, object_count), threshold, error, ",
-        iso!("analysed_at_ms"),
-        ", latency_ms FROM frames WHERE run_id = ?1 AND (?2 = 0 OR status = 'failed') ORDER BY id DESC LIMIT ?3"
+    let recent_sql = format!(
+        "SELECT file, version, status, {COUNT_USED_SQL}, threshold, error, {}, latency_ms
+         FROM frames WHERE run_id = ?1 AND (?2 = 0 OR status = 'failed') ORDER BY id DESC LIMIT ?3",
+        iso_time_sql("analyzed_at_ms")
     );
-    let mut stmt = conn.prepare(recent_sql)?;
+    let mut stmt = conn.prepare(&recent_sql)?;
     let mut recent_of = |failed_only: bool| -> rusqlite::Result<Vec<RecentFrame>> {
         stmt.query_map(params![run_id, failed_only, recent as i64], |r| {
             Ok(RecentFrame {
@@ -212,7 +203,7 @@ fn query(
                 object_count: r.get(3)?,
                 threshold: r.get(4)?,
                 error: r.get(5)?,
-                analysed_at: r.get(6)?,
+                analyzed_at: r.get(6)?,
                 latency_ms: r.get(7)?,
             })
         })?
@@ -230,7 +221,7 @@ fn query(
 /// Per-position summaries, folded from the run's rows in recording order.
 fn positions(conn: &Connection, run_id: i64) -> rusqlite::Result<Vec<PositionSummary>> {
     let mut stmt = conn.prepare(&format!(
-        "SELECT {POSITION_SQL} AS position, status, COALESCE(flat_object_count, object_count),
+        "SELECT {POSITION_SQL} AS position, status, {COUNT_USED_SQL},
                 EXISTS (SELECT 1 FROM flags WHERE frame_id = frames.id)
          FROM frames WHERE run_id = ?1 AND {POSITION_SQL} <> '' ORDER BY position, id"
     ))?;
@@ -294,10 +285,10 @@ pub fn render(report: &StatusReport) -> String {
     );
     let _ = writeln!(
         out,
-        "frames: {} seen, {} done, {} pending, {} failed; {} objects",
+        "frames: {} seen, {} done, {} queued, {} failed; {} objects",
         report.frames_seen,
         report.frames_done,
-        report.frames_pending,
+        report.frames_queued,
         report.frames_failed,
         report.objects_total
     );
@@ -409,8 +400,8 @@ mod tests {
                 "INSERT INTO runs (folders, started_at_ms, last_frame_at_ms, settings, ended_at_ms)
                      VALUES ('[\"/acq/monday\"]', 1000, 1000, '{}', 2000),
                             ('[\"/acq/tuesday\"]', 3000, 3000, '{}', NULL);
-                 INSERT INTO frames (run_id, path, size_bytes, mtime_ns, version, status,
-                                     detected_at_ms, ready_at_ms, analysed_at_ms, object_count)
+                 INSERT INTO frames (run_id, file, size_bytes, mtime_ns, version, status,
+                                     detected_at_ms, ready_at_ms, analyzed_at_ms, object_count)
                      VALUES (1, '/acq/monday/a.tif', 10, 1, 1, 'done', 1000, 1000, 1500, 7),
                             (1, '/acq/monday/b.tif', 10, 1, 1, 'done', 1000, 1000, 1600, 9),
                             (2, '/acq/tuesday/a.tif', 10, 1, 1, 'queued', 3000, 3000, NULL, NULL);",
@@ -418,7 +409,7 @@ mod tests {
             .unwrap();
         let last = read(&db, 5, None).unwrap();
         assert_eq!(last.run.as_ref().map(|r| r.id), Some(2));
-        assert_eq!((last.frames_seen, last.frames_pending), (1, 1));
+        assert_eq!((last.frames_seen, last.frames_queued), (1, 1));
         let monday = read(&db, 5, Some(1)).unwrap();
         let run = monday.run.as_ref().unwrap();
         assert_eq!(

@@ -213,7 +213,7 @@ fn frames_carry_the_flags_they_earn_on_their_own() {
 }
 
 #[test]
-fn a_flattened_recount_is_reported_beside_the_first_result() {
+fn a_recount_after_flattening_is_reported_beside_the_first_result() {
     // Dim objects on a background that doubles across the field (the scene of
     // the remedy's unit test): flagged uneven, so segmented again flattened.
     let dir = tempfile::tempdir().unwrap();
@@ -249,13 +249,13 @@ fn a_flattened_recount_is_reported_beside_the_first_result() {
         .lines()
         .map(|l| serde_json::from_str(l).unwrap())
         .collect();
-    let flat = &lines[0]["flattened"];
-    let recount = flat["object_count"].as_u64().expect("a flattened result");
-    assert_eq!(flat["objects"].as_array().unwrap().len() as u64, recount);
+    let second = &lines[0]["recount"];
+    let recount = second["object_count"].as_u64().expect("a recount");
+    assert_eq!(second["objects"].as_array().unwrap().len() as u64, recount);
     let first = lines[0]["object_count"].as_u64().unwrap();
     assert!(
         recount.abs_diff(20) < first.abs_diff(20),
-        "flattened {recount}, first {first}, truth 20"
+        "recount {recount}, first {first}, truth 20"
     );
     let sentence = lines[0]["flags"]
         .as_array()
@@ -268,11 +268,11 @@ fn a_flattened_recount_is_reported_beside_the_first_result() {
         .to_string();
     assert!(
         sentence.contains(&format!("{recount} objects"))
-            && sentence.contains("the count is taken from the flattened result"),
+            && sentence.contains("the count is taken from the recount"),
         "{sentence}"
     );
-    // An evenly lit frame is analysed once.
-    assert!(lines[1]["flattened"].is_null(), "{}", lines[1]);
+    // An evenly lit frame is analyzed once.
+    assert!(lines[1]["recount"].is_null(), "{}", lines[1]);
     // The table shows the count used, marked.
     let table = run(false);
     let row = table.lines().nth(1).unwrap();

@@ -20,7 +20,7 @@ fn the_demo_records_every_frame_and_explains_its_alerts() {
         );
     };
     // 8 wells x 12 time points; one file is cut off half-way and stays so.
-    has("frames: 96 seen, 95 done, 0 pending, 1 failed");
+    has("frames: 96 seen, 95 done, 0 queued, 1 failed");
     has("B03_t0006_nuclei.tif: still incomplete after");
     // The dimming lamp and the growing gradient raise drift alerts that stay
     // open to the end, each with its evidence.
@@ -30,7 +30,7 @@ fn the_demo_records_every_frame_and_explains_its_alerts() {
     has("CUSUM");
     // The late frames are flagged for uneven illumination and recounted flat.
     has("uneven_illumination: uneven illumination: the background changes by");
-    has("the count is taken from the flattened result");
+    has("the count is taken from the recount");
     // The per-well summary: every well's cells divide through the run, and
     // the cut-off file is B03's.
     has("per position:");

@@ -9,16 +9,16 @@
 use std::sync::Arc;
 
 use framewarden::analysis::{analyze_frame, correct::FlatField, FrameResult};
+use framewarden::analysis::{Background, SegmentParams};
 use framewarden::frame::Frame;
-use framewarden::settings::{Background, SegmentSettings};
 use framewarden::synth::{generate, render, Scene, SceneSpec, TruthObject};
 
-fn analyze(frame: &Frame, settings: &SegmentSettings) -> FrameResult {
-    analyze_frame(frame, &[], settings, None).expect("a synthetic frame always analyses")
+fn analyze(frame: &Frame, settings: &SegmentParams) -> FrameResult {
+    analyze_frame(frame, &[], settings, None).expect("a synthetic frame always analyzes")
 }
 
 fn otsu(frame: &Frame) -> FrameResult {
-    analyze(frame, &SegmentSettings::default())
+    analyze(frame, &SegmentParams::default())
 }
 
 /// Pairs every truth object with the measured object nearest its centroid and
@@ -116,9 +116,9 @@ fn filled_areas_and_centroids_match_truth_exactly() {
         // Without filling, rings keep their holes: same count, smaller areas.
         let open = analyze(
             &scene.frame,
-            &SegmentSettings {
+            &SegmentParams {
                 fill_holes: false,
-                ..SegmentSettings::default()
+                ..SegmentParams::default()
             },
         );
         assert_eq!(open.object_count, scene.object_count());
@@ -259,9 +259,9 @@ fn strong_gradient_defeats_plain_otsu_and_flat_field_restores_the_count() {
             ..spec.clone()
         };
         let flat = render(&flat_spec, &[], 0).unwrap();
-        let settings = SegmentSettings {
+        let settings = SegmentParams {
             background: Background::FlatField(Arc::new(FlatField::new(&flat, None).unwrap())),
-            ..SegmentSettings::default()
+            ..SegmentParams::default()
         };
         assert_eq!(
             analyze(&scene.frame, &settings).object_count,

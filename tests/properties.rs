@@ -5,8 +5,8 @@
 
 use framewarden::analysis::label::label;
 use framewarden::analysis::{analyze_frame, FrameResult};
+use framewarden::analysis::{Connectivity, Method, SegmentParams};
 use framewarden::frame::Frame;
-use framewarden::settings::{Method, SegmentSettings};
 use proptest::prelude::*;
 
 /// Random binary-ish 8-bit frames: 0 or 200 per pixel, density varying.
@@ -40,16 +40,16 @@ fn transform(f: &Frame, map: impl Fn(usize, usize) -> (usize, usize), w: usize, 
     }
 }
 
-fn settings(connectivity: u8, fill_holes: bool) -> SegmentSettings {
-    SegmentSettings {
+fn settings(connectivity: Connectivity, fill_holes: bool) -> SegmentParams {
+    SegmentParams {
         method: Method::Fixed(100),
         connectivity,
         fill_holes,
-        ..SegmentSettings::default()
+        ..SegmentParams::default()
     }
 }
 
-fn run(f: &Frame, s: &SegmentSettings) -> FrameResult {
+fn run(f: &Frame, s: &SegmentParams) -> FrameResult {
     analyze_frame(f, &[], s, None).expect("sizes match")
 }
 
@@ -63,7 +63,7 @@ proptest! {
     #![proptest_config(ProptestConfig { cases: 400, ..ProptestConfig::default() })]
 
     #[test]
-    fn filling_never_removes_foreground(f in frames(), conn in prop_oneof![Just(4u8), Just(8u8)]) {
+    fn filling_never_removes_foreground(f in frames(), conn in prop_oneof![Just(Connectivity::Four), Just(Connectivity::Eight)]) {
         let plain = label(&f.pixels, f.width, f.height, 100, conn, false);
         let filled = label(&f.pixels, f.width, f.height, 100, conn, true);
         let mut covered = vec![false; f.len()];
@@ -82,7 +82,7 @@ proptest! {
     }
 
     #[test]
-    fn runs_stay_in_bounds_and_cover_the_foreground_once(f in frames(), conn in prop_oneof![Just(4u8), Just(8u8)]) {
+    fn runs_stay_in_bounds_and_cover_the_foreground_once(f in frames(), conn in prop_oneof![Just(Connectivity::Four), Just(Connectivity::Eight)]) {
         let c = label(&f.pixels, f.width, f.height, 100, conn, false);
         let mut seen = vec![0u8; f.len()];
         for (r, &k) in c.runs.iter().zip(&c.component) {
@@ -100,7 +100,7 @@ proptest! {
     #[test]
     fn counts_and_areas_are_invariant_under_transposition_and_flips(
         f in frames(),
-        conn in prop_oneof![Just(4u8), Just(8u8)],
+        conn in prop_oneof![Just(Connectivity::Four), Just(Connectivity::Eight)],
         fill in any::<bool>(),
     ) {
         let s = settings(conn, fill);
@@ -126,7 +126,7 @@ proptest! {
 
     #[test]
     fn objects_are_inside_their_boxes_and_labels_are_consecutive(f in frames()) {
-        let r = run(&f, &settings(8, true));
+        let r = run(&f, &settings(Connectivity::Eight, true));
         for (i, o) in r.objects.iter().enumerate() {
             prop_assert_eq!(o.label as usize, i + 1);
             let [x0, y0, x1, y1] = o.bbox;

@@ -1,5 +1,5 @@
 //! Synthetic nights: frames drawn by `framewarden::synth` with known trouble
-//! injected at a known frame, analysed by the real engine, judged by the real run
+//! injected at a known frame, analyzed by the real engine, judged by the real run
 //! monitor, in-process. Checks that a stable night raises nothing and that each
 //! kind of trouble raises the right alert once, within a stated number of
 //! frames, and recovers once the trouble ends.
@@ -7,12 +7,11 @@
 //! Run with `--nocapture` to see the measured delays.
 
 use framewarden::analysis::analyze_frame;
+use framewarden::analysis::SegmentParams;
 use framewarden::qc::alerts::{AlertEvent, AlertState};
-use framewarden::qc::config::QualitySettings;
-use framewarden::qc::drift::Metric;
-use framewarden::qc::flags::FrameMetrics;
+use framewarden::qc::metrics::{FrameMetrics, Metric};
 use framewarden::qc::monitor::{drift_condition, RunMonitor, STALLED};
-use framewarden::settings::SegmentSettings;
+use framewarden::qc::params::QualitySettings;
 use framewarden::synth::{self, SceneSpec};
 
 /// Minutes between frames of one position in these nights.
@@ -52,7 +51,7 @@ fn run_night(
     gap_after: Option<(usize, i64)>,
 ) -> Night {
     let mut monitor = RunMonitor::new(QualitySettings::default());
-    let seg = SegmentSettings::default();
+    let seg = SegmentParams::default();
     let mut events = Vec::new();
     let mut now = 0i64;
     for i in 0..frames {
@@ -68,7 +67,7 @@ fn run_night(
             let mut spec = scene(i);
             spec.seed = spec.seed.wrapping_mul(31).wrapping_add(p as u64 + 1);
             let frame = synth::generate(&spec).expect("valid scene").frame;
-            let result = analyze_frame(&frame, &[], &seg, None).expect("analysable frame");
+            let result = analyze_frame(&frame, &[], &seg, None).expect("analyzable frame");
             let file = format!("{position}_t{i:04}.tif");
             let verdict = monitor.observe(position, &file, now, &FrameMetrics::from(&result));
             events.extend(verdict.events.into_iter().map(|e| (i, e)));

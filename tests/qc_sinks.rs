@@ -9,7 +9,7 @@ use std::sync::mpsc;
 use std::time::Duration;
 
 use framewarden::qc::alerts::{AlertEvent, AlertState};
-use framewarden::qc::config::{AlertSettings, CommandSink, WebhookSink};
+use framewarden::qc::params::{AlertSettings, CommandSink, WebhookSink};
 use framewarden::qc::sinks::{post_once, AlertDispatcher};
 
 fn event(file: &str) -> AlertEvent {

@@ -134,28 +134,28 @@ fn status_shows_a_drift_alert_its_recovery_the_flags_and_failures() {
     assert!(sentence.contains("uneven illumination"), "{sentence}");
     // The remedy ran: both results kept, the sentence says which count is used.
     assert!(
-        sentence.contains("the count is taken from the flattened result"),
+        sentence.contains("the count is taken from the recount"),
         "{sentence}"
     );
-    // Both results' objects are stored; the count used is the flattened one's.
+    // Both results' objects are stored; the count used is the recount's.
     let conn = rusqlite::Connection::open_with_flags(
         &bench.db,
         rusqlite::OpenFlags::SQLITE_OPEN_READ_ONLY,
     )
     .unwrap();
-    let (raw, flat, raw_count, flat_count, source): (i64, i64, i64, i64, String) = conn
+    let (raw, recount, raw_count, recount_count, source): (i64, i64, i64, i64, String) = conn
         .query_row(
             "SELECT (SELECT count(*) FROM objects WHERE frame_id = f.id AND result = 'raw'),
-                    (SELECT count(*) FROM objects WHERE frame_id = f.id AND result = 'flattened'),
-                    object_count, flat_object_count, count_source
-             FROM frames f WHERE path LIKE '%B01_t0000.tif'",
+                    (SELECT count(*) FROM objects WHERE frame_id = f.id AND result = 'recount'),
+                    object_count, recount_object_count, count_source
+             FROM frames f WHERE file LIKE '%B01_t0000.tif'",
             [],
             |r| Ok((r.get(0)?, r.get(1)?, r.get(2)?, r.get(3)?, r.get(4)?)),
         )
         .unwrap();
-    assert_eq!((raw, flat), (raw_count, flat_count));
-    assert!(flat > 0);
-    assert_eq!(source, "flattened");
+    assert_eq!((raw, recount), (raw_count, recount_count));
+    assert!(recount > 0);
+    assert_eq!(source, "recount");
     drop(conn);
     let listed = status["frames"]
         .as_array()
@@ -165,7 +165,7 @@ fn status_shows_a_drift_alert_its_recovery_the_flags_and_failures() {
         .unwrap_or_else(|| panic!("B01 among the recent frames: {status:#}"));
     assert_eq!(
         listed["object_count"].as_i64(),
-        Some(flat_count),
+        Some(recount_count),
         "{listed}"
     );
     let failed = flags_of("C01_t0000.tif");
@@ -205,7 +205,7 @@ fn status_shows_a_drift_alert_its_recovery_the_flags_and_failures() {
     );
     assert!(a01["min_count"].as_i64() <= a01["max_count"].as_i64());
     assert_eq!(b01["frames_flagged"].as_u64(), Some(1), "{b01}");
-    assert_eq!(b01["last_count"].as_i64(), Some(flat_count), "{b01}");
+    assert_eq!(b01["last_count"].as_i64(), Some(recount_count), "{b01}");
     assert_eq!(
         (c01["frames_done"].as_u64(), c01["frames_failed"].as_u64()),
         (Some(0), Some(1))

@@ -17,9 +17,9 @@ use common::check;
 
 use framewarden::analysis::threshold::{li, multi_otsu, otsu, separability, triangle, Histogram};
 use framewarden::analysis::{analyze_frame, FrameResult};
+use framewarden::analysis::{Connectivity, SegmentParams};
 use framewarden::decode::{read_page, DecodeLimits};
 use framewarden::frame::Frame;
-use framewarden::settings::SegmentSettings;
 use serde::Deserialize;
 
 /// Relative tolerance for floating-point measures (moments, means, lengths);
@@ -334,21 +334,25 @@ fn separability_matches_exact_value() {
 
 #[test]
 fn segmentation_8_connected_matches_scipy_and_skimage() {
-    let settings = SegmentSettings::default();
-    assert_eq!(settings.connectivity, 8, "default settings are 8-connected");
+    let settings = SegmentParams::default();
+    assert_eq!(
+        settings.connectivity,
+        Connectivity::Eight,
+        "default settings are 8-connected"
+    );
     compare_segmentation(&settings, |s| &s.connectivity8);
 }
 
 #[test]
 fn segmentation_4_connected_matches_scipy_and_skimage() {
-    let settings = SegmentSettings {
-        connectivity: 4,
-        ..SegmentSettings::default()
+    let settings = SegmentParams {
+        connectivity: Connectivity::Four,
+        ..SegmentParams::default()
     };
     compare_segmentation(&settings, |s| &s.connectivity4);
 }
 
-fn compare_segmentation(settings: &SegmentSettings, pick: fn(&SegmentationRef) -> &LabelRef) {
+fn compare_segmentation(settings: &SegmentParams, pick: fn(&SegmentationRef) -> &LabelRef) {
     let mut failures = Vec::new();
     let mut objects = 0;
     // Largest relative deviation seen per field, printed for the record.
@@ -435,7 +439,7 @@ fn compare_segmentation(settings: &SegmentSettings, pick: fn(&SegmentationRef) -
     }
     eprintln!(
         "{objects} objects compared (connectivity {}); largest relative deviations:",
-        settings.connectivity
+        settings.connectivity.neighbours()
     );
     for (field, dev) in &worst {
         eprintln!("  {field}: {dev:e}");

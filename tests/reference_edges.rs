@@ -21,10 +21,11 @@ mod common;
 
 use common::check;
 
+use framewarden::analysis::SegmentParams;
 use framewarden::analysis::{analyze_frame, FrameResult};
 use framewarden::decode::{read_page, DecodeLimits};
 use framewarden::frame::Frame;
-use framewarden::settings::{self, SegmentSettings};
+use framewarden::settings;
 use serde::Deserialize;
 use serde_json::Value;
 
@@ -99,10 +100,10 @@ struct Fixture {
     histogram_frames: Vec<Frame>,
 }
 
-/// One settings case ready to analyse: its parsed settings, the segmented page
+/// One settings case ready to analyze: its parsed settings, the segmented page
 /// and the extra pages listed in `[measure]`.
 struct SettingsInput {
-    segment: SegmentSettings,
+    segment: SegmentParams,
     frame: Frame,
     extra: Vec<(usize, Frame)>,
 }
@@ -123,10 +124,10 @@ fn fixture() -> &'static Fixture {
             .enumerate()
             .map(|(i, case)| {
                 let path = dir.path().join(format!("case{i}.toml"));
-                let parsed = settings::parse(&case.config, &path).unwrap_or_else(|e| {
+                let parsed = settings::from_text(&case.config, &path).unwrap_or_else(|e| {
                     panic!("case {i}: our config parser refused the fragment: {e}")
                 });
-                let segment = parsed.segment;
+                let segment = parsed.pipeline.segment;
                 let frame = decode(&case.file, segment.page);
                 let extra = segment
                     .measure_pages
@@ -291,9 +292,10 @@ fn show(partitions: &[Partition]) -> String {
 /// Runs the full analysis with only the threshold method set.
 fn analyze_with(frame: &Frame, method: &str) -> FrameResult {
     let text = format!("[segment]\n{method}\n");
-    let settings =
-        settings::parse(&text, Path::new("method.toml")).unwrap_or_else(|e| panic!("{text}: {e}"));
-    analyze_frame(frame, &[], &settings.segment, None).expect("analysis of a decoded frame")
+    let settings = settings::from_text(&text, Path::new("method.toml"))
+        .unwrap_or_else(|e| panic!("{text}: {e}"));
+    analyze_frame(frame, &[], &settings.pipeline.segment, None)
+        .expect("analysis of a decoded frame")
 }
 
 #[test]

@@ -30,7 +30,7 @@ fn assert_each_done_once(rows: &[watch_support::Row], expected: usize) {
 }
 
 #[test]
-fn a_file_written_in_slow_chunks_is_analysed_once_and_complete() {
+fn a_file_written_in_slow_chunks_is_analyzed_once_and_complete() {
     let mut bench = Bench::new("");
     bench.start();
     let (bytes, truth) = tiff_bytes(11, 192, 9);
@@ -38,7 +38,7 @@ fn a_file_written_in_slow_chunks_is_analysed_once_and_complete() {
     let mut file = std::fs::File::create(&path).unwrap();
     // Pauses both shorter and longer than the settle time: the long ones make
     // the file look complete by size and mtime, so only the full decode (a short
-    // read means "not yet") keeps it from being analysed early.
+    // read means "not yet") keeps it from being analyzed early.
     let chunks: Vec<&[u8]> = bytes.chunks(bytes.len() / 6 + 1).collect();
     for (i, chunk) in chunks.iter().enumerate() {
         file.write_all(chunk).unwrap();
@@ -51,7 +51,7 @@ fn a_file_written_in_slow_chunks_is_analysed_once_and_complete() {
     assert_eq!(
         rows[0].size_bytes as usize,
         bytes.len(),
-        "analysed only when complete"
+        "analyzed only when complete"
     );
     assert_eq!(rows[0].object_count, Some(truth as i64));
     assert_eq!(rows[0].version, 1);
@@ -152,7 +152,7 @@ fn status_polled_while_watch_ingests_never_fails() {
         for key in [
             "frames_seen",
             "frames_done",
-            "frames_pending",
+            "frames_queued",
             "frames_failed",
             "objects_total",
             "last_frame_at",
@@ -180,7 +180,7 @@ fn status_polled_while_watch_ingests_never_fails() {
     )
     .unwrap();
     assert_eq!(doc["frames_seen"], 400);
-    assert_eq!(doc["frames_pending"], 0);
+    assert_eq!(doc["frames_queued"], 0);
     let recent = &doc["frames"][0];
     for key in ["file", "object_count", "threshold", "status", "error"] {
         assert!(recent.get(key).is_some(), "missing {key} in {recent}");
@@ -436,7 +436,7 @@ fn a_stop_held_up_by_a_locked_database_keeps_its_bound_and_a_restart_loses_nothi
     for i in 0..8 {
         bench.write(&format!("N01_t{i:04}.tif"), &bytes);
     }
-    // Settled (100 ms), analysed, and stuck at the store.
+    // Settled (100 ms), analyzed, and stuck at the store.
     std::thread::sleep(Duration::from_millis(1500));
     let asked = Instant::now();
     bench.signal("TERM");
@@ -471,7 +471,7 @@ fn a_second_service_on_the_same_database_is_refused() {
         .output()
         .unwrap();
     let stderr = String::from_utf8_lossy(&second.stderr);
-    assert_eq!(second.status.code(), Some(2), "{stderr}");
+    assert_eq!(second.status.code(), Some(1), "{stderr}");
     assert!(
         stderr.contains("another framewarden watch is recording into")
             && stderr.contains("fw.db")

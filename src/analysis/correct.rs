@@ -178,13 +178,23 @@ fn grey_pass(
 
 /// Gain map for flat-field correction:
 /// `corrected = (raw - dark) / (flat - dark) × mean(flat - dark)`.
-#[derive(Debug, Clone)]
+#[derive(Clone, PartialEq)]
 pub struct FlatField {
     pub width: usize,
     pub height: usize,
     dark: Vec<u16>,
     /// `mean(flat - dark) / (flat - dark)` per pixel (0 where flat <= dark).
     gain: Vec<f32>,
+}
+
+/// The size only: the per-pixel maps are too long to print.
+impl std::fmt::Debug for FlatField {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        f.debug_struct("FlatField")
+            .field("width", &self.width)
+            .field("height", &self.height)
+            .finish_non_exhaustive()
+    }
 }
 
 impl FlatField {

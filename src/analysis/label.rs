@@ -9,6 +9,7 @@
 //! complementary connectivity). Components are numbered in raster order of their
 //! first pixel. Measurements are left to [`crate::analysis::measure`].
 
+use crate::analysis::params::Connectivity;
 use crate::analysis::simd::multiversion;
 
 /// A horizontal run `[x0, x1)` on row `y`.
@@ -57,34 +58,34 @@ impl UnionFind {
 
 /// Labels the foreground `pixels > threshold` of a `width × height` image.
 ///
-/// `connectivity` is 4 or 8 (8 = diagonal neighbours join). With `fill_holes`,
+/// Under [`Connectivity::Eight`] diagonal neighbours join. With `fill_holes`,
 /// enclosed background is added to the component that encloses it.
 ///
 /// ```
-/// use framewarden::analysis::label::label;
+/// use framewarden::analysis::{label::label, Connectivity};
 /// // A ring with a hole, and a diagonal pair: 8-connected, filled.
 /// let img: Vec<u16> = vec![
 ///     9, 9, 9, 0, 0, 0,
 ///     9, 0, 9, 0, 0, 9,
 ///     9, 9, 9, 0, 9, 0,
 /// ];
-/// let c = label(&img, 6, 3, 0, 8, true);
+/// let c = label(&img, 6, 3, 0, Connectivity::Eight, true);
 /// assert_eq!(c.count, 2); // the ring (9 px once filled) and the diagonal pair
 /// let area0: u32 = c.runs.iter().zip(&c.component).filter(|(_, &k)| k == 0).map(|(r, _)| r.x1 - r.x0).sum();
 /// assert_eq!(area0, 9);
 /// // 4-connected: the pair splits in two.
-/// assert_eq!(label(&img, 6, 3, 0, 4, true).count, 3);
+/// assert_eq!(label(&img, 6, 3, 0, Connectivity::Four, true).count, 3);
 /// ```
 pub fn label(
     pixels: &[u16],
     width: usize,
     height: usize,
     threshold: u16,
-    connectivity: u8,
+    connectivity: Connectivity,
     fill_holes: bool,
 ) -> Components {
     debug_assert_eq!(pixels.len(), width * height);
-    let fg8 = connectivity == 8;
+    let fg8 = connectivity == Connectivity::Eight;
     // Background uses the complementary connectivity.
     let bg8 = !fg8;
     let mut runs: Vec<Run> = Vec::new();
@@ -241,15 +242,15 @@ mod tests {
     #[test]
     fn diagonal_joins_only_under_8_connectivity() {
         let (px, w, h) = img(&["#..", ".#.", "..#"]);
-        assert_eq!(label(&px, w, h, 0, 8, false).count, 1);
-        assert_eq!(label(&px, w, h, 0, 4, false).count, 3);
+        assert_eq!(label(&px, w, h, 0, Connectivity::Eight, false).count, 1);
+        assert_eq!(label(&px, w, h, 0, Connectivity::Four, false).count, 3);
     }
 
     #[test]
     fn numbering_follows_the_first_pixel_in_raster_order() {
         // The U's first pixel (0,0) precedes the dot (3,0); its arms meet on row 2.
         let (px, w, h) = img(&["#.#.#", "#.#..", "###.."]);
-        let c = label(&px, w, h, 0, 8, false);
+        let c = label(&px, w, h, 0, Connectivity::Eight, false);
         assert_eq!(c.count, 2);
         assert_eq!(areas(&c), vec![7, 1]);
     }
@@ -258,9 +259,12 @@ mod tests {
     fn holes_are_filled_and_border_background_is_not() {
         // A closed ring (hole of 1 px) and an open ring (its gap reaches the border).
         let (px, w, h) = img(&["###.###", "#.#.#..", "###.###"]);
-        let c = label(&px, w, h, 0, 8, true);
+        let c = label(&px, w, h, 0, Connectivity::Eight, true);
         assert_eq!(areas(&c), vec![9, 7]);
-        assert_eq!(areas(&label(&px, w, h, 0, 8, false)), vec![8, 7]);
+        assert_eq!(
+            areas(&label(&px, w, h, 0, Connectivity::Eight, false)),
+            vec![8, 7]
+        );
     }
 
     #[test]
@@ -268,23 +272,29 @@ mod tests {
         // The centre's only exit is a diagonal gap: a hole when background is
         // 4-connected (objects 8-connected), not a hole the other way round.
         let (px, w, h) = img(&["####.", "#..#.", "#.#..", "###.."]);
-        assert_eq!(areas(&label(&px, w, h, 0, 8, true)), vec![14]);
-        let four = label(&px, w, h, 0, 4, true);
+        assert_eq!(
+            areas(&label(&px, w, h, 0, Connectivity::Eight, true)),
+            vec![14]
+        );
+        let four = label(&px, w, h, 0, Connectivity::Four, true);
         assert_eq!(areas(&four).iter().sum::<u32>(), 11);
     }
 
     #[test]
     fn an_object_inside_a_hole_merges_with_its_ring() {
         let (px, w, h) = img(&["#####", "#...#", "#.#.#", "#...#", "#####"]);
-        let c = label(&px, w, h, 0, 8, true);
+        let c = label(&px, w, h, 0, Connectivity::Eight, true);
         assert_eq!(areas(&c), vec![25]);
-        assert_eq!(label(&px, w, h, 0, 8, false).count, 2);
+        assert_eq!(label(&px, w, h, 0, Connectivity::Eight, false).count, 2);
     }
 
     #[test]
     fn threshold_is_strictly_greater() {
         let px = vec![5u16, 6, 5, 6];
-        assert_eq!(areas(&label(&px, 4, 1, 5, 8, false)), vec![1, 1]);
-        assert_eq!(label(&px, 4, 1, 6, 8, false).count, 0);
+        assert_eq!(
+            areas(&label(&px, 4, 1, 5, Connectivity::Eight, false)),
+            vec![1, 1]
+        );
+        assert_eq!(label(&px, 4, 1, 6, Connectivity::Eight, false).count, 0);
     }
 }

@@ -4,20 +4,9 @@
 //! only intensity and perimeter touch pixels.
 
 use crate::analysis::label::{Components, Run};
-use crate::analysis::{ChannelIntensity, ObjectMeasures};
+use crate::analysis::params::ObjectFilter;
+use crate::analysis::result::{ChannelIntensity, ObjectMeasures};
 use crate::frame::Frame;
-
-/// Which components to keep.
-#[derive(Debug, Clone, Copy)]
-pub struct ObjectFilter {
-    pub min_area_px: u64,
-    /// 0 = no limit.
-    pub max_area_px: u64,
-    /// Applied when `pixel_size_um` is known; 0 = off.
-    pub min_area_um2: f64,
-    pub max_area_um2: f64,
-    pub exclude_border: bool,
-}
 
 #[derive(Debug, Clone, Default)]
 struct Sums {
@@ -285,6 +274,7 @@ impl ObjectMask {
 mod tests {
     use super::*;
     use crate::analysis::label::label;
+    use crate::analysis::params::Connectivity;
 
     fn objects(rows: &[&str], filter: ObjectFilter) -> Vec<ObjectMeasures> {
         let w = rows[0].len();
@@ -298,7 +288,7 @@ mod tests {
             bit_depth: 8,
             pixels: px,
         };
-        let c = label(&frame.pixels, w, rows.len(), 0, 8, true);
+        let c = label(&frame.pixels, w, rows.len(), 0, Connectivity::Eight, true);
         measure(&frame, &[], &c, &filter, Some(0.5))
     }
 

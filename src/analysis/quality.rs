@@ -6,6 +6,12 @@ use crate::analysis::simd::multiversion;
 use crate::analysis::threshold::Histogram;
 use crate::frame::Frame;
 
+/// Whether an illumination change is beyond its limit: the uneven-illumination
+/// flag and the trigger of the recount both ask this.
+pub fn is_uneven(illumination_change: f64, max_illumination_change: f64) -> bool {
+    illumination_change > max_illumination_change
+}
+
 #[derive(Debug, Clone, Copy, PartialEq)]
 pub struct FrameQuality {
     pub background_level: f64,

@@ -164,9 +164,10 @@ pub fn otsu_split(hist: &Histogram) -> (u16, f64) {
     (level, eta)
 }
 
-/// Sarle's bimodality coefficient of the histogram (SAS Institute 1990, SAS/STAT
-/// User's Guide, PROC CLUSTER; discussed by Pfister et al. 2013, "Good things
-/// peak in pairs", Frontiers in Psychology 4:700):
+/// Sarle's bimodality coefficient of the histogram, as defined (with its
+/// finite-sample correction and the 5/9 benchmark) by Pfister, Schwarz,
+/// Janczyk, Dale & Freeman 2013, "Good things peak in pairs: a note on the
+/// bimodality coefficient", Frontiers in Psychology 4:700:
 /// `BC = (G1² + 1) / (G2 + 3 (n−1)² / ((n−2)(n−3)))` with the sample skewness
 /// `G1` and sample excess kurtosis `G2` (bias-corrected). A uniform histogram
 /// gives 5/9 ≈ 0.555; values above suggest two modes (or a strong skew), a

@@ -2,7 +2,7 @@
 //! "recovered" event when it clears, however many frames it stays true for.
 //!
 //! Pure bookkeeping. Deciding whether a condition holds is the monitor's; storing
-//! and delivering alerts belong to [`crate::qc::record`] and [`crate::qc::sinks`].
+//! and delivering alerts belong to [`crate::qc::recorder`] and [`crate::qc::sinks`].
 
 use std::collections::BTreeMap;
 

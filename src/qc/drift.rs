@@ -7,90 +7,8 @@
 
 use serde::Serialize;
 
-use crate::qc::config::ChartParams;
-use crate::qc::flags::FrameMetrics;
-
-/// The per-frame metrics that reveal drift over a run.
-#[derive(Debug, Clone, Copy, PartialEq, Eq, Hash, PartialOrd, Ord, Serialize)]
-#[serde(rename_all = "snake_case")]
-pub enum Metric {
-    /// Lamp dimming or brightening.
-    BackgroundLevel,
-    /// A growing illumination gradient.
-    IlluminationChange,
-    Threshold,
-    Separability,
-    /// Focus loss.
-    Focus,
-    /// Count collapse (or an unexpected surge).
-    ObjectCount,
-}
-
-impl Metric {
-    pub const ALL: [Metric; 6] = [
-        Metric::BackgroundLevel,
-        Metric::IlluminationChange,
-        Metric::Threshold,
-        Metric::Separability,
-        Metric::Focus,
-        Metric::ObjectCount,
-    ];
-
-    pub fn as_str(self) -> &'static str {
-        match self {
-            Metric::BackgroundLevel => "background_level",
-            Metric::IlluminationChange => "illumination_change",
-            Metric::Threshold => "threshold",
-            Metric::Separability => "separability",
-            Metric::Focus => "focus",
-            Metric::ObjectCount => "object_count",
-        }
-    }
-
-    /// Plain words for messages.
-    pub fn describe(self) -> &'static str {
-        match self {
-            Metric::BackgroundLevel => "background level (lamp brightness)",
-            Metric::IlluminationChange => "illumination unevenness",
-            Metric::Threshold => "threshold",
-            Metric::Separability => "histogram separability",
-            Metric::Focus => "focus (sharpness)",
-            Metric::ObjectCount => "object count",
-        }
-    }
-
-    pub fn value(self, m: &FrameMetrics) -> f64 {
-        match self {
-            Metric::BackgroundLevel => m.background_level,
-            Metric::IlluminationChange => m.illumination_change,
-            Metric::Threshold => m.threshold,
-            Metric::Separability => m.separability,
-            Metric::Focus => m.focus,
-            Metric::ObjectCount => m.object_count as f64,
-        }
-    }
-
-    /// The smallest baseline sigma a chart uses. A baseline of near-identical
-    /// frames has a tiny spread, and charting against it would call any change
-    /// worth nothing a drift; the floor is the scale of change worth an alert at
-    /// night (our judgement, documented here, not a published value):
-    /// - background level: 2% of the baseline mean;
-    /// - threshold: 5% of the mean, since Otsu's threshold also moves with the
-    ///   share of the field the objects cover, field by field;
-    /// - focus, whose value depends on the content of each field: 10% of the mean;
-    /// - count: √mean, the spread of Poisson counting (common practice);
-    /// - separability and illumination change, already fractions: 0.02 absolute.
-    pub fn sigma_floor(self, mean: f64) -> f64 {
-        match self {
-            Metric::BackgroundLevel => 0.02 * mean.abs(),
-            Metric::Threshold => 0.05 * mean.abs(),
-            Metric::Focus => 0.1 * mean.abs(),
-            Metric::ObjectCount => mean.abs().sqrt().max(1.0),
-            Metric::Separability | Metric::IlluminationChange => 0.02,
-        }
-        .max(f64::MIN_POSITIVE)
-    }
-}
+use crate::qc::metrics::Metric;
+use crate::qc::params::ChartParams;
 
 /// Direction of a declared drift.
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize)]
@@ -271,7 +189,7 @@ pub fn median(values: &[f64]) -> Option<f64> {
 #[cfg(test)]
 mod tests {
     use super::*;
-    use crate::qc::config::QualitySettings;
+    use crate::qc::params::QualitySettings;
 
     fn params() -> ChartParams {
         QualitySettings::default().charts

@@ -7,50 +7,10 @@
 
 use serde::Serialize;
 
+use crate::analysis::quality::is_uneven;
 use crate::analysis::FrameResult;
-use crate::qc::config::FlagLimits;
-
-/// The per-frame measures quality control looks at (a [`FrameResult`] without
-/// its objects, or a stored frame row).
-#[derive(Debug, Clone, Copy, PartialEq)]
-pub struct FrameMetrics {
-    /// True when the threshold came from Otsu's criterion (otsu, multi-otsu).
-    pub otsu_based: bool,
-    pub threshold: f64,
-    pub separability: f64,
-    /// Sarle's bimodality coefficient; NaN when unknown (never flags).
-    pub bimodality: f64,
-    pub object_count: usize,
-    pub foreground_fraction: f64,
-    pub background_level: f64,
-    pub saturation_fraction: f64,
-    pub focus: f64,
-    pub illumination_change: f64,
-}
-
-impl FrameMetrics {
-    /// Whether a method name (as stored) is one of Otsu's.
-    pub fn is_otsu_method(method: &str) -> bool {
-        matches!(method, "otsu" | "multi-otsu")
-    }
-}
-
-impl From<&FrameResult> for FrameMetrics {
-    fn from(r: &FrameResult) -> Self {
-        FrameMetrics {
-            otsu_based: FrameMetrics::is_otsu_method(&r.method),
-            threshold: r.threshold,
-            separability: r.separability,
-            bimodality: r.bimodality,
-            object_count: r.object_count,
-            foreground_fraction: r.foreground_fraction,
-            background_level: r.background_level,
-            saturation_fraction: r.saturation_fraction,
-            focus: r.focus,
-            illumination_change: r.illumination_change,
-        }
-    }
-}
+use crate::qc::metrics::FrameMetrics;
+use crate::qc::params::FlagLimits;
 
 /// What can be wrong with one frame.
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Hash, Serialize)]
@@ -64,7 +24,7 @@ pub enum FlagKind {
     OutOfFocus,
     EmptyFrame,
     CountJump,
-    /// The file could not be decoded or analysed (the error row's reason).
+    /// The file could not be decoded or analyzed (the error row's reason).
     Failed,
 }
 
@@ -151,7 +111,7 @@ pub fn frame_flags(m: &FrameMetrics, limits: &FlagLimits, ctx: &PositionContext)
             ),
         );
     }
-    if is_uneven(m.illumination_change, limits) {
+    if is_uneven(m.illumination_change, limits.max_illumination_change) {
         flag(
             FlagKind::UnevenIllumination,
             m.illumination_change,
@@ -226,10 +186,20 @@ pub fn frame_flags(m: &FrameMetrics, limits: &FlagLimits, ctx: &PositionContext)
     flags
 }
 
-/// Whether a frame's illumination change is beyond its limit (the flag, and
-/// the trigger of the flattening remedy).
-pub fn is_uneven(illumination_change: f64, limits: &FlagLimits) -> bool {
-    illumination_change > limits.max_illumination_change
+/// Adds the recount to the uneven-illumination flag's sentence, so whoever
+/// reads the flag learns both counts and which one is used.
+pub fn explain_recount(flags: &mut [FrameFlag], first: &FrameResult, recount: &FrameResult) {
+    for f in flags
+        .iter_mut()
+        .filter(|f| f.kind == FlagKind::UnevenIllumination)
+    {
+        f.message.push_str(&format!(
+            "; segmented again after flattening the background: {} objects (threshold {}) against {} without; the count is taken from the recount",
+            recount.object_count,
+            num(recount.threshold),
+            first.object_count
+        ));
+    }
 }
 
 /// A number for a sentence: about four significant digits, no exponent for
@@ -253,33 +223,14 @@ pub fn failure_flag(reason: &str) -> FrameFlag {
         kind: FlagKind::Failed,
         value: None,
         limit: None,
-        message: format!("not analysed: {reason}"),
-    }
-}
-
-#[cfg(test)]
-impl FrameMetrics {
-    /// A frame that passes every check with the default limits (for tests).
-    pub(crate) fn passing_example() -> Self {
-        FrameMetrics {
-            otsu_based: true,
-            threshold: 8000.0,
-            separability: 0.9,
-            bimodality: 0.9,
-            object_count: 40,
-            foreground_fraction: 0.05,
-            background_level: 6500.0,
-            saturation_fraction: 0.0,
-            focus: 1.0e7,
-            illumination_change: 0.02,
-        }
+        message: format!("not analyzed: {reason}"),
     }
 }
 
 #[cfg(test)]
 mod tests {
     use super::*;
-    use crate::qc::config::QualitySettings;
+    use crate::qc::params::QualitySettings;
 
     fn good() -> FrameMetrics {
         FrameMetrics::passing_example()

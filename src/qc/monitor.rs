@@ -9,9 +9,10 @@
 use std::collections::{BTreeMap, VecDeque};
 
 use crate::qc::alerts::{AlertBook, AlertEvent, AlertState};
-use crate::qc::config::QualitySettings;
-use crate::qc::drift::{median, Chart, Direction, Metric, Signal, Step};
-use crate::qc::flags::{frame_flags, num, FrameFlag, FrameMetrics, PositionContext};
+use crate::qc::drift::{median, Chart, Direction, Signal, Step};
+use crate::qc::flags::{frame_flags, num, FrameFlag, PositionContext};
+use crate::qc::metrics::{FrameMetrics, Metric};
+use crate::qc::params::QualitySettings;
 
 /// Condition of a stalled acquisition.
 pub const STALLED: &str = "stalled";
@@ -72,7 +73,7 @@ impl RunMonitor {
         }
     }
 
-    /// Judges one analysed frame at `position` (empty when the run has no
+    /// Judges one analyzed frame at `position` (empty when the run has no
     /// positions) and updates the run's charts.
     pub fn observe(&mut self, position: &str, file: &str, at_ms: i64, m: &FrameMetrics) -> Verdict {
         let limits = &self.settings.flags;

@@ -10,6 +10,7 @@ use rusqlite::{params, Connection};
 use serde::Serialize;
 
 use crate::qc::flags::{failure_flag, FrameFlag};
+use crate::store::iso_time_sql;
 
 /// One alert episode.
 #[derive(Debug, Clone, Serialize, PartialEq)]
@@ -57,14 +58,13 @@ pub struct FlaggedFrame {
 /// # Errors
 /// SQLite errors.
 pub fn alerts(conn: &Connection, run_id: i64) -> rusqlite::Result<Vec<AlertRow>> {
-    let iso = |col: &str| format!("strftime('%Y-%m-%dT%H:%M:%fZ', {col} / 1000.0, 'unixepoch')");
     let mut stmt = conn.prepare(&format!(
-        "SELECT kind, {}, {}, COALESCE(file, (SELECT path FROM frames WHERE id = alerts.frame_id)),
+        "SELECT condition, {}, {}, COALESCE(file, (SELECT file FROM frames WHERE id = alerts.frame_id)),
                 message, closed_message
          FROM alerts WHERE run_id = ?1
-         ORDER BY closed_at_ms IS NOT NULL, raised_at_ms DESC, id DESC",
-        iso("raised_at_ms"),
-        iso("closed_at_ms")
+         ORDER BY closed_at_ms IS NOT NULL, opened_at_ms DESC, id DESC",
+        iso_time_sql("opened_at_ms"),
+        iso_time_sql("closed_at_ms")
     ))?;
     let rows = stmt.query_map([run_id], |r| {
         Ok(AlertRow {
@@ -93,8 +93,8 @@ pub struct FlagCount {
 /// SQLite errors.
 pub fn flag_counts(conn: &Connection, run_id: i64) -> rusqlite::Result<Vec<FlagCount>> {
     let mut stmt = conn.prepare(
-        "SELECT kind, count(DISTINCT frame_id) FROM flags JOIN frames ON frames.id = flags.frame_id
-         WHERE frames.run_id = ?1 GROUP BY kind
+        "SELECT flag, count(DISTINCT frame_id) FROM flags JOIN frames ON frames.id = flags.frame_id
+         WHERE frames.run_id = ?1 GROUP BY flag
          UNION ALL
          SELECT 'failed', count(*) FROM frames WHERE run_id = ?1 AND status = 'failed' HAVING count(*) > 0
          ORDER BY 2 DESC, 1",
@@ -118,12 +118,12 @@ pub fn flagged_frames(
     limit: usize,
 ) -> rusqlite::Result<Vec<FlaggedFrame>> {
     let mut frames_stmt = conn.prepare(
-        "SELECT id, path, status, error FROM frames
+        "SELECT id, file, status, error FROM frames
          WHERE run_id = ?1 AND (status = 'failed' OR EXISTS (SELECT 1 FROM flags WHERE frame_id = frames.id))
          ORDER BY id DESC LIMIT ?2",
     )?;
     let mut flags_stmt = conn.prepare(
-        "SELECT kind, value, limit_value, message FROM flags WHERE frame_id = ?1 ORDER BY id",
+        "SELECT flag, value, limit_value, message FROM flags WHERE frame_id = ?1 ORDER BY id",
     )?;
     let frames: Vec<(i64, String, String, Option<String>)> = frames_stmt
         .query_map(params![run_id, limit as i64], |r| {

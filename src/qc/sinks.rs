@@ -17,7 +17,7 @@ use std::time::{Duration, Instant};
 use crossbeam_channel::{Receiver, Sender, TrySendError};
 
 use crate::qc::alerts::AlertEvent;
-use crate::qc::config::{AlertSettings, CommandSink, WebhookSink};
+use crate::qc::params::{AlertSettings, CommandSink, WebhookSink};
 
 /// Events waiting per sink before new ones are dropped for it.
 const QUEUE_CAPACITY: usize = 256;

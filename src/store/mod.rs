@@ -24,6 +24,7 @@ const MIGRATIONS: &[&str] = &[
     include_str!("schema_v3.sql"),
     include_str!("schema_v4.sql"),
     include_str!("schema_v5.sql"),
+    include_str!("schema_v6.sql"),
 ];
 
 /// The schema version this build writes and reads.
@@ -36,6 +37,38 @@ pub const SCHEMA_VERSION: i32 = MIGRATIONS.len() as i32;
 pub const POSITION_SQL: &str = "TRIM(COALESCE(well, '') \
      || CASE WHEN site IS NULL THEN '' ELSE ' site ' || site END \
      || CASE WHEN channel IS NULL THEN '' ELSE ' channel ' || channel END)";
+
+/// SQL for the count used of a frame row: the recount where the
+/// uneven-illumination remedy ran, otherwise the first result's.
+pub const COUNT_USED_SQL: &str = "COALESCE(recount_object_count, object_count)";
+
+/// SQL selecting exactly one version of a file: bind [`FrameKey::sql_params`]
+/// as `?1`, `?2`, `?3`.
+pub const FRAME_KEY_SQL: &str = "file = ?1 AND size_bytes = ?2 AND mtime_ns = ?3";
+
+/// SQL for an `*_at_ms` column as RFC 3339 UTC text (millisecond precision).
+pub fn iso_time_sql(column: &str) -> String {
+    format!("strftime('%Y-%m-%dT%H:%M:%fZ', {column} / 1000.0, 'unixepoch')")
+}
+
+/// The `[store]` settings: where the database is and how much one
+/// transaction records.
+#[derive(Debug, Clone, PartialEq)]
+pub struct StoreSettings {
+    /// The SQLite file.
+    pub database: PathBuf,
+    /// Most operations committed in one transaction.
+    pub batch_max: usize,
+}
+
+impl Default for StoreSettings {
+    fn default() -> Self {
+        StoreSettings {
+            database: PathBuf::from("framewarden.db"),
+            batch_max: 500,
+        }
+    }
+}
 
 /// Errors opening or using the database, with what to do about them.
 #[derive(Debug, thiserror::Error)]
@@ -97,6 +130,7 @@ impl FrameKey {
         Ok(FrameKey::from_metadata(path, &meta))
     }
 
+    /// The identity of `path` from metadata already read.
     pub fn from_metadata(path: &Path, meta: &std::fs::Metadata) -> FrameKey {
         let mtime_ns = meta.modified().ok().map_or(0, |t| {
             t.duration_since(UNIX_EPOCH)
@@ -107,6 +141,11 @@ impl FrameKey {
             size_bytes: meta.len(),
             mtime_ns,
         }
+    }
+
+    /// The three values [`FRAME_KEY_SQL`] binds, in its order.
+    pub fn sql_params(&self) -> (&str, i64, i64) {
+        (&self.path, self.size_bytes as i64, self.mtime_ns)
     }
 }
 
@@ -288,6 +327,9 @@ fn migrate(conn: &mut Connection, path: &Path) -> Result<(), StoreError> {
         .skip(usize::try_from(version).unwrap_or(0))
     {
         tx.execute_batch(sql).map_err(StoreError::sqlite(path))?;
+        if i + 1 == 6 {
+            shorten_listings(&tx).map_err(StoreError::sqlite(path))?;
+        }
         tx.pragma_update(None, "user_version", i as i32 + 1)
             .map_err(StoreError::sqlite(path))?;
     }
@@ -296,20 +338,39 @@ fn migrate(conn: &mut Connection, path: &Path) -> Result<(), StoreError> {
     tx.commit().map_err(StoreError::sqlite(path))
 }
 
+/// Runs recorded before schema 6 stored their settings as a debug listing, in
+/// which a flat-field meant every gain and dark pixel (a 512 × 512 frame: 14
+/// MB per run). Each run of four or more numbers in a list becomes one
+/// `… N numbers …` mark: what a person can read of the listing stays.
+fn shorten_listings(tx: &rusqlite::Transaction<'_>) -> rusqlite::Result<()> {
+    let numbers = regex::Regex::new(r"(?:-?[0-9][0-9.e+-]*,\s*){4,}-?[0-9][0-9.e+-]*")
+        .expect("a valid pattern");
+    let rows: Vec<(i64, String)> = tx
+        .prepare("SELECT id, settings FROM runs WHERE settings_format = 'listing'")?
+        .query_map([], |r| Ok((r.get(0)?, r.get(1)?)))?
+        .collect::<rusqlite::Result<_>>()?;
+    for (id, text) in rows {
+        let short = numbers.replace_all(&text, |c: &regex::Captures<'_>| {
+            format!("… {} numbers …", c[0].split(',').count())
+        });
+        if short != text {
+            tx.execute(
+                "UPDATE runs SET settings = ?1 WHERE id = ?2",
+                params![short.as_ref(), id],
+            )?;
+        }
+    }
+    Ok(())
+}
+
 /// The recorded status of exactly this version of a file, if any.
 ///
 /// # Errors
 /// SQLite errors.
 pub fn lookup(conn: &Connection, key: &FrameKey) -> rusqlite::Result<Option<FrameStatus>> {
-    let mut stmt = conn.prepare_cached(
-        "SELECT status FROM frames WHERE path = ?1 AND size_bytes = ?2 AND mtime_ns = ?3",
-    )?;
-    let status: Option<String> = stmt
-        .query_row(
-            rusqlite::params![key.path, key.size_bytes as i64, key.mtime_ns],
-            |r| r.get(0),
-        )
-        .optional()?;
+    let mut stmt =
+        conn.prepare_cached(&format!("SELECT status FROM frames WHERE {FRAME_KEY_SQL}"))?;
+    let status: Option<String> = stmt.query_row(key.sql_params(), |r| r.get(0)).optional()?;
     Ok(status.as_deref().and_then(FrameStatus::parse))
 }
 
@@ -343,11 +404,11 @@ pub fn settle_interrupted(conn: &mut Connection) -> rusqlite::Result<Vec<FrameKe
     )?;
     let given_up = tx
         .prepare(
-            "UPDATE frames SET status = 'failed', analysed_at_ms = ?1,
+            "UPDATE frames SET status = 'failed', analyzed_at_ms = ?1,
                  latency_ms = MAX(0, ?1 - ready_at_ms),
                  error = 'the analysis was interrupted ' || interruptions || ' times (the service stopped uncleanly while this file was queued or in hand: a crash, a kill, or a hang ended by the watchdog); recorded as failed so the run goes on; check the file with framewarden analyze'
              WHERE status = 'queued' AND interruptions >= ?2
-             RETURNING path, size_bytes, mtime_ns",
+             RETURNING file, size_bytes, mtime_ns",
         )?
         .query_map(params![now_ms(), MAX_INTERRUPTIONS], |r| {
             Ok(FrameKey {
@@ -367,7 +428,7 @@ pub fn settle_interrupted(conn: &mut Connection) -> rusqlite::Result<Vec<FrameKe
 /// SQLite errors.
 pub fn queued_frames(conn: &Connection) -> rusqlite::Result<Vec<FrameKey>> {
     let mut stmt = conn.prepare(
-        "SELECT path, size_bytes, mtime_ns FROM frames WHERE status = 'queued' ORDER BY id",
+        "SELECT file, size_bytes, mtime_ns FROM frames WHERE status = 'queued' ORDER BY id",
     )?;
     let rows = stmt.query_map([], |r| {
         Ok(FrameKey {
@@ -396,7 +457,8 @@ mod tests {
             conn.pragma_update(None, "application_id", APPLICATION_ID)
                 .unwrap();
             conn.execute_batch(
-                "INSERT INTO runs (folders, started_at_ms, last_frame_at_ms, settings) VALUES ('[]', 1, 1, '{}');
+                "INSERT INTO runs (folders, started_at_ms, last_frame_at_ms, settings)
+                     VALUES ('[]', 1, 1, 'Settings { gain: [0.5, 0.25, 1.0, 2.0, 0.75], page: 0 }');
                  INSERT INTO frames (run_id, path, size_bytes, mtime_ns, version, status, detected_at_ms, ready_at_ms)
                      VALUES (1, '/acq/a.tif', 10, 1, 1, 'done', 1, 1);
                  INSERT INTO objects VALUES (1, 7, 12, NULL, 1.5, 2.5, 0, 0, 4, 4, 9.0, 108.0, 11.0,
@@ -442,6 +504,79 @@ mod tests {
             )
             .unwrap();
         assert_eq!(object, (1, "raw".into(), 7, 12, 0.5, None));
+        // v6: one name each (frames.file), and the old debug listing kept,
+        // marked as such, with its long number lists shortened.
+        let file: String = conn
+            .query_row("SELECT file FROM frames", [], |r| r.get(0))
+            .unwrap();
+        assert_eq!(file, "/acq/a.tif");
+        let (settings, format): (String, String) = conn
+            .query_row("SELECT settings, settings_format FROM runs", [], |r| {
+                Ok((r.get(0)?, r.get(1)?))
+            })
+            .unwrap();
+        assert_eq!(
+            (settings.as_str(), format.as_str()),
+            ("Settings { gain: [… 5 numbers …], page: 0 }", "listing")
+        );
+    }
+
+    #[test]
+    fn a_recount_recorded_before_v6_keeps_its_objects_under_the_new_name() {
+        let dir = tempfile::tempdir().unwrap();
+        let db = dir.path().join("fw.db");
+        {
+            let mut conn = Connection::open(&db).unwrap();
+            let tx = conn.transaction().unwrap();
+            for sql in &MIGRATIONS[..5] {
+                tx.execute_batch(sql).unwrap();
+            }
+            tx.pragma_update(None, "user_version", 5).unwrap();
+            tx.pragma_update(None, "application_id", APPLICATION_ID)
+                .unwrap();
+            tx.execute_batch(
+                "INSERT INTO runs (folders, started_at_ms, last_frame_at_ms, settings) VALUES ('[]', 1, 1, '');
+                 INSERT INTO frames (run_id, path, size_bytes, mtime_ns, version, status, detected_at_ms,
+                                     ready_at_ms, object_count, flat_object_count, flat_threshold, count_source)
+                     VALUES (1, '/acq/a.tif', 10, 1, 1, 'done', 1, 1, 2, 3, 40.0, 'flattened');
+                 INSERT INTO objects (frame_id, result, label, area_px, centroid_x, centroid_y, bbox_x_min,
+                                      bbox_y_min, bbox_x_max, bbox_y_max, mean_intensity, integrated_intensity,
+                                      max_intensity, perimeter_px, circularity, major_axis_px, minor_axis_px,
+                                      eccentricity)
+                     VALUES (1, 'flattened', 1, 4, 1, 1, 0, 0, 2, 2, 9, 36, 9, 8, 0.8, 2, 2, 0);
+                 INSERT INTO flags (frame_id, kind, value, limit_value, message)
+                     VALUES (1, 'uneven_illumination', 0.4, 0.25, 'uneven');
+                 INSERT INTO alerts (run_id, raised_at_ms, kind, message) VALUES (1, 5, 'stalled', 'quiet');",
+            )
+            .unwrap();
+            tx.commit().unwrap();
+        }
+        drop(open_for_writing(&db).unwrap());
+        let conn = open_read_only(&db).unwrap();
+        let frame: (String, i64, f64, String) = conn
+            .query_row(
+                &format!(
+                    "SELECT file, {COUNT_USED_SQL}, recount_threshold, count_source FROM frames"
+                ),
+                [],
+                |r| Ok((r.get(0)?, r.get(1)?, r.get(2)?, r.get(3)?)),
+            )
+            .unwrap();
+        assert_eq!(frame, ("/acq/a.tif".into(), 3, 40.0, "recount".into()));
+        let result: String = conn
+            .query_row("SELECT result FROM objects", [], |r| r.get(0))
+            .unwrap();
+        assert_eq!(result, "recount");
+        let flag: String = conn
+            .query_row("SELECT flag FROM flags", [], |r| r.get(0))
+            .unwrap();
+        assert_eq!(flag, "uneven_illumination");
+        let alert: (String, i64) = conn
+            .query_row("SELECT condition, opened_at_ms FROM alerts", [], |r| {
+                Ok((r.get(0)?, r.get(1)?))
+            })
+            .unwrap();
+        assert_eq!(alert, ("stalled".into(), 5));
     }
 
     #[test]
@@ -451,14 +586,14 @@ mod tests {
         let mut conn = open_for_writing(&db).unwrap();
         conn.execute_batch(
             "INSERT INTO runs (folders, started_at_ms, last_frame_at_ms, settings) VALUES ('[]', 1, 1, '{}');
-             INSERT INTO frames (run_id, path, size_bytes, mtime_ns, version, status, detected_at_ms, ready_at_ms)
+             INSERT INTO frames (run_id, file, size_bytes, mtime_ns, version, status, detected_at_ms, ready_at_ms)
                  VALUES (1, '/acq/poison.tif', 10, 1, 1, 'queued', 1, 1),
                         (1, '/acq/done.tif', 10, 1, 1, 'done', 1, 1);",
         )
         .unwrap();
         let state = |conn: &Connection| -> (String, i64, Option<String>) {
             conn.query_row(
-                "SELECT status, interruptions, error FROM frames WHERE path = '/acq/poison.tif'",
+                "SELECT status, interruptions, error FROM frames WHERE file = '/acq/poison.tif'",
                 [],
                 |r| Ok((r.get(0)?, r.get(1)?, r.get(2)?)),
             )
@@ -484,7 +619,7 @@ mod tests {
         assert!(error.unwrap().contains("interrupted 3 times"));
         let done: String = conn
             .query_row(
-                "SELECT status FROM frames WHERE path = '/acq/done.tif'",
+                "SELECT status FROM frames WHERE file = '/acq/done.tif'",
                 [],
                 |r| r.get(0),
             )

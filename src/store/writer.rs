@@ -1,11 +1,12 @@
 //! The single writer: one thread owns the write connection and records frames in
 //! batched IMMEDIATE transactions, fed by a bounded channel.
 //!
-//! Every write is idempotent on the frame identity (path + size + mtime), so a
+//! Every write is idempotent on the frame identity (file + size + mtime), so a
 //! crash and restart redoes at most the frames in flight and never duplicates a
-//! row. Deciding *what* to record is the watcher's job; this file only records.
+//! row. Deciding *what* to record is the watcher's job, and judging a recorded
+//! frame is the [`FrameObserver`]'s (quality control implements it); this file
+//! only records and calls the observer inside its transaction.
 
-use std::collections::BTreeMap;
 use std::path::PathBuf;
 use std::thread::JoinHandle;
 use std::time::Duration;
@@ -13,19 +14,59 @@ use std::time::Duration;
 use crossbeam_channel::{Receiver, Sender};
 use rusqlite::{params, Connection, OptionalExtension, Transaction, TransactionBehavior};
 
-use super::{now_ms, FrameKey};
+use crate::analysis::ObjectMeasures;
+use crate::naming::NameParts;
 use crate::pipeline::FileAnalysis;
-use crate::qc::record::QcRecorder;
+use crate::store::{now_ms, FrameKey, FRAME_KEY_SQL};
 
-/// Parts of a file name picked out by the configured pattern.
-#[derive(Debug, Clone, Default, PartialEq, Eq)]
-pub struct NameParts {
-    pub well: Option<String>,
-    pub site: Option<String>,
-    pub time_point: Option<String>,
-    pub channel: Option<String>,
-    /// Every named part, including the four above.
-    pub all: BTreeMap<String, String>,
+/// Why the writer could not start.
+#[derive(Debug, thiserror::Error)]
+pub enum WriterError {
+    /// Choosing or continuing the run failed.
+    #[error(transparent)]
+    Sqlite(#[from] rusqlite::Error),
+    /// The writer thread could not be started.
+    #[error("cannot start the store writer thread: {0}")]
+    Thread(std::io::Error),
+}
+
+/// Judges what the writer records, inside the writer's transaction, so that a
+/// frame and its judgement commit together or not at all.
+///
+/// The writer calls [`begin`](FrameObserver::begin) before each transaction
+/// and exactly one of [`committed`](FrameObserver::committed) or
+/// [`rolled_back`](FrameObserver::rolled_back) after it; an observer keeps
+/// what it learnt during a transaction only once it commits.
+pub trait FrameObserver: Send {
+    /// A transaction is about to start.
+    fn begin(&mut self);
+    /// Frame `frame_id` was just recorded as done with `analysis`.
+    ///
+    /// # Errors
+    /// SQLite errors (the transaction is rolled back and retried).
+    fn frame_done(
+        &mut self,
+        tx: &Transaction<'_>,
+        frame_id: i64,
+        analysis: &FileAnalysis,
+    ) -> rusqlite::Result<()>;
+    /// The frame `key` was just recorded as failed.
+    ///
+    /// # Errors
+    /// SQLite errors (the transaction is rolled back and retried).
+    fn frame_failed(&mut self, tx: &Transaction<'_>, key: &FrameKey) -> rusqlite::Result<()>;
+    /// The transaction committed.
+    fn committed(&mut self);
+    /// The transaction failed and was rolled back.
+    fn rolled_back(&mut self);
+    /// Periodic checks that need no frame, outside any transaction (the
+    /// writer calls this while idle).
+    ///
+    /// # Errors
+    /// SQLite errors.
+    fn tick(&mut self, conn: &Connection) -> rusqlite::Result<()>;
+    /// The writer is ending: finish what is queued.
+    fn close(self: Box<Self>);
 }
 
 /// One thing to record.
@@ -50,7 +91,7 @@ pub enum StoreOp {
         attempts: u32,
         reason: String,
     },
-    /// A queued frame whose file changed or went away before it was analysed;
+    /// A queued frame whose file changed or went away before it was analyzed;
     /// its new version (if any) is recorded under its own identity.
     Withdrawn { key: FrameKey },
 }
@@ -70,15 +111,14 @@ impl StoreOp {
 /// How the writer picks the run that new frames belong to.
 #[derive(Debug, Clone)]
 pub struct RunPolicy {
+    /// The watched folders; a run continues only with the same folders.
     pub folders: Vec<PathBuf>,
-    /// Snapshot of the settings in force, stored with a new run.
-    pub settings: String,
+    /// The settings in force as TOML, stored with a new run.
+    pub settings_toml: String,
     /// Start a new run even when the last one could be continued.
     pub force_new: bool,
     /// A frame detected after this long without frames starts a new run.
     pub idle_gap_ms: i64,
-    /// Quality control of each recorded frame (flags, drift, alerts); `None` = off.
-    pub qc: Option<crate::qc::record::QcSetup>,
 }
 
 /// Called after each commit with the identities that left the pipeline.
@@ -88,40 +128,55 @@ pub type CommitHook = Box<dyn FnMut(&[FrameKey]) + Send>;
 /// it commits what is left, marks the run ended, and returns.
 pub struct Writer {
     thread: JoinHandle<()>,
+    /// The run new frames are recorded in (a later one after an idle gap).
     pub run_id: i64,
 }
 
+/// The run the writer starts in: continued or new, chosen by [`open_run`].
+#[derive(Debug, Clone, Copy)]
+pub struct Run {
+    /// The run's row id.
+    pub id: i64,
+    last_frame_at_ms: i64,
+}
+
+/// How the writer is fed and how it reports.
+pub struct WriterSetup {
+    /// Operations waiting before senders block.
+    pub capacity: usize,
+    /// Most operations committed in one transaction.
+    pub max_batch: usize,
+    /// Called after each commit with the identities that left the pipeline.
+    pub on_commit: CommitHook,
+    /// Judges each recorded frame inside the transaction; `None` = off.
+    pub observer: Option<Box<dyn FrameObserver>>,
+}
+
 impl Writer {
-    /// Picks (continues or starts) the run, then starts the writer thread.
+    /// Starts the writer thread recording into `run` (from [`open_run`]).
     ///
     /// # Errors
-    /// SQLite errors while choosing the run.
+    /// [`WriterError::Thread`] when the thread cannot start.
     pub fn start(
-        mut conn: Connection,
+        conn: Connection,
         policy: RunPolicy,
-        capacity: usize,
-        max_batch: usize,
-        on_commit: CommitHook,
-    ) -> rusqlite::Result<(Writer, Sender<StoreOp>)> {
-        let run = choose_run(&mut conn, &policy)?;
-        let qc = match policy.qc.clone() {
-            Some(setup) => Some(QcRecorder::start(&conn, run.id, setup)?),
-            None => None,
-        };
-        let (ops_tx, ops_rx) = crossbeam_channel::bounded(capacity.max(1));
+        run: Run,
+        setup: WriterSetup,
+    ) -> Result<(Writer, Sender<StoreOp>), WriterError> {
+        let (ops_tx, ops_rx) = crossbeam_channel::bounded(setup.capacity.max(1));
         let mut state = WriterState {
             conn,
             policy,
             run,
-            on_commit,
-            max_batch: max_batch.max(1),
-            qc,
+            on_commit: setup.on_commit,
+            max_batch: setup.max_batch.max(1),
+            observer: setup.observer,
         };
         let run_id = state.run.id;
         let thread = std::thread::Builder::new()
             .name("store-writer".into())
             .spawn(move || state.run_loop(&ops_rx))
-            .map_err(|e| rusqlite::Error::ToSqlConversionFailure(Box::new(e)))?;
+            .map_err(WriterError::Thread)?;
         Ok((Writer { thread, run_id }, ops_tx))
     }
 
@@ -133,23 +188,17 @@ impl Writer {
     }
 }
 
-#[derive(Debug, Clone, Copy)]
-struct Run {
-    id: i64,
-    last_frame_at_ms: i64,
-}
-
 struct WriterState {
     conn: Connection,
     policy: RunPolicy,
     run: Run,
     on_commit: CommitHook,
     max_batch: usize,
-    qc: Option<QcRecorder>,
+    observer: Option<Box<dyn FrameObserver>>,
 }
 
-/// How often the writer, when idle, lets quality control check for a stall.
-const QC_TICK: Duration = Duration::from_secs(5);
+/// How often the writer, when idle, lets the observer check for a stall.
+const OBSERVER_TICK: Duration = Duration::from_secs(5);
 
 impl WriterState {
     fn run_loop(&mut self, ops_rx: &Receiver<StoreOp>) {
@@ -157,11 +206,11 @@ impl WriterState {
         // waiting. Under load batches grow; when quiet a frame commits at once,
         // so batching never adds latency.
         loop {
-            let first = match ops_rx.recv_timeout(QC_TICK) {
+            let first = match ops_rx.recv_timeout(OBSERVER_TICK) {
                 Ok(op) => op,
                 Err(crossbeam_channel::RecvTimeoutError::Timeout) => {
-                    if let Some(qc) = self.qc.as_mut() {
-                        if let Err(e) = qc.tick(&self.conn) {
+                    if let Some(observer) = self.observer.as_mut() {
+                        if let Err(e) = observer.tick(&self.conn) {
                             tracing::error!("quality control: {e}");
                         }
                     }
@@ -191,8 +240,8 @@ impl WriterState {
         if let Err(e) = ended {
             tracing::error!("cannot mark run {} ended: {e}", self.run.id);
         }
-        if let Some(qc) = self.qc.take() {
-            qc.close();
+        if let Some(observer) = self.observer.take() {
+            observer.close();
         }
     }
 
@@ -204,12 +253,14 @@ impl WriterState {
     fn commit_with_retry(&mut self, batch: &[StoreOp]) {
         const GIVE_UP_AFTER: u32 = 5;
         for attempt in 1u32.. {
-            let checkpoint = self.qc.as_ref().map(QcRecorder::checkpoint);
+            if let Some(observer) = self.observer.as_mut() {
+                observer.begin();
+            }
             let result = self.commit(batch);
-            if let (Some(qc), Some(checkpoint)) = (self.qc.as_mut(), checkpoint) {
+            if let Some(observer) = self.observer.as_mut() {
                 match result {
-                    Ok(()) => qc.committed(),
-                    Err(_) => qc.rolled_back(checkpoint),
+                    Ok(()) => observer.committed(),
+                    Err(_) => observer.rolled_back(),
                 }
             }
             match result {
@@ -257,8 +308,8 @@ impl WriterState {
                     analysis,
                 } => {
                     let frame_id = record_done(&tx, key, *attempts, analysis)?;
-                    if let (Some(qc), Some(id)) = (self.qc.as_mut(), frame_id) {
-                        qc.frame_done(&tx, id, analysis)?;
+                    if let (Some(observer), Some(id)) = (self.observer.as_mut(), frame_id) {
+                        observer.frame_done(&tx, id, analysis)?;
                     }
                 }
                 StoreOp::Failed {
@@ -267,16 +318,16 @@ impl WriterState {
                     reason,
                 } => {
                     if record_failed(&tx, key, *attempts, reason)? {
-                        if let Some(qc) = self.qc.as_mut() {
-                            qc.frame_failed(&tx, key)?;
+                        if let Some(observer) = self.observer.as_mut() {
+                            observer.frame_failed(&tx, key)?;
                         }
                     }
                 }
                 StoreOp::Withdrawn { key } => {
-                    tx.prepare_cached(
-                        "DELETE FROM frames WHERE path = ?1 AND size_bytes = ?2 AND mtime_ns = ?3 AND status = 'queued'",
-                    )?
-                    .execute(params![key.path, key.size_bytes as i64, key.mtime_ns])?;
+                    tx.prepare_cached(&format!(
+                        "DELETE FROM frames WHERE {FRAME_KEY_SQL} AND status = 'queued'"
+                    ))?
+                    .execute(key.sql_params())?;
                 }
             }
         }
@@ -301,7 +352,10 @@ fn clears_by_itself(e: &rusqlite::Error) -> bool {
 
 /// Continues the last run when it watched the same folders and saw a frame
 /// within the idle gap (a restart mid-acquisition); starts a new one otherwise.
-fn choose_run(conn: &mut Connection, policy: &RunPolicy) -> rusqlite::Result<Run> {
+///
+/// # Errors
+/// SQLite errors.
+pub fn open_run(conn: &mut Connection, policy: &RunPolicy) -> rusqlite::Result<Run> {
     let tx = conn.transaction_with_behavior(TransactionBehavior::Immediate)?;
     let now = now_ms();
     let last: Option<(i64, String, i64)> = tx
@@ -349,8 +403,9 @@ fn start_run(tx: &Transaction<'_>, policy: &RunPolicy, at_ms: i64) -> rusqlite::
         [at_ms],
     )?;
     tx.execute(
-        "INSERT INTO runs (folders, started_at_ms, last_frame_at_ms, settings) VALUES (?1, ?2, ?2, ?3)",
-        params![folders_json(policy), at_ms, policy.settings],
+        "INSERT INTO runs (folders, started_at_ms, last_frame_at_ms, settings, settings_format)
+         VALUES (?1, ?2, ?2, ?3, 'toml')",
+        params![folders_json(policy), at_ms, policy.settings_toml],
     )?;
     Ok(Run {
         id: tx.last_insert_rowid(),
@@ -371,11 +426,11 @@ fn insert_queued(
     // DO NOTHING on a known identity: re-queueing after a restart, or a second
     // sighting of the same version, leaves the existing row alone.
     tx.prepare_cached(
-        "INSERT INTO frames (run_id, path, size_bytes, mtime_ns, version, status, detected_at_ms, ready_at_ms,
+        "INSERT INTO frames (run_id, file, size_bytes, mtime_ns, version, status, detected_at_ms, ready_at_ms,
                              well, site, time_point, channel, name_parts)
-         VALUES (?1, ?2, ?3, ?4, (SELECT COALESCE(MAX(version), 0) + 1 FROM frames WHERE path = ?2),
+         VALUES (?1, ?2, ?3, ?4, (SELECT COALESCE(MAX(version), 0) + 1 FROM frames WHERE file = ?2),
                  'queued', ?5, ?6, ?7, ?8, ?9, ?10, ?11)
-         ON CONFLICT (path, size_bytes, mtime_ns) DO NOTHING",
+         ON CONFLICT (file, size_bytes, mtime_ns) DO NOTHING",
     )?
     .execute(params![
         run_id,
@@ -403,16 +458,16 @@ fn record_done(
     let r = &analysis.result;
     let now = now_ms();
     let frame_id: Option<i64> = tx
-        .prepare_cached(
-            "UPDATE frames SET status = 'done', error = NULL, attempts = ?4, analysed_at_ms = ?5,
+        .prepare_cached(&format!(
+            "UPDATE frames SET status = 'done', error = NULL, attempts = ?4, analyzed_at_ms = ?5,
                  latency_ms = MAX(0, ?5 - ready_at_ms),
                  width = ?6, height = ?7, bit_depth = ?8, method = ?9, threshold = ?10, separability = ?11,
                  object_count = ?12, foreground_fraction = ?13, background_level = ?14,
                  saturation_fraction = ?15, focus = ?16, illumination_change = ?17,
                  pixel_size_um = ?18, pixel_size_source = ?19, bimodality = ?20
-             WHERE path = ?1 AND size_bytes = ?2 AND mtime_ns = ?3 AND status <> 'done'
-             RETURNING id",
-        )?
+             WHERE {FRAME_KEY_SQL} AND status <> 'done'
+             RETURNING id"
+        ))?
         .query_row(
             params![
                 key.path,
@@ -446,8 +501,8 @@ fn record_done(
     tx.prepare_cached("DELETE FROM objects WHERE frame_id = ?1")?
         .execute([frame_id])?;
     insert_objects(tx, frame_id, "raw", &r.objects)?;
-    if let Some(flat) = &analysis.flattened {
-        insert_objects(tx, frame_id, "flattened", &flat.objects)?;
+    if let Some(recount) = &analysis.recount {
+        insert_objects(tx, frame_id, "recount", &recount.objects)?;
     }
     Ok(Some(frame_id))
 }
@@ -460,7 +515,7 @@ fn insert_objects(
     tx: &Transaction<'_>,
     frame_id: i64,
     result: &str,
-    objects: &[crate::analysis::ObjectMeasures],
+    objects: &[ObjectMeasures],
 ) -> rusqlite::Result<()> {
     use rusqlite::types::Value;
     for chunk in objects.chunks(OBJECTS_PER_INSERT) {
@@ -514,11 +569,11 @@ fn record_failed(
     reason: &str,
 ) -> rusqlite::Result<bool> {
     let changed = tx
-        .prepare_cached(
-            "UPDATE frames SET status = 'failed', error = ?4, attempts = ?5, analysed_at_ms = ?6,
+        .prepare_cached(&format!(
+            "UPDATE frames SET status = 'failed', error = ?4, attempts = ?5, analyzed_at_ms = ?6,
              latency_ms = MAX(0, ?6 - ready_at_ms)
-         WHERE path = ?1 AND size_bytes = ?2 AND mtime_ns = ?3 AND status <> 'done'",
-        )?
+             WHERE {FRAME_KEY_SQL} AND status <> 'done'"
+        ))?
         .execute(params![
             key.path,
             key.size_bytes as i64,
@@ -597,18 +652,34 @@ mod tests {
                 objects,
             },
             pixel_size_source: None,
-            flattened: None,
+            recount: None,
         })
     }
 
     fn policy(force_new: bool) -> RunPolicy {
         RunPolicy {
             folders: vec!["/acq".into()],
-            settings: "s".into(),
+            settings_toml: "s".into(),
             force_new,
             idle_gap_ms: 3_600_000,
-            qc: None,
         }
+    }
+
+    /// Opens the run and starts a writer without an observer.
+    fn start(
+        mut conn: Connection,
+        policy: RunPolicy,
+        capacity: usize,
+        on_commit: CommitHook,
+    ) -> (Writer, Sender<StoreOp>) {
+        let run = open_run(&mut conn, &policy).unwrap();
+        let setup = WriterSetup {
+            capacity,
+            max_batch: capacity,
+            on_commit,
+            observer: None,
+        };
+        Writer::start(conn, policy, run, setup).unwrap()
     }
 
     #[test]
@@ -617,14 +688,12 @@ mod tests {
         let db = dir.path().join("fw.db");
         let seen = Arc::new(Mutex::new(Vec::new()));
         let hook_seen = Arc::clone(&seen);
-        let (writer, tx) = Writer::start(
+        let (writer, tx) = start(
             open_for_writing(&db).unwrap(),
             policy(false),
             16,
-            8,
             Box::new(move |keys| hook_seen.lock().unwrap().extend_from_slice(keys)),
-        )
-        .unwrap();
+        );
         let a = key("/acq/a.tif", 10);
         let b = key("/acq/b.tif", 10);
         let c = key("/acq/c.tif", 10);
@@ -678,17 +747,15 @@ mod tests {
     fn both_results_of_a_flattened_frame_keep_their_objects() {
         let dir = tempfile::tempdir().unwrap();
         let db = dir.path().join("fw.db");
-        let (w, tx) = Writer::start(
+        let (w, tx) = start(
             open_for_writing(&db).unwrap(),
             policy(false),
             4,
-            4,
             Box::new(|_| {}),
-        )
-        .unwrap();
+        );
         let a = key("/acq/a.tif", 10);
         let mut two_results = analysis(3);
-        two_results.flattened = Some(analysis(5).result);
+        two_results.recount = Some(analysis(5).result);
         tx.send(queued(&a)).unwrap();
         for _ in 0..2 {
             // Done twice (redone after a crash): still one set of each.
@@ -709,7 +776,7 @@ mod tests {
             .unwrap()
             .collect::<Result<_, _>>()
             .unwrap();
-        assert_eq!(per_result, vec![("flattened".into(), 5), ("raw".into(), 3)]);
+        assert_eq!(per_result, vec![("raw".into(), 3), ("recount".into(), 5)]);
     }
 
     #[test]
@@ -720,7 +787,7 @@ mod tests {
         // A short busy timeout, so that the lock below outlasts what five
         // attempts would wait (5 x 50 ms + 200 + 400 + 600 + 800 ms).
         conn.busy_timeout(Duration::from_millis(50)).unwrap();
-        let (w, tx) = Writer::start(conn, policy(false), 4, 4, Box::new(|_| {})).unwrap();
+        let (w, tx) = start(conn, policy(false), 4, Box::new(|_| {}));
         let locker = open_for_writing(&db).unwrap();
         locker.execute_batch("BEGIN IMMEDIATE").unwrap();
         let a = key("/acq/a.tif", 10);
@@ -744,26 +811,22 @@ mod tests {
         let db = dir.path().join("fw.db");
         let first = key("/acq/a.tif", 10);
         let second = key("/acq/a.tif", 20);
-        let (w, tx) = Writer::start(
+        let (w, tx) = start(
             open_for_writing(&db).unwrap(),
             policy(false),
             4,
-            4,
             Box::new(|_| {}),
-        )
-        .unwrap();
+        );
         let run1 = w.run_id;
         tx.send(queued(&first)).unwrap();
         drop(tx);
         w.join();
-        let (w, tx) = Writer::start(
+        let (w, tx) = start(
             open_for_writing(&db).unwrap(),
             policy(false),
             4,
-            4,
             Box::new(|_| {}),
-        )
-        .unwrap();
+        );
         assert_eq!(w.run_id, run1, "a restart continues the run");
         tx.send(queued(&second)).unwrap();
         drop(tx);
@@ -779,14 +842,12 @@ mod tests {
         assert_eq!(versions, vec![1, 2]);
         assert_eq!(queued_frames(&conn).unwrap().len(), 2);
         drop(conn);
-        let (w, tx) = Writer::start(
+        let (w, tx) = start(
             open_for_writing(&db).unwrap(),
             policy(true),
             4,
-            4,
             Box::new(|_| {}),
-        )
-        .unwrap();
+        );
         assert_ne!(w.run_id, run1, "a new run on request");
         drop(tx);
         w.join();

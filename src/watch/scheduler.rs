@@ -1,4 +1,4 @@
-//! From "something happened to this path" to "this exact version is complete: analyse
+//! From "something happened to this path" to "this exact version is complete: analyze
 //! it". Owns the pending map, applies the readiness rule, and feeds the bounded
 //! work queue; also the scanner that lists folders for catch-up and rescans.
 //!
@@ -16,10 +16,10 @@ use crossbeam_channel::{Receiver, RecvTimeoutError, Sender};
 use notify::event::{CreateKind, EventKind, ModifyKind};
 use rusqlite::Connection;
 
-use super::config::WatchSettings;
-use super::{Job, Progress};
 use crate::store::writer::StoreOp;
 use crate::store::{lookup, now_ms, FrameKey, FrameStatus};
+use crate::watch::params::WatchSettings;
+use crate::watch::queue::{Job, Progress};
 
 /// Messages to the scheduler thread.
 #[derive(Debug)]
@@ -58,13 +58,21 @@ struct Candidate {
 /// Shortest pause between two looks at the same file.
 const MIN_LOOK_GAP: Duration = Duration::from_millis(25);
 
+/// The scheduler thread's state: what it reads from and feeds.
 pub struct Scheduler {
+    /// The readiness rule's timings and the file filter.
     pub watch: WatchSettings,
+    /// Events, scan results, retries and commits.
     pub inbox: Receiver<SchedMsg>,
+    /// The bounded queue to the workers.
     pub work_tx: Sender<Job>,
+    /// Rows for files judged complete (`queued`).
     pub store_tx: Sender<StoreOp>,
+    /// Folders to (re)scan.
     pub scan_tx: Sender<PathBuf>,
+    /// A read-only connection for "is this version already recorded?".
     pub reader: Connection,
+    /// Shared counters.
     pub progress: Arc<Progress>,
 }
 
@@ -273,7 +281,6 @@ impl Scheduler {
             path: path.to_path_buf(),
             key: key.clone(),
             detected_at_ms: c.detected_at_ms,
-            ready_at: now,
             attempts: c.attempts,
         };
         // Only this thread sends, so a queue that was not full has room; it

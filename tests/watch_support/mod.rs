@@ -224,7 +224,7 @@ pub fn rows(db: &Path) -> Vec<Row> {
     let conn = Connection::open_with_flags(db, OpenFlags::SQLITE_OPEN_READ_ONLY).unwrap();
     conn.busy_timeout(Duration::from_secs(10)).unwrap();
     let Ok(mut stmt) =
-        conn.prepare("SELECT path, size_bytes, version, status, error, object_count, attempts FROM frames ORDER BY id")
+        conn.prepare("SELECT file, size_bytes, version, status, error, object_count, attempts FROM frames ORDER BY id")
     else {
         return Vec::new(); // schema not created yet
     };

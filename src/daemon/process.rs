@@ -1,13 +1,13 @@
 //! The `watch` command as a process: a small async runtime for signals, systemd
-//! readiness and the watchdog around the [`crate::watch`] service.
+//! readiness and the watchdog around the [`Service`].
 //!
 //! The service itself (threads, queue, store) knows nothing of signals or
 //! systemd; this file decides when it stops and tells systemd how it is doing.
 
 use std::future::Future;
 
+use crate::daemon::service::{Service, WatchError, WatchOptions, WatchSummary};
 use crate::settings::Settings;
-use crate::watch::{Service, WatchError, WatchOptions, WatchSummary};
 
 /// Installs SIGINT (Ctrl-C) and SIGTERM (systemd's stop) handlers now, and
 /// returns a future that completes on the first of them. Installing before the
@@ -64,10 +64,16 @@ pub fn watch_until_signal(
     let runtime = tokio::runtime::Builder::new_current_thread()
         .enable_all()
         .build()
-        .map_err(|e| WatchError::Start(format!("async runtime: {e}")))?;
+        .map_err(|source| WatchError::Start {
+            what: "the async runtime".into(),
+            source,
+        })?;
     let shutdown = {
         let _context = runtime.enter();
-        stop_signal().map_err(|e| WatchError::Start(format!("signal handlers: {e}")))?
+        stop_signal().map_err(|source| WatchError::Start {
+            what: "the signal handlers".into(),
+            source,
+        })?
     };
     let result = runtime.block_on(watch_with_systemd(settings, options, shutdown));
     // A stop that overran its bound is still running on the blocking pool;

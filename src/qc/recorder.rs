@@ -2,51 +2,49 @@
 //! run monitor judges it in the same transaction; flags and alert episodes become
 //! rows, and alert events go to the log and the sinks.
 //!
-//! The writer ([`crate::store::writer`]) calls in; the judging is
+//! The writer ([`crate::store::writer`]) calls in through its
+//! [`FrameObserver`] trait, which [`QcRecorder`] implements; the judging is
 //! [`crate::qc::monitor`]'s, the delivery [`crate::qc::sinks`]'s. A restart
 //! mid-run rebuilds the monitor from the run's rows, so baselines survive it.
 
-use std::path::{Path, PathBuf};
+use std::path::PathBuf;
 
 use rusqlite::{params, Connection, OptionalExtension, Transaction};
 
+use crate::analysis::Method;
 use crate::pipeline::FileAnalysis;
 use crate::qc::alerts::{AlertEvent, AlertState};
-use crate::qc::config::{AlertSettings, QualitySettings};
-use crate::qc::flags::FrameMetrics;
+use crate::qc::flags::explain_recount;
+use crate::qc::metrics::FrameMetrics;
 use crate::qc::monitor::RunMonitor;
+use crate::qc::params::{AlertSettings, QualitySettings};
 use crate::qc::sinks::AlertDispatcher;
-use crate::settings::Settings;
-use crate::store::{now_ms, FrameKey, POSITION_SQL};
+use crate::store::writer::FrameObserver;
+use crate::store::{now_ms, FrameKey, FRAME_KEY_SQL, POSITION_SQL};
+
+/// Why quality control could not start.
+#[derive(Debug, thiserror::Error)]
+pub enum QcError {
+    /// Reading the run's recorded frames failed.
+    #[error(transparent)]
+    Sqlite(#[from] rusqlite::Error),
+    /// An alert sink's thread could not be started.
+    #[error("cannot start an alert sink: {0}")]
+    Sinks(std::io::Error),
+}
 
 /// Condition of a service restart in the middle of a run.
 pub const SERVICE_RESTARTED: &str = "service_restarted";
 
-/// What the writer needs to run quality control.
+/// What quality control of a run needs.
 #[derive(Debug, Clone)]
 pub struct QcSetup {
+    /// Flag limits, chart parameters and run checks.
     pub quality: QualitySettings,
+    /// Where alerts go.
     pub alerts: AlertSettings,
     /// Folders whose volumes' free space is watched (watched folders, database folder).
     pub volumes: Vec<PathBuf>,
-}
-
-impl QcSetup {
-    pub fn from_settings(settings: &Settings) -> QcSetup {
-        let database_folder = settings
-            .store
-            .database
-            .parent()
-            .filter(|p| !p.as_os_str().is_empty())
-            .map_or_else(|| PathBuf::from("."), Path::to_path_buf);
-        let mut volumes = settings.watch.folders.clone();
-        volumes.push(database_folder);
-        QcSetup {
-            quality: settings.quality.clone(),
-            alerts: settings.alerts.clone(),
-            volumes,
-        }
-    }
 }
 
 /// The monitor of the writer's current run, and the sinks.
@@ -60,6 +58,9 @@ pub struct QcRecorder {
     pending: Vec<AlertEvent>,
     /// The per-frame log lines of the open transaction, logged once it commits.
     pending_lines: Vec<FrameLine>,
+    /// The state before the open transaction, restored if it rolls back, so a
+    /// retried batch is judged once.
+    checkpoint: Option<(i64, RunMonitor)>,
 }
 
 /// One frame's log line: what was recorded and how it was judged.
@@ -71,22 +72,14 @@ struct FrameLine {
     latency_ms: i64,
 }
 
-/// The monitor's state before a transaction, restored if the transaction fails,
-/// so a retried batch is judged once.
-pub struct QcCheckpoint {
-    run_id: i64,
-    monitor: RunMonitor,
-}
-
 impl QcRecorder {
     /// Starts the sinks and rebuilds the monitor of `run_id` from its rows; a run
     /// that already has frames was interrupted, which raises a restart notice.
     ///
     /// # Errors
-    /// SQLite errors, or a sink thread that cannot start.
-    pub fn start(conn: &Connection, run_id: i64, setup: QcSetup) -> rusqlite::Result<QcRecorder> {
-        let dispatcher = AlertDispatcher::start(&setup.alerts)
-            .map_err(|e| rusqlite::Error::ToSqlConversionFailure(Box::new(e)))?;
+    /// [`QcError`]: SQLite errors, or a sink thread that cannot start.
+    pub fn start(conn: &Connection, run_id: i64, setup: QcSetup) -> Result<QcRecorder, QcError> {
+        let dispatcher = AlertDispatcher::start(&setup.alerts).map_err(QcError::Sinks)?;
         let mut recorder = QcRecorder {
             monitor: RunMonitor::new(setup.quality.clone()),
             setup,
@@ -94,6 +87,7 @@ impl QcRecorder {
             dispatcher,
             pending: Vec::new(),
             pending_lines: Vec::new(),
+            checkpoint: None,
         };
         let replayed = recorder.replay(conn)?;
         if replayed > 0 {
@@ -109,43 +103,46 @@ impl QcRecorder {
             };
             // Outside a transaction: stored at once, so announced at once.
             recorder.store_event(conn, &event, None)?;
-            recorder.committed();
+            recorder.announce_pending();
         }
         Ok(recorder)
     }
+}
+
+impl FrameObserver for QcRecorder {
+    fn begin(&mut self) {
+        self.checkpoint = Some((self.run_id, self.monitor.clone()));
+    }
 
     /// Judges a frame just recorded as done (`frame_id`) in the writer's
-    /// transaction. Flags and charts use the first (unflattened) result, so the
-    /// run's metrics stay comparable; a flattened second result is stored beside
-    /// it and becomes the frame's count.
-    ///
-    /// # Errors
-    /// SQLite errors.
-    pub fn frame_done(
+    /// transaction. Flags and charts use the first result, so the run's
+    /// metrics stay comparable; a recount is stored beside it and becomes the
+    /// frame's count.
+    fn frame_done(
         &mut self,
         tx: &Transaction<'_>,
         frame_id: i64,
         analysis: &FileAnalysis,
     ) -> rusqlite::Result<()> {
-        let (run_id, path, position, latency_ms) = frame_row(tx, frame_id)?;
+        let (run_id, file, position, latency_ms) = frame_row(tx, frame_id)?;
         self.switch_run(run_id);
         let at_ms = now_ms();
         let result = &analysis.result;
         let mut verdict =
             self.monitor
-                .observe(&position, &path, at_ms, &FrameMetrics::from(result));
-        if let Some(flat) = &analysis.flattened {
+                .observe(&position, &file, at_ms, &FrameMetrics::from(result));
+        if let Some(recount) = &analysis.recount {
             tx.prepare_cached(
-                "UPDATE frames SET flat_threshold = ?2, flat_object_count = ?3, count_source = 'flattened' WHERE id = ?1",
+                "UPDATE frames SET recount_threshold = ?2, recount_object_count = ?3, count_source = 'recount' WHERE id = ?1",
             )?
-            .execute(params![frame_id, flat.threshold, flat.object_count as i64])?;
-            crate::qc::remedy::explain_recount(&mut verdict.flags, result, flat);
+            .execute(params![frame_id, recount.threshold, recount.object_count as i64])?;
+            explain_recount(&mut verdict.flags, result, recount);
         }
-        let mut insert = tx.prepare_cached(
-            "INSERT INTO flags (frame_id, kind, value, limit_value, message) VALUES (?1, ?2, ?3, ?4, ?5)",
-        )?;
         tx.prepare_cached("DELETE FROM flags WHERE frame_id = ?1")?
             .execute([frame_id])?;
+        let mut insert = tx.prepare_cached(
+            "INSERT INTO flags (frame_id, flag, value, limit_value, message) VALUES (?1, ?2, ?3, ?4, ?5)",
+        )?;
         for f in &verdict.flags {
             insert.execute(params![
                 frame_id,
@@ -160,11 +157,8 @@ impl QcRecorder {
         }
         let flags: Vec<&str> = verdict.flags.iter().map(|f| f.kind.as_str()).collect();
         self.pending_lines.push(FrameLine {
-            file: path,
-            objects: analysis
-                .flattened
-                .as_ref()
-                .map_or(result.object_count, |f| f.object_count),
+            file,
+            objects: analysis.count_used(),
             threshold: result.threshold,
             flags: flags.join(","),
             latency_ms: latency_ms.unwrap_or(0),
@@ -173,18 +167,12 @@ impl QcRecorder {
     }
 
     /// Counts a frame recorded as failed towards the failure rate.
-    ///
-    /// # Errors
-    /// SQLite errors.
-    pub fn frame_failed(&mut self, tx: &Transaction<'_>, key: &FrameKey) -> rusqlite::Result<()> {
+    fn frame_failed(&mut self, tx: &Transaction<'_>, key: &FrameKey) -> rusqlite::Result<()> {
         let row: Option<(i64, i64)> = tx
-            .prepare_cached(
-                "SELECT id, run_id FROM frames WHERE path = ?1 AND size_bytes = ?2 AND mtime_ns = ?3",
-            )?
-            .query_row(
-                params![key.path, key.size_bytes as i64, key.mtime_ns],
-                |r| Ok((r.get(0)?, r.get(1)?)),
-            )
+            .prepare_cached(&format!(
+                "SELECT id, run_id FROM frames WHERE {FRAME_KEY_SQL}"
+            ))?
+            .query_row(key.sql_params(), |r| Ok((r.get(0)?, r.get(1)?)))
             .optional()?;
         let Some((frame_id, run_id)) = row else {
             return Ok(());
@@ -196,16 +184,30 @@ impl QcRecorder {
         Ok(())
     }
 
+    /// The writer's transaction committed: log each frame it recorded (one line
+    /// per frame at info level) and announce the alerts it stored.
+    fn committed(&mut self) {
+        self.checkpoint = None;
+        self.announce_pending();
+    }
+
+    /// The writer's transaction failed: forget its events and judgements.
+    fn rolled_back(&mut self) {
+        self.pending.clear();
+        self.pending_lines.clear();
+        if let Some((run_id, monitor)) = self.checkpoint.take() {
+            self.run_id = run_id;
+            self.monitor = monitor;
+        }
+    }
+
     /// Periodic checks that need no frame: the stall, and free space on the
     /// watched and database volumes.
-    ///
-    /// # Errors
-    /// SQLite errors.
-    pub fn tick(&mut self, conn: &Connection) -> rusqlite::Result<()> {
+    fn tick(&mut self, conn: &Connection) -> rusqlite::Result<()> {
         let now = now_ms();
         let mut events: Vec<AlertEvent> = self.monitor.check_stall(now).into_iter().collect();
         for volume in &self.setup.volumes {
-            if let Some(free) = free_bytes(volume) {
+            if let Ok(free) = fs4::available_space(volume) {
                 let name = volume.display().to_string();
                 events.extend(self.monitor.check_free_space(&name, free, now));
             }
@@ -214,21 +216,19 @@ impl QcRecorder {
             self.store_event(conn, event, None)?;
         }
         // Outside a transaction each statement is already committed.
-        self.committed();
+        self.announce_pending();
         Ok(())
     }
 
-    /// The state to restore if the transaction about to start fails.
-    pub fn checkpoint(&self) -> QcCheckpoint {
-        QcCheckpoint {
-            run_id: self.run_id,
-            monitor: self.monitor.clone(),
-        }
+    /// Waits for the sinks to deliver what is queued.
+    fn close(self: Box<Self>) {
+        self.dispatcher.close();
     }
+}
 
-    /// The writer's transaction committed: log each frame it recorded (one line
-    /// per frame at info level) and announce the alerts it stored.
-    pub fn committed(&mut self) {
+impl QcRecorder {
+    /// Logs the recorded frames' lines and announces the stored alerts.
+    fn announce_pending(&mut self) {
         for line in self.pending_lines.drain(..) {
             tracing::info!(
                 file = %line.file,
@@ -242,19 +242,6 @@ impl QcRecorder {
         for event in std::mem::take(&mut self.pending) {
             self.announce(&event);
         }
-    }
-
-    /// The writer's transaction failed: forget its events and judgements.
-    pub fn rolled_back(&mut self, checkpoint: QcCheckpoint) {
-        self.pending.clear();
-        self.pending_lines.clear();
-        self.run_id = checkpoint.run_id;
-        self.monitor = checkpoint.monitor;
-    }
-
-    /// Waits for the sinks to deliver what is queued.
-    pub fn close(self) {
-        self.dispatcher.close();
     }
 
     /// A new run (after an idle gap) starts with a fresh memory.
@@ -276,7 +263,7 @@ impl QcRecorder {
                 // A notice is an episode closed as it opens.
                 let closed_at_ms = (event.state == AlertState::Notice).then_some(event.at_ms);
                 conn.prepare_cached(
-                    "INSERT INTO alerts (run_id, raised_at_ms, kind, message, frame_id, file, closed_at_ms)
+                    "INSERT INTO alerts (run_id, opened_at_ms, condition, message, frame_id, file, closed_at_ms)
                      VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7)",
                 )?
                 .execute(params![
@@ -292,7 +279,7 @@ impl QcRecorder {
             AlertState::Recovered => {
                 conn.prepare_cached(
                     "UPDATE alerts SET closed_at_ms = ?1, closed_message = ?2
-                     WHERE run_id = ?3 AND kind = ?4 AND closed_at_ms IS NULL",
+                     WHERE run_id = ?3 AND condition = ?4 AND closed_at_ms IS NULL",
                 )?
                 .execute(params![
                     event.at_ms,
@@ -333,10 +320,10 @@ impl QcRecorder {
     /// open alerts open. Returns the number of frames replayed.
     fn replay(&mut self, conn: &Connection) -> rusqlite::Result<usize> {
         let mut stmt = conn.prepare(&format!(
-            "SELECT path, {POSITION_SQL}, analysed_at_ms, status,
+            "SELECT file, {POSITION_SQL}, analyzed_at_ms, status,
                     method, threshold, separability, object_count, foreground_fraction,
                     background_level, saturation_fraction, focus, illumination_change, bimodality
-             FROM frames WHERE run_id = ?1 AND status IN ('done', 'failed') ORDER BY analysed_at_ms, id"
+             FROM frames WHERE run_id = ?1 AND status IN ('done', 'failed') ORDER BY analyzed_at_ms, id"
         ))?;
         let mut rows = stmt.query([self.run_id])?;
         let mut n = 0;
@@ -351,7 +338,7 @@ impl QcRecorder {
                     Ok(r.get::<_, Option<f64>>(i)?.unwrap_or(0.0))
                 };
                 let m = FrameMetrics {
-                    otsu_based: FrameMetrics::is_otsu_method(&method),
+                    otsu_based: Method::is_otsu_based(&method),
                     threshold: num(5)?,
                     separability: num(6)?,
                     // Rows from before schema 3 have none: unknown, never flags.
@@ -369,7 +356,7 @@ impl QcRecorder {
             n += 1;
         }
         let mut open = conn.prepare(
-            "SELECT kind, raised_at_ms FROM alerts WHERE run_id = ?1 AND closed_at_ms IS NULL",
+            "SELECT condition, opened_at_ms FROM alerts WHERE run_id = ?1 AND closed_at_ms IS NULL",
         )?;
         let rows = open.query_map([self.run_id], |r| Ok((r.get::<_, String>(0)?, r.get(1)?)))?;
         for row in rows {
@@ -380,54 +367,13 @@ impl QcRecorder {
     }
 }
 
-/// Bytes available to an unprivileged writer on the volume holding `path`
-/// (`statvfs`: f_bavail × f_frsize); `None` where it cannot be asked.
-#[cfg(unix)]
-// The field types are u64 on 64-bit Linux but narrower elsewhere.
-#[allow(clippy::useless_conversion)]
-fn free_bytes(path: &Path) -> Option<u64> {
-    use std::os::unix::ffi::OsStrExt;
-    let c_path = std::ffi::CString::new(path.as_os_str().as_bytes()).ok()?;
-    // SAFETY: a zeroed statvfs is a valid out-parameter, and c_path is a valid
-    // NUL-terminated string that outlives the call.
-    let mut stat: libc::statvfs = unsafe { std::mem::zeroed() };
-    let rc = unsafe { libc::statvfs(c_path.as_ptr(), &mut stat) };
-    (rc == 0).then(|| u64::from(stat.f_bavail).saturating_mul(u64::from(stat.f_frsize)))
-}
-
-/// Bytes available to the caller on the volume holding `path`
-/// (`GetDiskFreeSpaceExW`); `None` where it cannot be asked.
-#[cfg(windows)]
-fn free_bytes(path: &Path) -> Option<u64> {
-    use std::os::windows::ffi::OsStrExt;
-    use windows_sys::Win32::Storage::FileSystem::GetDiskFreeSpaceExW;
-    let wide: Vec<u16> = path.as_os_str().encode_wide().chain([0]).collect();
-    let mut available = 0u64;
-    // SAFETY: `wide` is NUL-terminated and outlives the call; the two totals
-    // we do not want may be null.
-    let ok = unsafe {
-        GetDiskFreeSpaceExW(
-            wide.as_ptr(),
-            &mut available,
-            std::ptr::null_mut(),
-            std::ptr::null_mut(),
-        )
-    };
-    (ok != 0).then_some(available)
-}
-
-#[cfg(not(any(unix, windows)))]
-fn free_bytes(_path: &Path) -> Option<u64> {
-    None
-}
-
-/// The run, path, position and latency (ready to recorded, ms) of a frame row.
+/// The run, file, position and latency (ready to recorded, ms) of a frame row.
 fn frame_row(
     conn: &Connection,
     frame_id: i64,
 ) -> rusqlite::Result<(i64, String, String, Option<i64>)> {
     conn.prepare_cached(&format!(
-        "SELECT run_id, path, {POSITION_SQL}, latency_ms FROM frames WHERE id = ?1"
+        "SELECT run_id, file, {POSITION_SQL}, latency_ms FROM frames WHERE id = ?1"
     ))?
     .query_row([frame_id], |r| {
         Ok((r.get(0)?, r.get(1)?, r.get(2)?, r.get(3)?))
@@ -437,7 +383,6 @@ fn frame_row(
 #[cfg(test)]
 mod tests {
     use super::*;
-    use crate::settings;
 
     /// Judges the failed frames inside a transaction, as the writer does.
     fn judge<'c>(
@@ -458,17 +403,24 @@ mod tests {
     #[test]
     fn a_rolled_back_batch_is_judged_once_and_announced_after_commit() {
         let dir = tempfile::tempdir().unwrap();
-        let config = dir.path().join("c.toml");
-        let text = "[quality]\nfailure_window = 4\nmax_failure_fraction = 0.2\n[alerts]\nfile = \"alerts.jsonl\"\n";
-        let settings = settings::parse(text, &config).unwrap();
+        let setup = QcSetup {
+            quality: QualitySettings {
+                failure_window: 4,
+                max_failure_fraction: 0.2,
+                ..QualitySettings::default()
+            },
+            alerts: AlertSettings {
+                file: Some(dir.path().join("alerts.jsonl")),
+                ..AlertSettings::default()
+            },
+            volumes: Vec::new(),
+        };
         let mut conn = crate::store::open_for_writing(&dir.path().join("fw.db")).unwrap();
         conn.execute(
             "INSERT INTO runs (id, folders, started_at_ms, last_frame_at_ms, settings) VALUES (1, '[]', 0, 0, '{}')",
             [],
         )
         .unwrap();
-        let mut setup = QcSetup::from_settings(&settings);
-        setup.volumes.clear();
         let mut recorder = QcRecorder::start(&conn, 1, setup).unwrap();
         let keys: Vec<FrameKey> = (0..4)
             .map(|i| FrameKey {
@@ -479,21 +431,22 @@ mod tests {
             .collect();
         for k in &keys {
             conn.execute(
-                "INSERT INTO frames (run_id, path, size_bytes, mtime_ns, version, status, error, detected_at_ms, ready_at_ms)
+                "INSERT INTO frames (run_id, file, size_bytes, mtime_ns, version, status, error, detected_at_ms, ready_at_ms)
                  VALUES (1, ?1, ?2, ?3, 1, 'failed', 'bad', 0, 0)",
                 params![k.path, k.size_bytes as i64, k.mtime_ns],
             )
             .unwrap();
         }
-        let checkpoint = recorder.checkpoint();
+        recorder.begin();
         drop(judge(&mut recorder, &mut conn, &keys)); // the commit failed: rolled back
-        recorder.rolled_back(checkpoint);
+        recorder.rolled_back();
+        recorder.begin();
         judge(&mut recorder, &mut conn, &keys).commit().unwrap();
         recorder.committed();
-        recorder.close();
+        Box::new(recorder).close();
         let stored: i64 = conn
             .query_row(
-                "SELECT COUNT(*) FROM alerts WHERE kind = 'failure_rate'",
+                "SELECT COUNT(*) FROM alerts WHERE condition = 'failure_rate'",
                 [],
                 |r| r.get(0),
             )

@@ -1,0 +1,156 @@
+//! The analysis core's own parameter types: how to threshold, what to correct
+//! first, how pixels connect, which objects to keep.
+//!
+//! The configuration module builds these from the file; the core never reads
+//! configuration. Checking the values' ranges is the configuration's job, and
+//! each type documents the range it expects.
+
+use std::sync::Arc;
+
+use crate::analysis::correct::FlatField;
+
+/// Threshold method and its parameters.
+#[derive(Debug, Clone, PartialEq)]
+pub enum Method {
+    /// Otsu's method (Otsu 1979).
+    Otsu,
+    /// The triangle method (Zack, Rogers & Latt 1977).
+    Triangle,
+    /// Li's minimum cross-entropy (Li & Lee 1993; Li & Tam 1998).
+    Li,
+    /// Multi-level Otsu with `classes` classes; foreground is above threshold
+    /// number `boundary` (1-based, `1..classes`).
+    MultiOtsu {
+        /// Number of classes, 2 to 5.
+        classes: usize,
+        /// Which of the `classes - 1` thresholds separates foreground.
+        boundary: usize,
+    },
+    /// A fixed level: foreground is `pixel > level`.
+    Fixed(u16),
+}
+
+impl Method {
+    /// The method's name, as written in the configuration and stored with results.
+    pub fn name(&self) -> &'static str {
+        match self {
+            Method::Otsu => "otsu",
+            Method::Triangle => "triangle",
+            Method::Li => "li",
+            Method::MultiOtsu { .. } => "multi-otsu",
+            Method::Fixed(_) => "fixed",
+        }
+    }
+
+    /// True for the methods built on Otsu's criterion (whose reliability
+    /// Otsu's separability speaks for).
+    pub fn is_otsu_based(name: &str) -> bool {
+        matches!(name, "otsu" | "multi-otsu")
+    }
+}
+
+/// Background correction applied before thresholding.
+#[derive(Debug, Clone, PartialEq)]
+pub enum Background {
+    /// No correction.
+    None,
+    /// Rolling-ball background (Sternberg 1983) of this radius, subtracted.
+    RollingBall {
+        /// Ball radius in pixels.
+        radius_px: f64,
+    },
+    /// Flat-field correction with user-supplied flat (and optional dark) frames.
+    FlatField(Arc<FlatField>),
+}
+
+/// Which neighbours join pixels into one object.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum Connectivity {
+    /// Edge neighbours only (up, down, left, right).
+    Four,
+    /// Edge and corner neighbours.
+    Eight,
+}
+
+impl Connectivity {
+    /// 4 or 8, as written in the configuration.
+    pub fn neighbours(self) -> u8 {
+        match self {
+            Connectivity::Four => 4,
+            Connectivity::Eight => 8,
+        }
+    }
+
+    /// The connectivity of `n` neighbours, for 4 and 8 only.
+    pub fn from_neighbours(n: u8) -> Option<Connectivity> {
+        match n {
+            4 => Some(Connectivity::Four),
+            8 => Some(Connectivity::Eight),
+            _ => None,
+        }
+    }
+}
+
+/// Which labelled components are kept as objects.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct ObjectFilter {
+    /// Smallest area kept, in pixels.
+    pub min_area_px: u64,
+    /// Largest area kept, in pixels; 0 = no limit.
+    pub max_area_px: u64,
+    /// Smallest area kept in µm², applied when the pixel size is known; 0 = off.
+    pub min_area_um2: f64,
+    /// Largest area kept in µm², applied when the pixel size is known; 0 = off.
+    pub max_area_um2: f64,
+    /// Drop objects that touch the frame's edge.
+    pub exclude_border: bool,
+}
+
+impl Default for ObjectFilter {
+    fn default() -> Self {
+        ObjectFilter {
+            min_area_px: 0,
+            max_area_px: 0,
+            min_area_um2: 0.0,
+            max_area_um2: 0.0,
+            exclude_border: false,
+        }
+    }
+}
+
+/// Everything [`crate::analysis::segment::analyze_frame`] needs to segment and
+/// measure one frame.
+#[derive(Debug, Clone, PartialEq)]
+pub struct SegmentParams {
+    /// The page of a multi-page file that is segmented.
+    pub page: usize,
+    /// How the threshold is chosen.
+    pub method: Method,
+    /// Gaussian pre-smoothing σ in pixels; 0 = off.
+    pub smooth_sigma_px: f64,
+    /// Correction applied before thresholding.
+    pub background: Background,
+    /// Fill enclosed background into the object around it.
+    pub fill_holes: bool,
+    /// How object pixels connect (holes use the complementary connectivity).
+    pub connectivity: Connectivity,
+    /// Which components are kept as objects.
+    pub filter: ObjectFilter,
+    /// Other pages whose intensities are measured inside the objects.
+    pub measure_pages: Vec<usize>,
+}
+
+impl Default for SegmentParams {
+    fn default() -> Self {
+        Self {
+            page: 0,
+            method: Method::Otsu,
+            smooth_sigma_px: 0.0,
+            background: Background::None,
+            fill_holes: true,
+            connectivity: Connectivity::Eight,
+            filter: ObjectFilter::default(),
+            measure_pages: Vec::new(),
+        }
+    }
+}

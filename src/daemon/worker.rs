@@ -1,0 +1,128 @@
+//! One analysis thread: takes a complete file version from the queue, runs the
+//! pipeline on it (a panic is contained and recorded as a failure), and sends
+//! the outcome to the store, or back to the scheduler when the file read short
+//! or changed while it was read.
+
+use std::panic::{catch_unwind, AssertUnwindSafe};
+use std::sync::atomic::{AtomicBool, Ordering};
+use std::sync::Arc;
+
+use crossbeam_channel::{Receiver, Sender};
+
+use crate::pipeline::{analyze_file, PipelineParams};
+use crate::store::writer::StoreOp;
+use crate::store::FrameKey;
+use crate::watch::scheduler::SchedMsg;
+use crate::watch::{Job, Progress};
+
+/// A file that a worker read short (or saw change) and that should be looked at again.
+fn retry_or_fail(job: &Job, limit: u32, reason: String) -> Next {
+    let attempts = job.attempts + 1;
+    if attempts <= limit {
+        Next::Retry(SchedMsg::Retry {
+            path: job.path.clone(),
+            previous: job.key.clone(),
+            attempts,
+            detected_at_ms: job.detected_at_ms,
+        })
+    } else {
+        Next::Record(StoreOp::Failed {
+            key: job.key.clone(),
+            attempts,
+            reason: format!("still incomplete after {attempts} attempts: {reason}"),
+        })
+    }
+}
+
+/// Where a job goes after a worker is done with it.
+enum Next {
+    Retry(SchedMsg),
+    Record(StoreOp),
+}
+
+pub(crate) struct Worker {
+    pub(crate) pipeline: Arc<PipelineParams>,
+    pub(crate) retry_limit: u32,
+    pub(crate) work_rx: Receiver<Job>,
+    pub(crate) store_tx: Sender<StoreOp>,
+    pub(crate) sched_tx: Sender<SchedMsg>,
+    pub(crate) stopping: Arc<AtomicBool>,
+    pub(crate) progress: Arc<Progress>,
+}
+
+impl Worker {
+    pub(crate) fn run(self) {
+        while let Ok(job) = self.work_rx.recv() {
+            if self.stopping.load(Ordering::SeqCst) {
+                // Released: the row stays queued; the next start redoes it.
+                break;
+            }
+            let outcome =
+                catch_unwind(AssertUnwindSafe(|| analyze_file(&job.path, &self.pipeline)));
+            let unchanged = FrameKey::of(&job.path).is_ok_and(|k| k == job.key);
+            let limit = self.retry_limit;
+            let next = match outcome {
+                Ok(Ok(_)) | Ok(Err(_)) if !unchanged => {
+                    retry_or_fail(&job, limit, "the file changed while it was read".into())
+                }
+                Ok(Ok(analysis)) => {
+                    // The frame's log line is written once its row commits (qc::record).
+                    self.progress.done.fetch_add(1, Ordering::Relaxed);
+                    Next::Record(StoreOp::Done {
+                        key: job.key.clone(),
+                        attempts: job.attempts + 1,
+                        analysis: Box::new(analysis),
+                    })
+                }
+                Ok(Err(e)) if e.is_incomplete() => {
+                    retry_or_fail(&job, limit, without_path(&e.to_string(), &job.key.path))
+                }
+                Ok(Err(e)) => Next::Record(StoreOp::Failed {
+                    key: job.key.clone(),
+                    attempts: job.attempts + 1,
+                    reason: without_path(&e.to_string(), &job.key.path),
+                }),
+                Err(panic) => {
+                    let what = panic
+                        .downcast_ref::<&str>()
+                        .map(|s| (*s).to_string())
+                        .or_else(|| panic.downcast_ref::<String>().cloned())
+                        .unwrap_or_default();
+                    Next::Record(StoreOp::Failed {
+                        key: job.key.clone(),
+                        attempts: job.attempts + 1,
+                        reason: format!("the analysis crashed on this file: {what}"),
+                    })
+                }
+            };
+            match next {
+                Next::Retry(retry) => {
+                    tracing::debug!("{} not complete yet; will look again", job.path.display());
+                    let _ = self.sched_tx.send(retry);
+                }
+                Next::Record(op) => {
+                    if let StoreOp::Failed { reason, .. } = &op {
+                        tracing::warn!(file = %job.path.display(), "failed: {reason}");
+                        self.progress.failed.fetch_add(1, Ordering::Relaxed);
+                    }
+                    if self.store_tx.send(op).is_err() {
+                        tracing::error!(
+                            "the store writer has stopped; {} not recorded",
+                            job.path.display()
+                        );
+                    }
+                }
+            }
+            self.progress.finished.fetch_add(1, Ordering::Relaxed);
+        }
+    }
+}
+
+/// The row already names the file: drop a leading "<path>: " from a message.
+fn without_path(message: &str, path: &str) -> String {
+    message
+        .strip_prefix(path)
+        .and_then(|m| m.strip_prefix(": "))
+        .unwrap_or(message)
+        .to_string()
+}

@@ -1,0 +1,455 @@
+//! From the file's shape to each layer's parameter types: every value checked
+//! against the range its layer expects, with a message naming the key.
+//!
+//! Pure: no file is read here (flat-field frames are read by
+//! [`crate::settings::load`] after validation).
+
+use std::path::Path;
+use std::time::Duration;
+
+use crate::analysis::{Background, Connectivity, Method, ObjectFilter, Recount, SegmentParams};
+use crate::decode::DecodeLimits;
+use crate::naming::NamePattern;
+use crate::pipeline::{Calibration, CalibrationPreference};
+use crate::qc::metrics::Metric;
+use crate::qc::params::{
+    AlertSettings, ChartParams, CommandSink, FlagLimits, QualitySettings, WebhookSink,
+};
+use crate::settings::document::{
+    AlertsSection, CalibrationSection, FlatFieldFiles, FrameFile, LimitsSection, QualitySection,
+    SegmentSection, StoreSection, WatchSection,
+};
+use crate::store::StoreSettings;
+use crate::watch::{default_workers, BadPattern, PathFilter, WatchMode, WatchSettings};
+
+/// A value the configuration does not accept, named by its key.
+#[derive(Debug, thiserror::Error)]
+pub enum ValueError {
+    /// A number outside its range, or a word outside its choices.
+    #[error("{key} = {value} (expected {expected})")]
+    Range {
+        /// `section.key`
+        key: &'static str,
+        /// The value as written.
+        value: String,
+        /// What is accepted.
+        expected: String,
+    },
+    /// Values that do not fit together, or a missing companion key.
+    #[error("{0}")]
+    Combination(String),
+    /// A file-name glob that does not compile.
+    #[error(transparent)]
+    Pattern(#[from] BadPattern),
+}
+
+/// `Ok(v)` when `ok(v)`, else a [`ValueError::Range`] for `key`: the one
+/// range check of the configuration.
+fn check<T: std::fmt::Display + Copy>(
+    key: &'static str,
+    v: T,
+    ok: impl Fn(T) -> bool,
+    expected: &str,
+) -> Result<T, ValueError> {
+    if ok(v) {
+        Ok(v)
+    } else {
+        Err(ValueError::Range {
+            key,
+            value: v.to_string(),
+            expected: expected.into(),
+        })
+    }
+}
+
+/// A word outside its choices.
+fn choice(key: &'static str, value: &str, expected: &str) -> ValueError {
+    ValueError::Range {
+        key,
+        value: format!("\"{value}\""),
+        expected: expected.into(),
+    }
+}
+
+fn fraction(key: &'static str, v: f64) -> Result<f64, ValueError> {
+    check(key, v, |v| (0.0..=1.0).contains(&v), "0 to 1")
+}
+
+fn positive_f64(key: &'static str, v: f64) -> Result<f64, ValueError> {
+    check(key, v, |v| v > 0.0 && v.is_finite(), "a positive number")
+}
+
+fn positive<T: std::fmt::Display + Copy + PartialOrd + Default>(
+    key: &'static str,
+    v: T,
+) -> Result<T, ValueError> {
+    check(key, v, |v| v > T::default(), "a positive number")
+}
+
+/// `[segment]` and `[measure]`, with the flat-field frames' files (read later).
+pub fn segment(
+    s: SegmentSection,
+    measure_pages: Vec<usize>,
+    base: &Path,
+) -> Result<(SegmentParams, Option<FlatFieldFiles>), ValueError> {
+    let method = match s.method.as_str() {
+        "otsu" => Method::Otsu,
+        "triangle" => Method::Triangle,
+        "li" => Method::Li,
+        "multi-otsu" => {
+            let classes = check(
+                "segment.classes",
+                s.classes,
+                |c| (2..=5).contains(&c),
+                "2 to 5",
+            )?;
+            let boundary = check(
+                "segment.boundary",
+                s.boundary,
+                |b| b >= 1 && b < classes,
+                &format!("1 to {} for {classes} classes", classes - 1),
+            )?;
+            Method::MultiOtsu { classes, boundary }
+        }
+        "fixed" => {
+            let level = check(
+                "segment.fixed_level",
+                s.fixed_level,
+                |l| l <= 65535,
+                "0 to 65535",
+            )?;
+            Method::Fixed(u16::try_from(level).unwrap_or(u16::MAX))
+        }
+        other => {
+            return Err(choice(
+                "segment.method",
+                other,
+                "otsu, triangle, li, multi-otsu or fixed",
+            ))
+        }
+    };
+    let smooth_sigma_px = check(
+        "segment.smooth_sigma_px",
+        s.smooth_sigma_px,
+        |v| (0.0..=50.0).contains(&v),
+        "0 to 50; 0 = off",
+    )?;
+    let frame_file = |path: &Path, hash: Option<String>| FrameFile {
+        path: base.join(path),
+        hash,
+    };
+    let (background, files) = match s.background.as_str() {
+        "none" => (Background::None, None),
+        "rolling-ball" => {
+            let radius_px = check(
+                "segment.rolling_ball_radius_px",
+                s.rolling_ball_radius_px,
+                |r| (1.0..=1000.0).contains(&r),
+                "1 to 1000",
+            )?;
+            (Background::RollingBall { radius_px }, None)
+        }
+        "flat-field" => {
+            let flat = s.flat_frame.as_deref().ok_or_else(|| {
+                ValueError::Combination(
+                    "segment.background = \"flat-field\" needs segment.flat_frame".into(),
+                )
+            })?;
+            let files = FlatFieldFiles {
+                flat: frame_file(flat, s.flat_frame_hash),
+                dark: s
+                    .dark_frame
+                    .as_deref()
+                    .map(|d| frame_file(d, s.dark_frame_hash)),
+            };
+            // The frames are read once validation is over (`load`).
+            (Background::None, Some(files))
+        }
+        other => {
+            return Err(choice(
+                "segment.background",
+                other,
+                "none, rolling-ball or flat-field",
+            ))
+        }
+    };
+    let connectivity = Connectivity::from_neighbours(s.connectivity).ok_or(ValueError::Range {
+        key: "segment.connectivity",
+        value: s.connectivity.to_string(),
+        expected: "4 or 8".into(),
+    })?;
+    if s.max_area_px != 0 && s.max_area_px < s.min_area_px {
+        return Err(ValueError::Combination(format!(
+            "segment.max_area_px = {} is below min_area_px = {}",
+            s.max_area_px, s.min_area_px
+        )));
+    }
+    let area = |key, v| {
+        check(
+            key,
+            v,
+            |v: f64| v >= 0.0 && v.is_finite(),
+            "0 (off) or more",
+        )
+    };
+    let filter = ObjectFilter {
+        min_area_px: s.min_area_px,
+        max_area_px: s.max_area_px,
+        min_area_um2: area("segment.min_area_um2", s.min_area_um2)?,
+        max_area_um2: area("segment.max_area_um2", s.max_area_um2)?,
+        exclude_border: s.exclude_border,
+    };
+    if measure_pages.contains(&s.page) {
+        return Err(ValueError::Combination(format!(
+            "measure.pages lists page {} which is the segmented page itself",
+            s.page
+        )));
+    }
+    let params = SegmentParams {
+        page: s.page,
+        method,
+        smooth_sigma_px,
+        background,
+        fill_holes: s.fill_holes,
+        connectivity,
+        filter,
+        measure_pages,
+    };
+    Ok((params, files))
+}
+
+/// `[calibration]`
+pub fn calibration(c: CalibrationSection) -> Result<Calibration, ValueError> {
+    let pixel_size_um = check(
+        "calibration.pixel_size_um",
+        c.pixel_size_um,
+        |v| v >= 0.0 && v.is_finite(),
+        "0 (none) or positive",
+    )?;
+    if c.prefer == CalibrationPreference::Config && pixel_size_um == 0.0 {
+        return Err(ValueError::Combination(
+            "calibration.prefer = \"config\" needs calibration.pixel_size_um".into(),
+        ));
+    }
+    Ok(Calibration {
+        pixel_size_um,
+        prefer: c.prefer,
+    })
+}
+
+/// `[limits]`
+pub fn limits(l: LimitsSection) -> Result<DecodeLimits, ValueError> {
+    Ok(DecodeLimits {
+        max_pixels: positive("limits.max_pixels", l.max_pixels)?,
+        max_decoded_bytes: positive("limits.max_decoded_mib", l.max_decoded_mib)?
+            .saturating_mul(1 << 20),
+        max_pages: positive("limits.max_pages", l.max_pages)?,
+    })
+}
+
+/// `[watch]`; relative folders are anchored at `base`.
+pub fn watch(w: WatchSection, base: &Path) -> Result<WatchSettings, ValueError> {
+    let mode = match w.mode.as_str() {
+        "native" => WatchMode::Native,
+        "poll" => WatchMode::Poll,
+        other => return Err(choice("watch.mode", other, "native or poll")),
+    };
+    let name_pattern = NamePattern::new(&w.name_pattern).map_err(|e| {
+        ValueError::Combination(format!(
+            "watch.name_pattern is not a valid regular expression: {e}"
+        ))
+    })?;
+    Ok(WatchSettings {
+        folders: w.folders.iter().map(|f| base.join(f)).collect(),
+        filter: PathFilter::new(w.include, w.exclude, w.temporary)?,
+        settle: Duration::from_millis(check(
+            "watch.settle_ms",
+            w.settle_ms,
+            |v| v <= 600_000,
+            "at most 600000",
+        )?),
+        mode,
+        poll_interval: Duration::from_millis(positive(
+            "watch.poll_interval_ms",
+            w.poll_interval_ms,
+        )?),
+        rescan_interval: Duration::from_secs(positive(
+            "watch.rescan_interval_s",
+            w.rescan_interval_s,
+        )?),
+        workers: if w.workers == 0 {
+            default_workers()
+        } else {
+            w.workers
+        },
+        queue_capacity: positive("watch.queue_capacity", w.queue_capacity)?,
+        retry_limit: check("watch.retry_limit", w.retry_limit, |v| v <= 30, "0 to 30")?,
+        retry_backoff: Duration::from_millis(positive(
+            "watch.retry_backoff_ms",
+            w.retry_backoff_ms,
+        )?),
+        shutdown_timeout: Duration::from_secs(positive(
+            "watch.shutdown_timeout_s",
+            w.shutdown_timeout_s,
+        )?),
+        new_run_after_idle: Duration::from_secs(
+            positive("watch.new_run_after_idle_min", w.new_run_after_idle_min)?.saturating_mul(60),
+        ),
+        name_pattern,
+    })
+}
+
+/// `[store]`; a relative database path is anchored at `base`.
+pub fn store(s: StoreSection, base: &Path) -> Result<StoreSettings, ValueError> {
+    Ok(StoreSettings {
+        database: base.join(s.database),
+        batch_max: positive("store.batch_max", s.batch_max)?,
+    })
+}
+
+/// `[quality]`, and the recount it switches on.
+pub fn quality(q: QualitySection) -> Result<(QualitySettings, Option<Recount>), ValueError> {
+    let flags = FlagLimits {
+        min_separability: fraction("quality.min_separability", q.min_separability)?,
+        min_bimodality: fraction("quality.min_bimodality", q.min_bimodality)?,
+        min_foreground_fraction: fraction(
+            "quality.min_foreground_fraction",
+            q.min_foreground_fraction,
+        )?,
+        max_illumination_change: positive_f64(
+            "quality.max_illumination_change",
+            q.max_illumination_change,
+        )?,
+        max_saturation_fraction: fraction(
+            "quality.max_saturation_fraction",
+            q.max_saturation_fraction,
+        )?,
+        min_focus_ratio: fraction("quality.min_focus_ratio", q.min_focus_ratio)?,
+        min_usual_count: check(
+            "quality.min_usual_count",
+            q.min_usual_count,
+            |v| v >= 0.0 && v.is_finite(),
+            "0 or more",
+        )?,
+        count_window: positive("quality.count_window", q.count_window)?,
+        max_count_jump: positive_f64("quality.max_count_jump", q.max_count_jump)?,
+    };
+    let charted = q
+        .charted_metrics
+        .iter()
+        .map(|name| {
+            Metric::ALL
+                .into_iter()
+                .find(|m| m.as_str() == name)
+                .ok_or_else(|| {
+                    let known: Vec<&str> = Metric::ALL.iter().map(|m| m.as_str()).collect();
+                    ValueError::Combination(format!(
+                        "quality.charted_metrics: \"{name}\" is not a charted metric (expected any of {})",
+                        known.join(", ")
+                    ))
+                })
+        })
+        .collect::<Result<Vec<Metric>, ValueError>>()?;
+    let charts = ChartParams {
+        baseline_frames: check(
+            "quality.baseline_frames",
+            q.baseline_frames,
+            |v| v >= 2,
+            "at least 2 (a spread needs two frames)",
+        )?,
+        ewma_lambda: check(
+            "quality.ewma_lambda",
+            q.ewma_lambda,
+            |v| v > 0.0 && v <= 1.0,
+            "above 0, at most 1",
+        )?,
+        ewma_width: positive_f64("quality.ewma_width", q.ewma_width)?,
+        cusum_k: check(
+            "quality.cusum_k",
+            q.cusum_k,
+            |v| v >= 0.0 && v.is_finite(),
+            "0 or more",
+        )?,
+        cusum_h: positive_f64("quality.cusum_h", q.cusum_h)?,
+        outlier_clip: positive_f64("quality.outlier_clip", q.outlier_clip)?,
+        recover_frames: positive("quality.recover_frames", q.recover_frames)?,
+        charted,
+    };
+    let recount = match q.on_uneven_illumination.as_str() {
+        "keep" => None,
+        "flatten" => Some(Recount {
+            max_illumination_change: flags.max_illumination_change,
+            radius_px: check(
+                "quality.flatten_radius_px",
+                q.flatten_radius_px,
+                |r| (1.0..=1000.0).contains(&r),
+                "1 to 1000",
+            )?,
+        }),
+        other => {
+            return Err(choice(
+                "quality.on_uneven_illumination",
+                other,
+                "keep or flatten",
+            ))
+        }
+    };
+    let quality = QualitySettings {
+        flags,
+        charts,
+        stall_after: Duration::from_secs(positive("quality.stall_after_s", q.stall_after_s)?),
+        expected_frames: (q.expected_frames > 0).then_some(q.expected_frames),
+        min_free_space_bytes: q.min_free_space_mib.saturating_mul(1 << 20),
+        failure_window: positive("quality.failure_window", q.failure_window)?,
+        max_failure_fraction: fraction("quality.max_failure_fraction", q.max_failure_fraction)?,
+    };
+    Ok((quality, recount))
+}
+
+/// `[alerts]`; relative files are anchored at `base`.
+pub fn alerts(a: AlertsSection, base: &Path) -> Result<AlertSettings, ValueError> {
+    let command = match a.command.split_first() {
+        None => None,
+        Some((program, _)) if program.is_empty() => {
+            return Err(ValueError::Combination(
+                "alerts.command: the first element (the program) is empty".into(),
+            ))
+        }
+        Some((program, args)) => Some(CommandSink {
+            program: program.clone(),
+            args: args.to_vec(),
+            timeout: Duration::from_secs(a.command_timeout_s.max(1)),
+        }),
+    };
+    let webhook = if a.webhook_url.is_empty() {
+        None
+    } else {
+        if !a.webhook_url.starts_with("http://") && !a.webhook_url.starts_with("https://") {
+            return Err(ValueError::Range {
+                key: "alerts.webhook_url",
+                value: format!("\"{}\"", a.webhook_url),
+                expected: "http://host[:port]/path or https://...".into(),
+            });
+        }
+        Some(WebhookSink {
+            url: a.webhook_url,
+            timeout: Duration::from_secs(positive(
+                "alerts.webhook_timeout_s",
+                a.webhook_timeout_s,
+            )?),
+            retries: check(
+                "alerts.webhook_retries",
+                a.webhook_retries,
+                |r| r <= 10,
+                "0 to 10",
+            )?,
+            backoff: Duration::from_secs(a.webhook_backoff_s),
+            ca_file: a.webhook_ca_file.map(|f| base.join(f)),
+        })
+    };
+    Ok(AlertSettings {
+        command,
+        webhook,
+        file: a.file.map(|f| base.join(f)),
+    })
+}
