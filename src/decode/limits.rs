@@ -1,0 +1,135 @@
+//! The bottom of the decoder: the caps ([`DecodeLimits`]), the error every
+//! reader returns ([`DecodeError`]), and the size check made before a pixel
+//! buffer is allocated. The mapping of the `tiff` crate's errors lives here
+//! too, because both TIFF readers (`tiff.rs` and `tiled_lzw.rs`) need it.
+//!
+//! What this file leaves to others: opening and reading files, and deciding
+//! when each check applies (the readers above it).
+
+use std::path::{Path, PathBuf};
+
+/// Caps applied before any pixel buffer is allocated.
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub struct DecodeLimits {
+    /// Largest accepted width × height of one page.
+    pub max_pixels: u64,
+    /// Largest accepted decoded size of one page, in bytes.
+    pub max_decoded_bytes: u64,
+    /// Most pages walked in a multi-page file.
+    pub max_pages: usize,
+}
+
+impl Default for DecodeLimits {
+    fn default() -> Self {
+        Self {
+            max_pixels: 100_000_000,
+            max_decoded_bytes: 1 << 30,
+            max_pages: 10_000,
+        }
+    }
+}
+
+/// Why a file could not be read. Every variant names the file.
+#[derive(Debug, thiserror::Error)]
+pub enum DecodeError {
+    #[error("{path}: cannot open: {source}")]
+    Open {
+        path: PathBuf,
+        source: std::io::Error,
+    },
+    #[error("{path}: file is empty")]
+    Empty { path: PathBuf },
+    #[error("{path}: file ends early (truncated or still being written): {detail}")]
+    Truncated { path: PathBuf, detail: String },
+    #[error("{path}: not a TIFF or PNG file (unrecognised signature)")]
+    UnknownFormat { path: PathBuf },
+    #[error("{path}: {detail}")]
+    Unsupported { path: PathBuf, detail: String },
+    #[error("{path}: frame too large: {detail}")]
+    TooLarge { path: PathBuf, detail: String },
+    #[error("{path}: page {page} requested but the file has {pages} page(s)")]
+    NoSuchPage {
+        path: PathBuf,
+        page: usize,
+        pages: usize,
+    },
+    #[error("{path}: corrupt image data: {detail}")]
+    Corrupt { path: PathBuf, detail: String },
+}
+
+impl DecodeError {
+    /// True when the file looks incomplete (a short read), so a writer may still
+    /// be busy with it: worth retrying later.
+    pub fn is_incomplete(&self) -> bool {
+        matches!(
+            self,
+            DecodeError::Empty { .. } | DecodeError::Truncated { .. }
+        )
+    }
+}
+
+/// The `tiff` crate's error as a [`DecodeError`] naming `path`: a short read is
+/// [`DecodeError::Truncated`] (worth retrying), the crate's buffer limit is
+/// [`DecodeError::TooLarge`].
+pub(super) fn tiff_error(path: &Path, e: tiff::TiffError) -> DecodeError {
+    use tiff::TiffError as E;
+    let path = path.to_path_buf();
+    match e {
+        E::IoError(io) if io.kind() == std::io::ErrorKind::UnexpectedEof => {
+            DecodeError::Truncated {
+                path,
+                detail: io.to_string(),
+            }
+        }
+        E::UnsupportedError(u) => DecodeError::Unsupported {
+            path,
+            detail: format!("unsupported TIFF feature: {u}"),
+        },
+        E::LimitsExceeded => DecodeError::TooLarge {
+            path,
+            detail: "decoder buffer limit exceeded".into(),
+        },
+        other => DecodeError::Corrupt {
+            path,
+            detail: other.to_string(),
+        },
+    }
+}
+
+/// Refuses a page of `width` × `height` samples of `bytes_per_sample` bytes
+/// that is empty or beyond `limits`, before its buffer is allocated.
+pub(super) fn check_size(
+    path: &Path,
+    width: u64,
+    height: u64,
+    bytes_per_sample: u64,
+    limits: &DecodeLimits,
+) -> Result<(), DecodeError> {
+    let pixels = width.saturating_mul(height);
+    if width == 0 || height == 0 {
+        return Err(DecodeError::Corrupt {
+            path: path.into(),
+            detail: format!("zero-sized frame {width} x {height}"),
+        });
+    }
+    if pixels > limits.max_pixels {
+        return Err(DecodeError::TooLarge {
+            path: path.into(),
+            detail: format!(
+                "{width} x {height} = {pixels} pixels exceeds limits.max_pixels = {}",
+                limits.max_pixels
+            ),
+        });
+    }
+    let bytes = pixels.saturating_mul(bytes_per_sample);
+    if bytes > limits.max_decoded_bytes {
+        return Err(DecodeError::TooLarge {
+            path: path.into(),
+            detail: format!(
+                "{bytes} decoded bytes exceeds limits.max_decoded_mib = {}",
+                limits.max_decoded_bytes >> 20
+            ),
+        });
+    }
+    Ok(())
+}
