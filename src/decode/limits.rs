@@ -1,6 +1,6 @@
 //! The bottom of the decoder: the caps ([`DecodeLimits`]), the error every
-//! reader returns ([`DecodeError`]), and the size check made before a pixel
-//! buffer is allocated. The mapping of the `tiff` crate's errors lives here
+//! reader returns ([`DecodeError`]), and the size checks made before a pixel or
+//! tile buffer is allocated. The mapping of the `tiff` crate's errors lives here
 //! too, because both TIFF readers (`tiff.rs` and `tiled_lzw.rs`) need it.
 //!
 //! What this file leaves to others: opening and reading files, and deciding
@@ -132,4 +132,95 @@ pub(super) fn check_size(
         });
     }
     Ok(())
+}
+
+/// Refuses a page number at or beyond `limits.max_pages`, before the file's
+/// page chain is walked to it.
+pub(super) fn check_page(
+    path: &Path,
+    page: usize,
+    limits: &DecodeLimits,
+) -> Result<(), DecodeError> {
+    if page >= limits.max_pages {
+        return Err(DecodeError::TooLarge {
+            path: path.into(),
+            detail: format!(
+                "page {page} is beyond limits.max_pages = {}",
+                limits.max_pages
+            ),
+        });
+    }
+    Ok(())
+}
+
+/// Refuses a declared tile size of `tile_w` × `tile_h` samples of `bits` bits
+/// that is empty, beyond 65536 on a side, or out of proportion to its
+/// `width` × `height` frame.
+pub(super) fn check_tile_size(
+    path: &Path,
+    tile_w: u32,
+    tile_h: u32,
+    width: u32,
+    height: u32,
+    bits: u8,
+) -> Result<(), DecodeError> {
+    if tile_w == 0 || tile_h == 0 || tile_w > 1 << 16 || tile_h > 1 << 16 {
+        return Err(DecodeError::Corrupt {
+            path: path.into(),
+            detail: format!("tile size {tile_w} x {tile_h}"),
+        });
+    }
+    // A tile buffer is allocated before any data is read: keep it in proportion
+    // to the frame (at most 4x its size, or 16 MiB for small frames).
+    let tile_bytes_declared = u64::from(tile_w) * u64::from(tile_h) * u64::from(bits / 8);
+    let frame_bytes = u64::from(width) * u64::from(height) * u64::from(bits / 8);
+    if tile_bytes_declared > frame_bytes.max(1 << 22) * 4 {
+        return Err(DecodeError::TooLarge {
+            path: path.into(),
+            detail: format!("{tile_w} x {tile_h} tiles for a {width} x {height} frame"),
+        });
+    }
+    Ok(())
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn sizes_are_refused_before_allocation() {
+        let p = Path::new("f.tif");
+        let limits = DecodeLimits {
+            max_pixels: 100,
+            max_decoded_bytes: 150,
+            max_pages: 2,
+        };
+        assert!(check_size(p, 10, 10, 1, &limits).is_ok());
+        assert!(matches!(
+            check_size(p, 0, 10, 1, &limits),
+            Err(DecodeError::Corrupt { .. })
+        ));
+        assert!(matches!(
+            check_size(p, 11, 10, 1, &limits),
+            Err(DecodeError::TooLarge { .. })
+        ));
+        assert!(matches!(
+            check_size(p, 10, 10, 2, &limits),
+            Err(DecodeError::TooLarge { .. })
+        ));
+        assert!(check_page(p, 1, &limits).is_ok());
+        assert!(matches!(
+            check_page(p, 2, &limits),
+            Err(DecodeError::TooLarge { .. })
+        ));
+        assert!(check_tile_size(p, 256, 256, 100, 100, 16).is_ok());
+        assert!(matches!(
+            check_tile_size(p, 0, 256, 100, 100, 16),
+            Err(DecodeError::Corrupt { .. })
+        ));
+        assert!(matches!(
+            check_tile_size(p, 1 << 16, 1 << 16, 100, 100, 16),
+            Err(DecodeError::TooLarge { .. })
+        ));
+    }
 }

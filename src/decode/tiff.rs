@@ -15,7 +15,7 @@ use std::path::Path;
 use tiff::decoder::{Decoder, DecodingResult};
 use tiff::ColorType;
 
-use super::limits::{check_size, tiff_error, DecodeError, DecodeLimits};
+use super::limits::{check_page, check_size, tiff_error, DecodeError, DecodeLimits};
 use super::metadata::{tiff_pixel_size, PixelSizeSource};
 use super::tiled_lzw::read_tiled_lzw;
 use crate::frame::Frame;
@@ -39,15 +39,7 @@ pub(super) fn read_tiff<R: Read + Seek>(
     let pixel_size = tiff_pixel_size(&mut decoder);
     let mut frames = Vec::with_capacity(pages.len());
     for &page in pages {
-        if page >= limits.max_pages {
-            return Err(DecodeError::TooLarge {
-                path: path.into(),
-                detail: format!(
-                    "page {page} is beyond limits.max_pages = {}",
-                    limits.max_pages
-                ),
-            });
-        }
+        check_page(path, page, limits)?;
         if let Err(e) = decoder.seek_to_image(page) {
             return Err(match e {
                 tiff::TiffError::FormatError(tiff::TiffFormatError::ImageFileDirectoryNotFound) => {

@@ -3,8 +3,8 @@
 //! refuses when a writer ends a tile without an end-of-information code.
 //!
 //! What this file leaves to others: every other layout and sample type, and
-//! turning what it returns into a frame (`tiff.rs`); the error type
-//! (`limits.rs`).
+//! turning what it returns into a frame (`tiff.rs`); the error type and the
+//! tile-size check it makes before allocating (`limits.rs`).
 
 use std::io::{Read, Seek};
 use std::path::Path;
@@ -12,7 +12,7 @@ use std::path::Path;
 use tiff::decoder::{Decoder, DecodingResult};
 use tiff::tags::Tag;
 
-use super::limits::{tiff_error, DecodeError};
+use super::limits::{check_tile_size, tiff_error, DecodeError};
 
 /// Tiled LZW pages are decoded here rather than by the `tiff` crate, whose LZW
 /// reader rejects tiles that common writers end without an end-of-information
@@ -49,19 +49,7 @@ pub(super) fn read_tiled_lzw<R: Read + Seek>(
             detail: format!("TIFF predictor {predictor} with integer samples"),
         });
     }
-    if tile_w == 0 || tile_h == 0 || tile_w > 1 << 16 || tile_h > 1 << 16 {
-        return Err(corrupt(format!("tile size {tile_w} x {tile_h}")));
-    }
-    // A tile buffer is allocated before any data is read: keep it in proportion
-    // to the frame (at most 4x its size, or 16 MiB for small frames).
-    let tile_bytes_declared = u64::from(tile_w) * u64::from(tile_h) * u64::from(bits / 8);
-    let frame_bytes = u64::from(width) * u64::from(height) * u64::from(bits / 8);
-    if tile_bytes_declared > frame_bytes.max(1 << 22) * 4 {
-        return Err(DecodeError::TooLarge {
-            path: path.into(),
-            detail: format!("{tile_w} x {tile_h} tiles for a {width} x {height} frame"),
-        });
-    }
+    check_tile_size(path, tile_w, tile_h, width, height, bits)?;
     let offsets = decoder
         .get_tag_u64_vec(Tag::TileOffsets)
         .map_err(|e| tiff_error(path, e))?;
