@@ -32,29 +32,72 @@ impl Default for DecodeLimits {
 /// Why a file could not be read. Every variant names the file.
 #[derive(Debug, thiserror::Error)]
 pub enum DecodeError {
+    /// The file could not be opened, read or repositioned (an I/O error other
+    /// than a short read).
     #[error("{path}: cannot open: {source}")]
     Open {
+        /// The file.
         path: PathBuf,
+        /// The operating system's error.
         source: std::io::Error,
     },
+    /// The file has no bytes (yet).
     #[error("{path}: file is empty")]
-    Empty { path: PathBuf },
+    Empty {
+        /// The file.
+        path: PathBuf,
+    },
+    /// The file ends before its data does: truncated, or still being written.
     #[error("{path}: file ends early (truncated or still being written): {detail}")]
-    Truncated { path: PathBuf, detail: String },
+    Truncated {
+        /// The file.
+        path: PathBuf,
+        /// What was cut short.
+        detail: String,
+    },
+    /// The file starts with neither a TIFF (or BigTIFF) nor a PNG signature.
     #[error("{path}: not a TIFF or PNG file (unrecognised signature)")]
-    UnknownFormat { path: PathBuf },
+    UnknownFormat {
+        /// The file.
+        path: PathBuf,
+    },
+    /// A well-formed file uses something this decoder does not read (colour,
+    /// an unusual bit depth or sample format, a TIFF feature).
     #[error("{path}: {detail}")]
-    Unsupported { path: PathBuf, detail: String },
+    Unsupported {
+        /// The file.
+        path: PathBuf,
+        /// What is not supported and, where there is one, what to do instead.
+        detail: String,
+    },
+    /// A page, a tile or a page number exceeds [`DecodeLimits`] (checked before
+    /// allocating), or the decoder's own buffer limit was reached.
     #[error("{path}: frame too large: {detail}")]
-    TooLarge { path: PathBuf, detail: String },
+    TooLarge {
+        /// The file.
+        path: PathBuf,
+        /// The size found and the limit it exceeds.
+        detail: String,
+    },
+    /// A page beyond the file's last was asked for.
     #[error("{path}: page {page} requested but the file has {pages} page(s)")]
     NoSuchPage {
+        /// The file.
         path: PathBuf,
+        /// The page asked for, counted from 0.
         page: usize,
+        /// How many pages the file has (counted up to `max_pages`).
         pages: usize,
     },
+    /// The image data is malformed: the decoder rejected it, its sizes disagree,
+    /// or the decoder panicked on it.
     #[error("{path}: corrupt image data: {detail}")]
-    Corrupt { path: PathBuf, detail: String },
+    Corrupt {
+        /// The file.
+        path: PathBuf,
+        /// What was wrong.
+        detail: String,
+    },
 }
 
 impl DecodeError {

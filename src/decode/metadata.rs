@@ -17,12 +17,17 @@ use tiff::tags::Tag;
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize)]
 #[serde(rename_all = "kebab-case")]
 pub enum PixelSizeSource {
+    /// The OME-XML `PhysicalSizeX` in the file's ImageDescription.
     OmeXml,
+    /// The file's TIFF XResolution and ResolutionUnit tags.
     ResolutionTags,
+    /// The configured pixel size, not the file.
     Config,
 }
 
 impl PixelSizeSource {
+    /// The name used in output and in the database: `ome-xml`,
+    /// `resolution-tags` or `config` (the same as the serialised form).
     pub fn as_str(self) -> &'static str {
         match self {
             PixelSizeSource::OmeXml => "ome-xml",

@@ -41,6 +41,8 @@ use crate::frame::Frame;
 /// The pages asked for, in the order asked, and the file's own pixel size.
 #[derive(Debug, Clone)]
 pub struct Decoded {
+    /// One frame per page asked, in the order asked (a page asked twice is
+    /// there twice).
     pub frames: Vec<Frame>,
     /// Pixel size in µm from the file's metadata, with its source.
     pub pixel_size: Option<(f64, PixelSizeSource)>,
