@@ -1,6 +1,7 @@
 //! Alert sinks against real receivers: a tiny HTTP server on 127.0.0.1 (answering,
 //! erroring, slow, down), real child processes fed hostile file names, and a
-//! real append-only file. Only loopback traffic; every wait is bounded.
+//! real append-only file; and the webhook settings checked when the
+//! configuration loads. Only loopback traffic; every wait is bounded.
 
 use std::io::{BufRead, BufReader, Read, Write};
 use std::net::TcpListener;
@@ -10,7 +11,7 @@ use std::time::Duration;
 
 use framewarden::qc::alerts::{AlertEvent, AlertState};
 use framewarden::qc::config::{AlertSettings, CommandSink, WebhookSink};
-use framewarden::qc::sinks::{post_once, AlertDispatcher};
+use framewarden::qc::sinks::{AlertDispatcher, CaFile, SinkError, WebhookClient};
 
 fn event(file: &str) -> AlertEvent {
     AlertEvent {
@@ -111,12 +112,27 @@ fn bodies_received(bodies: &mpsc::Receiver<String>, expected: usize) -> Vec<Stri
 
 fn webhook(url: &str, retries: u32) -> WebhookSink {
     WebhookSink {
-        url: url.into(),
+        url: url.parse().unwrap(),
         timeout: Duration::from_millis(300),
         retries,
         backoff: Duration::from_millis(20),
         ca_file: None,
     }
+}
+
+/// One POST through a client made as the dispatcher makes it.
+fn post_once(
+    url: &str,
+    body: &str,
+    timeout: Duration,
+    ca_file: Option<&Path>,
+) -> Result<(), SinkError> {
+    WebhookClient::new(&WebhookSink {
+        timeout,
+        ca_file: ca_file.map(|f| CaFile::load(f).unwrap()),
+        ..webhook(url, 0)
+    })
+    .post_once(body)
 }
 
 fn deliver_via_webhook(sink: WebhookSink, e: &AlertEvent) {
@@ -169,9 +185,10 @@ fn an_erroring_webhook_gives_up_after_its_retries() {
         3,
         "one attempt and two retries"
     );
-    assert_eq!(
-        post_once(&url, "{}", Duration::from_secs(2), None),
-        Err("HTTP status 500".into())
+    let err = post_once(&url, "{}", Duration::from_secs(2), None).unwrap_err();
+    assert!(
+        matches!(err, SinkError::WebhookStatus { status: 500, .. }),
+        "{err:?}"
     );
 }
 
@@ -194,7 +211,18 @@ fn a_down_webhook_fails_cleanly() {
     let port = held.local_addr().unwrap().port();
     let url = format!("http://127.0.0.2:{port}/x");
     let err = post_once(&url, "{}", Duration::from_millis(300), None).unwrap_err();
-    assert!(err.starts_with("connect"), "{err}");
+    let message = err.to_string();
+    match err {
+        SinkError::WebhookConnect { address, source } => {
+            assert_eq!(address, format!("127.0.0.2:{port}"));
+            assert_eq!(source.kind(), std::io::ErrorKind::ConnectionRefused);
+            assert!(
+                message.starts_with(&format!("webhook: connect 127.0.0.2:{port}: ")),
+                "{message}"
+            );
+        }
+        other => panic!("{other:?}"),
+    }
     // The dispatcher logs and moves on: close() returns after the bounded retries.
     deliver_via_webhook(webhook(&url, 1), &event("a.tif"));
     drop(held);
@@ -220,7 +248,7 @@ fn sending_never_waits_for_a_stuck_webhook() {
     });
     let d = AlertDispatcher::start(&AlertSettings {
         webhook: Some(WebhookSink {
-            url,
+            url: url.parse().unwrap(),
             timeout: Duration::from_secs(5),
             retries: 0,
             backoff: Duration::ZERO,
@@ -425,7 +453,8 @@ fn an_https_webhook_with_an_untrusted_certificate_is_refused() {
     // Same server, but the client trusts only the bundled public roots.
     let (url, _ca, bodies, _dir) = tls_server(false);
     let err = post_once(&url, "{}", Duration::from_secs(5), None).unwrap_err();
-    assert!(err.to_lowercase().contains("certificate"), "{err}");
+    assert!(matches!(err, SinkError::WebhookTls { .. }), "{err:?}");
+    assert!(err.to_string().contains("certificate"), "{err}");
     assert!(
         bodies.recv_timeout(Duration::from_millis(200)).is_err(),
         "nothing was delivered"

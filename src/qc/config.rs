@@ -11,6 +11,7 @@ use std::time::Duration;
 use serde::Deserialize;
 
 use crate::qc::drift::Metric;
+use crate::qc::sinks::{CaFile, WebhookUrl};
 
 #[derive(Debug, Deserialize)]
 #[serde(deny_unknown_fields, default)]
@@ -189,10 +190,10 @@ pub struct CommandSink {
 #[derive(Debug, Clone, PartialEq)]
 pub struct WebhookSink {
     /// `http://host[:port]/path` or `https://...`.
-    pub url: String,
+    pub url: WebhookUrl,
     /// Extra trusted CA certificates (PEM) for an https webhook, e.g. an
     /// in-house server's own CA; the bundled public roots are always trusted.
-    pub ca_file: Option<PathBuf>,
+    pub ca_file: Option<CaFile>,
     pub timeout: Duration,
     /// Further attempts after a failed first one.
     pub retries: u32,
@@ -354,23 +355,26 @@ pub fn validate(
     let webhook = if a.webhook_url.is_empty() {
         None
     } else {
-        if !a.webhook_url.starts_with("http://") && !a.webhook_url.starts_with("https://") {
-            return Err(format!(
-                "alerts.webhook_url = \"{}\" (expected http://host[:port]/path or https://...)",
-                a.webhook_url
-            ));
-        }
+        let url: WebhookUrl = a
+            .webhook_url
+            .parse()
+            .map_err(|e| format!("alerts.webhook_url = {e}"))?;
         if a.webhook_timeout_s == 0 || a.webhook_retries > 10 {
             return Err(
                 "alerts.webhook_timeout_s must be positive and webhook_retries at most 10".into(),
             );
         }
+        let ca_file = a
+            .webhook_ca_file
+            .map(|f| CaFile::load(&base.join(f)))
+            .transpose()
+            .map_err(|e| format!("alerts.webhook_ca_file = {e}"))?;
         Some(WebhookSink {
-            url: a.webhook_url,
+            url,
             timeout: Duration::from_secs(a.webhook_timeout_s),
             retries: a.webhook_retries,
             backoff: Duration::from_secs(a.webhook_backoff_s),
-            ca_file: a.webhook_ca_file.map(|f| base.join(f)),
+            ca_file,
         })
     };
     let alerts = AlertSettings {
