@@ -295,7 +295,7 @@ mod tests {
         let text = demo_config(&acq, &db, &alerts);
         let settings = crate::settings::parse(&text, &dir.join("demo.toml"))
             .unwrap()
-            .read_frames()
+            .read_files()
             .unwrap();
         assert_eq!(settings.watch.folders, vec![acq]);
         assert_eq!(settings.store.database, db);

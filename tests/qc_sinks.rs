@@ -1,6 +1,7 @@
 //! Alert sinks against real receivers: a tiny HTTP server on 127.0.0.1 (answering,
 //! erroring, slow, down), real child processes fed hostile file names, and a
-//! real append-only file. Only loopback traffic; every wait is bounded.
+//! real append-only file; and the webhook settings checked when the
+//! configuration loads. Only loopback traffic; every wait is bounded.
 
 use std::io::{BufRead, BufReader, Read, Write};
 use std::net::TcpListener;
@@ -10,7 +11,7 @@ use std::time::Duration;
 
 use framewarden::qc::alerts::{AlertEvent, AlertState};
 use framewarden::qc::params::{AlertSettings, CommandSink, WebhookSink};
-use framewarden::qc::sinks::{post_once, AlertDispatcher};
+use framewarden::qc::sinks::{AlertDispatcher, SinkError, WebhookClient};
 
 fn event(file: &str) -> AlertEvent {
     AlertEvent {
@@ -111,12 +112,27 @@ fn bodies_received(bodies: &mpsc::Receiver<String>, expected: usize) -> Vec<Stri
 
 fn webhook(url: &str, retries: u32) -> WebhookSink {
     WebhookSink {
-        url: url.into(),
+        url: url.parse().unwrap(),
         timeout: Duration::from_millis(300),
         retries,
         backoff: Duration::from_millis(20),
         ca_file: None,
     }
+}
+
+/// One POST through a client made as the dispatcher makes it.
+fn post_once(
+    url: &str,
+    body: &str,
+    timeout: Duration,
+    ca_file: Option<&Path>,
+) -> Result<(), SinkError> {
+    WebhookClient::new(&WebhookSink {
+        timeout,
+        ca_file: ca_file.map(Path::to_path_buf),
+        ..webhook(url, 0)
+    })?
+    .post_once(body)
 }
 
 fn deliver_via_webhook(sink: WebhookSink, e: &AlertEvent) {
@@ -169,9 +185,10 @@ fn an_erroring_webhook_gives_up_after_its_retries() {
         3,
         "one attempt and two retries"
     );
-    assert_eq!(
-        post_once(&url, "{}", Duration::from_secs(2), None),
-        Err("HTTP status 500".into())
+    let err = post_once(&url, "{}", Duration::from_secs(2), None).unwrap_err();
+    assert!(
+        matches!(err, SinkError::WebhookStatus { status: 500, .. }),
+        "{err:?}"
     );
 }
 
@@ -194,7 +211,18 @@ fn a_down_webhook_fails_cleanly() {
     let port = held.local_addr().unwrap().port();
     let url = format!("http://127.0.0.2:{port}/x");
     let err = post_once(&url, "{}", Duration::from_millis(300), None).unwrap_err();
-    assert!(err.starts_with("connect"), "{err}");
+    let message = err.to_string();
+    match err {
+        SinkError::WebhookConnect { address, source } => {
+            assert_eq!(address, format!("127.0.0.2:{port}"));
+            assert_eq!(source.kind(), std::io::ErrorKind::ConnectionRefused);
+            assert!(
+                message.starts_with(&format!("webhook: connect 127.0.0.2:{port}: ")),
+                "{message}"
+            );
+        }
+        other => panic!("{other:?}"),
+    }
     // The dispatcher logs and moves on: close() returns after the bounded retries.
     deliver_via_webhook(webhook(&url, 1), &event("a.tif"));
     drop(held);
@@ -220,7 +248,7 @@ fn sending_never_waits_for_a_stuck_webhook() {
     });
     let d = AlertDispatcher::start(&AlertSettings {
         webhook: Some(WebhookSink {
-            url,
+            url: url.parse().unwrap(),
             timeout: Duration::from_secs(5),
             retries: 0,
             backoff: Duration::ZERO,
@@ -425,9 +453,185 @@ fn an_https_webhook_with_an_untrusted_certificate_is_refused() {
     // Same server, but the client trusts only the bundled public roots.
     let (url, _ca, bodies, _dir) = tls_server(false);
     let err = post_once(&url, "{}", Duration::from_secs(5), None).unwrap_err();
-    assert!(err.to_lowercase().contains("certificate"), "{err}");
+    assert!(matches!(err, SinkError::WebhookTls { .. }), "{err:?}");
+    assert!(err.to_string().contains("certificate"), "{err}");
     assert!(
         bodies.recv_timeout(Duration::from_millis(200)).is_err(),
         "nothing was delivered"
     );
+}
+
+#[test]
+fn a_status_other_than_2xx_is_an_error_naming_it() {
+    // 201 succeeds; a redirect is not followed, and like any other non-2xx
+    // answer it fails with its number.
+    let statuses = [201, 302, 404, 503];
+    let (url, bodies) = server(statuses.len(), Duration::ZERO, move |n| Some(statuses[n]));
+    let port = url.split(':').nth(2).unwrap().split('/').next().unwrap();
+    assert!(post_once(&url, "{}", Duration::from_secs(2), None).is_ok());
+    for status in &statuses[1..] {
+        let err = post_once(&url, "{}", Duration::from_secs(2), None).unwrap_err();
+        assert!(
+            matches!(err, SinkError::WebhookStatus { status: s, .. } if s == *status),
+            "{err:?}"
+        );
+        assert_eq!(
+            err.to_string(),
+            format!("webhook 127.0.0.1:{port}: HTTP status {status}")
+        );
+    }
+    assert_eq!(
+        bodies_received(&bodies, statuses.len()).len(),
+        statuses.len()
+    );
+}
+
+#[test]
+fn a_webhook_that_never_answers_times_out_at_its_timeout() {
+    // The server reads the request and then says nothing for 3 s; the client
+    // gives up after its 300 ms.
+    let (url, _bodies) = server(1, Duration::from_secs(3), |_| None);
+    let started = std::time::Instant::now();
+    let err = post_once(&url, "{}", Duration::from_millis(300), None).unwrap_err();
+    let waited = started.elapsed();
+    assert!(
+        matches!(
+            err,
+            SinkError::WebhookTimeout {
+                waiting_for: "answer",
+                ..
+            }
+        ),
+        "{err:?}"
+    );
+    assert!(
+        err.to_string().ends_with("no answer within 300 ms"),
+        "{err}"
+    );
+    assert!(
+        waited >= Duration::from_millis(250) && waited < Duration::from_secs(2),
+        "{waited:?}"
+    );
+}
+
+#[test]
+fn the_post_says_json_and_names_framewarden() {
+    let listener = TcpListener::bind("127.0.0.1:0").unwrap();
+    let url = format!("http://{}/hooks/night", listener.local_addr().unwrap());
+    let server = std::thread::spawn(move || {
+        let (mut stream, _) = listener.accept().unwrap();
+        stream
+            .set_read_timeout(Some(Duration::from_secs(5)))
+            .unwrap();
+        let mut head = Vec::new();
+        let mut reader = BufReader::new(&mut stream);
+        loop {
+            let mut line = String::new();
+            if reader.read_line(&mut line).unwrap() == 0 || line == "\r\n" {
+                break;
+            }
+            head.push(line.trim_end().to_ascii_lowercase());
+        }
+        let _ =
+            stream.write_all(b"HTTP/1.1 200 OK\r\nContent-Length: 0\r\nConnection: close\r\n\r\n");
+        head
+    });
+    post_once(&url, "{\"a\":1}", Duration::from_secs(2), None).unwrap();
+    let head = server.join().unwrap();
+    assert_eq!(head[0], "post /hooks/night http/1.1");
+    for expected in [
+        "content-type: application/json".to_string(),
+        format!("user-agent: framewarden/{}", env!("CARGO_PKG_VERSION")),
+        "content-length: 7".to_string(),
+    ] {
+        assert!(head.contains(&expected), "{expected} not in {head:?}");
+    }
+}
+
+/// The `[alerts]` section alone, as a configuration file in `dir`.
+fn load_alerts(dir: &Path, alerts: &str) -> Result<AlertSettings, String> {
+    let path = dir.join("framewarden.toml");
+    framewarden::settings::from_text(&format!("[alerts]\n{alerts}\n"), &path)
+        .map(|s| s.alerts)
+        .map_err(|e| e.to_string())
+}
+
+#[test]
+fn a_webhook_url_that_cannot_be_posted_to_stops_the_configuration_loading() {
+    let dir = tempfile::tempdir().unwrap();
+    for (url, reason) in [
+        ("ftp://127.0.0.1/hook", "scheme ftp: only http and https"),
+        ("127.0.0.1:8080/hook", "not a URL"),
+        ("http:///hook", "not a URL"),
+        ("http://:8080/hook", "no host"),
+        (
+            "http://127.0.0.1:65536/hook",
+            "port \"65536\": expected 1 to 65535",
+        ),
+        ("http://127.0.0.1:0/hook", "port \"0\""),
+        ("https://localhost:https/hook", "port \"https\""),
+    ] {
+        let err = load_alerts(dir.path(), &format!("webhook_url = \"{url}\"")).unwrap_err();
+        assert!(err.contains("alerts.webhook_url = "), "{url}: {err}");
+        assert!(err.contains(reason), "{url}: {err}");
+    }
+    let a = load_alerts(dir.path(), "webhook_url = \"http://127.0.0.1:8080/hook\"").unwrap();
+    assert_eq!(a.webhook.unwrap().url.address(), "127.0.0.1:8080");
+}
+
+#[test]
+fn a_ca_file_without_a_usable_certificate_stops_the_configuration_loading() {
+    let dir = tempfile::tempdir().unwrap();
+    let key_only = rcgen::KeyPair::generate().unwrap().serialize_pem();
+    for (name, content, reason) in [
+        ("missing.pem", None, "No such file"),
+        ("empty.pem", Some(String::new()), "holds no certificate"),
+        ("key.pem", Some(key_only), "holds no certificate"),
+        (
+            "broken.pem",
+            Some("-----BEGIN CERTIFICATE-----\n%%%\n-----END CERTIFICATE-----\n".to_string()),
+            "not PEM",
+        ),
+        (
+            "not-der.pem",
+            Some("-----BEGIN CERTIFICATE-----\nAAAA\n-----END CERTIFICATE-----\n".to_string()),
+            "certificate 1",
+        ),
+    ] {
+        if let Some(content) = content {
+            std::fs::write(dir.path().join(name), content).unwrap();
+        }
+        let err = load_alerts(
+            dir.path(),
+            &format!("webhook_url = \"https://localhost:8443/x\"\nwebhook_ca_file = \"{name}\""),
+        )
+        .unwrap_err();
+        let path = dir.path().join(name);
+        assert!(
+            err.contains(&format!("alerts.webhook_ca_file = {}: ", path.display())),
+            "{name}: {err}"
+        );
+        assert!(err.contains(reason), "{name}: {err}");
+    }
+}
+
+#[test]
+fn an_https_webhook_from_the_configuration_reaches_the_in_house_server() {
+    // Loaded as a user writes it: the CA file relative to the configuration.
+    let (url, ca, bodies, dir) = tls_server(true);
+    let a = load_alerts(
+        dir.path(),
+        &format!(
+            "webhook_url = \"{url}\"\nwebhook_ca_file = \"in-house-ca.pem\"\nwebhook_retries = 0"
+        ),
+    )
+    .unwrap();
+    let sink = a.webhook.clone().unwrap();
+    assert_eq!(sink.ca_file.as_deref(), Some(ca.as_path()));
+    let d = AlertDispatcher::start(&a).unwrap();
+    d.send(&event(HOSTILE));
+    d.close();
+    let got: serde_json::Value =
+        serde_json::from_str(&bodies.recv_timeout(Duration::from_secs(5)).unwrap()).unwrap();
+    assert_eq!(got["file"], HOSTILE);
 }

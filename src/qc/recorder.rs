@@ -18,7 +18,7 @@ use crate::qc::flags::explain_recount;
 use crate::qc::metrics::FrameMetrics;
 use crate::qc::monitor::RunMonitor;
 use crate::qc::params::{AlertSettings, QualitySettings};
-use crate::qc::sinks::AlertDispatcher;
+use crate::qc::sinks::{AlertDispatcher, SinkError};
 use crate::store::writer::FrameObserver;
 use crate::store::{now_ms, FrameKey, FRAME_KEY_SQL, POSITION_SQL};
 
@@ -28,9 +28,9 @@ pub enum QcError {
     /// Reading the run's recorded frames failed.
     #[error(transparent)]
     Sqlite(#[from] rusqlite::Error),
-    /// An alert sink's thread could not be started.
+    /// An alert sink could not be started.
     #[error("cannot start an alert sink: {0}")]
-    Sinks(std::io::Error),
+    Sinks(SinkError),
 }
 
 /// Condition of a service restart in the middle of a run.

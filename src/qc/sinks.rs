@@ -5,19 +5,84 @@
 //! dead receiver delays nothing but its own deliveries; when a queue is full the
 //! event is dropped for that sink and logged (it is stored in the database
 //! anyway). Deciding what to send is the monitor's.
+//!
+//! The webhook is posted with `ureq` over rustls (ring's primitives); its URL and
+//! extra CA certificates are checked when the configuration loads
+//! ([`WebhookUrl`], [`CaFile`]), and its HTTP agent is made once, when the
+//! dispatcher starts ([`WebhookClient`]).
 
-use std::io::{Read, Write};
-use std::net::{TcpStream, ToSocketAddrs};
+use std::io::Write;
 use std::path::{Path, PathBuf};
-use std::process::{Command, Stdio};
-use std::sync::Arc;
+use std::process::{Command, ExitStatus, Stdio};
 use std::thread::JoinHandle;
 use std::time::{Duration, Instant};
 
 use crossbeam_channel::{Receiver, Sender, TrySendError};
+use rustls::pki_types::{pem::PemObject, CertificateDer};
 
 use crate::qc::alerts::AlertEvent;
 use crate::qc::params::{AlertSettings, CommandSink, WebhookSink};
+
+/// What went wrong with a sink: a delivery that failed, or (when the
+/// configuration loads) a webhook URL or CA file that cannot be used. Each
+/// message names what failed; webhook messages name the server by `host:port`
+/// only, since a webhook's path often carries its secret.
+#[derive(Debug, thiserror::Error)]
+pub enum SinkError {
+    #[error("cannot start {program}: {source}")]
+    CommandStart {
+        program: String,
+        source: std::io::Error,
+    },
+    #[error("{program} exited with {status}")]
+    CommandFailed { program: String, status: ExitStatus },
+    #[error("{program} still running after {} s; killed", .timeout.as_secs())]
+    CommandTimeout { program: String, timeout: Duration },
+    #[error("waiting for {program}: {source}")]
+    CommandWait {
+        program: String,
+        source: std::io::Error,
+    },
+
+    /// A CA file that cannot be read or holds no usable certificate (found when
+    /// the configuration loads).
+    #[error("{}: {reason}", .path.display())]
+    CaFile { path: PathBuf, reason: String },
+
+    #[error("webhook host {host}: no address found")]
+    WebhookAddress { host: String },
+    #[error("webhook: connect {address}: {source}")]
+    WebhookConnect {
+        address: String,
+        source: std::io::Error,
+    },
+    #[error("webhook {address}: TLS: {reason}")]
+    WebhookTls { address: String, reason: String },
+    #[error("webhook {address}: no {waiting_for} within {} ms", .after.as_millis())]
+    WebhookTimeout {
+        address: String,
+        /// "connection" (address lookup, TCP and TLS) or "answer".
+        waiting_for: &'static str,
+        after: Duration,
+    },
+    #[error("webhook {address}: HTTP status {status}")]
+    WebhookStatus { address: String, status: u16 },
+    #[error("webhook {address}: {reason}")]
+    WebhookExchange { address: String, reason: String },
+    #[error("{attempts} attempts failed, the last: {last}")]
+    WebhookGaveUp { attempts: u32, last: Box<SinkError> },
+
+    #[error("cannot start the {sink} sink's thread: {source}")]
+    Thread {
+        sink: &'static str,
+        source: std::io::Error,
+    },
+    #[error("alert file {}: {source}", .path.display())]
+    File {
+        path: PathBuf,
+        source: std::io::Error,
+    },
+}
 
 /// Events waiting per sink before new ones are dropped for it.
 const QUEUE_CAPACITY: usize = 256;
@@ -31,7 +96,7 @@ pub struct AlertDispatcher {
 
 enum Sink {
     Command(CommandSink),
-    Webhook(WebhookSink),
+    Webhook(WebhookClient),
     File(PathBuf),
 }
 
@@ -44,27 +109,33 @@ impl Sink {
         }
     }
 
-    fn deliver(&self, event: &AlertEvent) -> Result<(), String> {
+    fn deliver(&self, event: &AlertEvent) -> Result<(), SinkError> {
         match self {
             Sink::Command(c) => run_command(c, event),
-            Sink::Webhook(w) => post_with_retries(w, event),
+            Sink::Webhook(w) => w.post_with_retries(event),
             Sink::File(path) => append_line(path, event),
         }
     }
 }
 
 impl AlertDispatcher {
-    /// Starts one thread per configured sink (none when nothing is configured).
+    /// Starts one thread per configured sink (none when nothing is configured);
+    /// a webhook's HTTP agent is made here, once.
     ///
     /// # Errors
-    /// A thread that cannot be started.
-    pub fn start(settings: &AlertSettings) -> std::io::Result<AlertDispatcher> {
+    /// A webhook CA file that cannot be used, or a thread that cannot be started.
+    pub fn start(settings: &AlertSettings) -> Result<AlertDispatcher, SinkError> {
+        let webhook = settings
+            .webhook
+            .as_ref()
+            .map(WebhookClient::new)
+            .transpose()?;
         let sinks = settings
             .command
             .clone()
             .map(Sink::Command)
             .into_iter()
-            .chain(settings.webhook.clone().map(Sink::Webhook))
+            .chain(webhook.map(Sink::Webhook))
             .chain(settings.file.clone().map(Sink::File));
         let mut dispatcher = AlertDispatcher {
             queues: Vec::new(),
@@ -75,7 +146,8 @@ impl AlertDispatcher {
             let name = sink.name();
             let thread = std::thread::Builder::new()
                 .name(format!("alert-{name}"))
-                .spawn(move || deliver_loop(&sink, &event_rx))?;
+                .spawn(move || deliver_loop(&sink, &event_rx))
+                .map_err(|source| SinkError::Thread { sink: name, source })?;
             dispatcher.queues.push((name, event_tx));
             dispatcher.threads.push(thread);
         }
@@ -134,7 +206,7 @@ pub fn to_json(event: &AlertEvent) -> String {
 
 /// Runs the program with its fixed arguments; the alert goes only to stdin and
 /// the environment, so no file name or message can become a command.
-fn run_command(c: &CommandSink, event: &AlertEvent) -> Result<(), String> {
+fn run_command(c: &CommandSink, event: &AlertEvent) -> Result<(), SinkError> {
     let mut child = Command::new(&c.program)
         .args(&c.args)
         .env("FRAMEWARDEN_ALERT_CONDITION", &event.condition)
@@ -149,7 +221,10 @@ fn run_command(c: &CommandSink, event: &AlertEvent) -> Result<(), String> {
         .stdout(Stdio::null())
         .stderr(Stdio::null())
         .spawn()
-        .map_err(|e| format!("cannot start {}: {e}", c.program))?;
+        .map_err(|source| SinkError::CommandStart {
+            program: c.program.clone(),
+            source,
+        })?;
     if let Some(mut stdin) = child.stdin.take() {
         // A program that does not read its input closes the pipe: not an error.
         let _ = stdin.write_all(to_json(event).as_bytes());
@@ -159,174 +234,274 @@ fn run_command(c: &CommandSink, event: &AlertEvent) -> Result<(), String> {
     loop {
         match child.try_wait() {
             Ok(Some(status)) if status.success() => return Ok(()),
-            Ok(Some(status)) => return Err(format!("{} exited with {status}", c.program)),
+            Ok(Some(status)) => {
+                return Err(SinkError::CommandFailed {
+                    program: c.program.clone(),
+                    status,
+                })
+            }
             Ok(None) if Instant::now() >= deadline => {
                 let _ = child.kill();
                 let _ = child.wait();
-                return Err(format!(
-                    "{} still running after {} s; killed",
-                    c.program,
-                    c.timeout.as_secs()
-                ));
+                return Err(SinkError::CommandTimeout {
+                    program: c.program.clone(),
+                    timeout: c.timeout,
+                });
             }
             Ok(None) => std::thread::sleep(Duration::from_millis(20)),
-            Err(e) => return Err(format!("waiting for {}: {e}", c.program)),
-        }
-    }
-}
-
-fn post_with_retries(w: &WebhookSink, event: &AlertEvent) -> Result<(), String> {
-    let body = to_json(event);
-    let mut delay = w.backoff;
-    let mut last_error = String::new();
-    for attempt in 0..=w.retries {
-        if attempt > 0 {
-            std::thread::sleep(delay);
-            delay = delay.saturating_mul(2);
-        }
-        match post_once(&w.url, &body, w.timeout, w.ca_file.as_deref()) {
-            Ok(()) => return Ok(()),
-            Err(e) => {
-                tracing::debug!("webhook attempt {} failed: {e}", attempt + 1);
-                last_error = e;
+            Err(source) => {
+                return Err(SinkError::CommandWait {
+                    program: c.program.clone(),
+                    source,
+                })
             }
         }
     }
-    Err(format!(
-        "{} attempts failed, the last: {last_error}",
-        w.retries + 1
-    ))
 }
 
-/// One HTTP/1.1 POST, over plain TCP for `http://` or TLS for `https://`
-/// (trusting the Mozilla roots bundled by `webpki-roots` plus the certificates in
-/// `ca_file`); success is a 2xx status line.
-///
-/// # Errors
-/// A message naming what failed: the address, the connection, TLS, or the status.
-pub fn post_once(
-    url: &str,
-    body: &str,
-    timeout: Duration,
-    ca_file: Option<&Path>,
-) -> Result<(), String> {
-    let (tls, rest) = if let Some(rest) = url.strip_prefix("https://") {
-        (true, rest)
-    } else if let Some(rest) = url.strip_prefix("http://") {
-        (false, rest)
-    } else {
-        return Err(format!("{url}: only http:// and https:// are supported"));
-    };
-    let (authority, path) = rest.split_at(rest.find('/').unwrap_or(rest.len()));
-    let path = if path.is_empty() { "/" } else { path };
-    // `host:port`, `host`, `[v6]:port` or `[v6]`.
-    let (host, port) = match authority.rsplit_once(':') {
-        Some((h, p)) if !p.contains(']') => (
-            h,
-            p.parse::<u16>()
-                .map_err(|e| format!("{authority}: port: {e}"))?,
-        ),
-        _ => (authority, if tls { 443 } else { 80 }),
-    };
-    let host = host.trim_start_matches('[').trim_end_matches(']');
-    let tcp = connect(host, port, timeout)?;
-    tcp.set_read_timeout(Some(timeout))
-        .and_then(|()| tcp.set_write_timeout(Some(timeout)))
-        .map_err(|e| e.to_string())?;
-    let request = format!(
-        "POST {path} HTTP/1.1\r\nHost: {authority}\r\nUser-Agent: framewarden/{}\r\nContent-Type: application/json\r\nContent-Length: {}\r\nConnection: close\r\n\r\n{body}",
-        env!("CARGO_PKG_VERSION"),
-        body.len()
-    );
-    if tls {
-        let name = rustls::pki_types::ServerName::try_from(host.to_string())
-            .map_err(|e| format!("{host}: {e}"))?;
-        let conn = rustls::ClientConnection::new(client_config(ca_file)?, name)
-            .map_err(|e| format!("TLS: {e}"))?;
-        exchange(&mut rustls::StreamOwned::new(conn, tcp), &request)
-    } else {
-        exchange(&mut { tcp }, &request)
-    }
+/// The extra trusted CA certificates of `[alerts] webhook_ca_file` (PEM), read
+/// and checked when the configuration loads.
+#[derive(Debug, Clone, PartialEq)]
+pub struct CaFile {
+    path: PathBuf,
+    certs: Vec<CertificateDer<'static>>,
 }
 
-/// Connects to the first address of `host` that answers within `timeout`.
-fn connect(host: &str, port: u16, timeout: Duration) -> Result<TcpStream, String> {
-    let addrs: Vec<_> = (host, port)
-        .to_socket_addrs()
-        .map_err(|e| format!("{host}: {e}"))?
-        .collect();
-    let mut last = format!("{host}: no address");
-    for addr in addrs {
-        match TcpStream::connect_timeout(&addr, timeout) {
-            Ok(s) => return Ok(s),
-            Err(e) => last = format!("connect {addr}: {e}"),
+impl CaFile {
+    /// Reads every certificate of the PEM file at `path`.
+    ///
+    /// # Errors
+    /// [`SinkError::CaFile`] naming the file: it cannot be read, is not valid
+    /// PEM, holds no certificate, or holds one that cannot be a trust anchor.
+    pub fn load(path: &Path) -> Result<CaFile, SinkError> {
+        let failed = |reason: String| SinkError::CaFile {
+            path: path.to_path_buf(),
+            reason,
+        };
+        let pem = std::fs::read(path).map_err(|e| failed(e.to_string()))?;
+        let certs = CertificateDer::pem_slice_iter(&pem)
+            .collect::<Result<Vec<_>, _>>()
+            .map_err(|e| failed(format!("not PEM: {e}")))?;
+        if certs.is_empty() {
+            return Err(failed(
+                "holds no certificate (expected PEM blocks \"-----BEGIN CERTIFICATE-----\")".into(),
+            ));
         }
-    }
-    Err(last)
-}
-
-/// Sends the request and reads the status line.
-fn exchange(stream: &mut (impl Read + Write), request: &str) -> Result<(), String> {
-    stream
-        .write_all(request.as_bytes())
-        .and_then(|()| stream.flush())
-        .map_err(|e| format!("send: {e}"))?;
-    let mut head = [0u8; 64];
-    let mut got = 0;
-    while got < 12 {
-        match stream.read(&mut head[got..]) {
-            Ok(0) => break,
-            Ok(n) => got += n,
-            Err(e) => return Err(format!("no answer: {e}")),
-        }
-    }
-    let line = String::from_utf8_lossy(&head[..got]);
-    let status = line
-        .strip_prefix("HTTP/1.")
-        .and_then(|s| s.get(2..5))
-        .and_then(|s| s.parse::<u16>().ok())
-        .ok_or_else(|| format!("not an HTTP answer: {line:?}"))?;
-    if (200..300).contains(&status) {
-        Ok(())
-    } else {
-        Err(format!("HTTP status {status}"))
-    }
-}
-
-/// TLS client settings: safe default protocol versions, ring's primitives, and
-/// the bundled roots plus the certificates of `ca_file` (PEM).
-fn client_config(ca_file: Option<&Path>) -> Result<Arc<rustls::ClientConfig>, String> {
-    use rustls::pki_types::{pem::PemObject, CertificateDer};
-    let mut roots = rustls::RootCertStore {
-        roots: webpki_roots::TLS_SERVER_ROOTS.to_vec(),
-    };
-    if let Some(path) = ca_file {
-        let certs =
-            CertificateDer::pem_file_iter(path).map_err(|e| format!("{}: {e}", path.display()))?;
-        for cert in certs {
-            let cert = cert.map_err(|e| format!("{}: {e}", path.display()))?;
+        // The HTTP client skips certificates it cannot use as roots without a
+        // word; trying each here turns that into an error at load.
+        let mut roots = rustls::RootCertStore::empty();
+        for (n, cert) in certs.iter().enumerate() {
             roots
-                .add(cert)
-                .map_err(|e| format!("{}: {e}", path.display()))?;
+                .add(cert.clone())
+                .map_err(|e| failed(format!("certificate {}: {e}", n + 1)))?;
         }
+        Ok(CaFile {
+            path: path.to_path_buf(),
+            certs,
+        })
     }
-    let provider = Arc::new(rustls::crypto::ring::default_provider());
-    let config = rustls::ClientConfig::builder_with_provider(provider)
-        .with_safe_default_protocol_versions()
-        .map_err(|e| format!("TLS: {e}"))?
-        .with_root_certificates(roots)
-        .with_no_client_auth();
-    Ok(Arc::new(config))
+
+    pub fn path(&self) -> &Path {
+        &self.path
+    }
+
+    pub fn certificates(&self) -> &[CertificateDer<'static>] {
+        &self.certs
+    }
 }
 
-fn append_line(path: &Path, event: &AlertEvent) -> Result<(), String> {
+/// The certificates an https webhook trusts: Mozilla's root list, bundled in
+/// the binary by `webpki-root-certs`, plus those of the CA file.
+fn trusted_roots(ca_file: Option<&CaFile>) -> Vec<ureq::tls::Certificate<'static>> {
+    let extra = ca_file.map(CaFile::certificates).unwrap_or_default();
+    webpki_root_certs::TLS_SERVER_ROOT_CERTS
+        .iter()
+        .chain(extra)
+        .map(|der| ureq::tls::Certificate::from_der(der.as_ref()).to_owned())
+        .collect()
+}
+
+/// A webhook ready to post to: its settings and one HTTP agent, made when the
+/// dispatcher starts and used for every alert.
+pub struct WebhookClient {
+    sink: WebhookSink,
+    agent: ureq::Agent,
+}
+
+impl WebhookClient {
+    /// The agent: rustls with the trusted roots above; `timeout` bounds both the
+    /// connection (lookup, TCP, TLS handshake) and each attempt as a whole; no
+    /// redirect is followed and no proxy from the environment is used (the
+    /// alert goes to the configured server or nowhere); one connection per
+    /// attempt (alerts are rare, and a kept-alive connection would go stale).
+    ///
+    /// # Errors
+    /// [`SinkError::CaFile`] when the CA file cannot be used.
+    pub fn new(sink: &WebhookSink) -> Result<WebhookClient, SinkError> {
+        let ca_file = sink.ca_file.as_deref().map(CaFile::load).transpose()?;
+        let tls = ureq::tls::TlsConfig::builder()
+            .provider(ureq::tls::TlsProvider::Rustls)
+            .root_certs(ureq::tls::RootCerts::from(trusted_roots(ca_file.as_ref())))
+            .build();
+        let agent = ureq::Agent::config_builder()
+            .tls_config(tls)
+            .timeout_connect(Some(sink.timeout))
+            .timeout_global(Some(sink.timeout))
+            .http_status_as_error(false)
+            .max_redirects(0)
+            .proxy(None)
+            .max_idle_connections(0)
+            .user_agent(concat!("framewarden/", env!("CARGO_PKG_VERSION")))
+            .build()
+            .new_agent();
+        Ok(WebhookClient {
+            sink: sink.clone(),
+            agent,
+        })
+    }
+
+    /// One POST of `body` as `application/json`; success is a 2xx status.
+    ///
+    /// # Errors
+    /// A [`SinkError`] naming what failed: the address, the connection, TLS, a
+    /// timeout, or the status.
+    pub fn post_once(&self, body: &str) -> Result<(), SinkError> {
+        let response = self
+            .agent
+            .post(self.sink.url.uri())
+            .header("Content-Type", "application/json")
+            .send(body)
+            .map_err(|e| self.failure(e))?;
+        let status = response.status();
+        if status.is_success() {
+            Ok(())
+        } else {
+            Err(SinkError::WebhookStatus {
+                address: self.sink.url.address(),
+                status: status.as_u16(),
+            })
+        }
+    }
+
+    /// Posts the alert, retrying a failed attempt `retries` times after
+    /// `backoff`, doubling the delay each time.
+    ///
+    /// # Errors
+    /// The only attempt's error, or [`SinkError::WebhookGaveUp`] with the last.
+    pub fn post_with_retries(&self, event: &AlertEvent) -> Result<(), SinkError> {
+        let body = to_json(event);
+        let mut delay = self.sink.backoff;
+        let mut attempt = 1;
+        loop {
+            match self.post_once(&body) {
+                Ok(()) => return Ok(()),
+                Err(e) if attempt > self.sink.retries => {
+                    return Err(if attempt == 1 {
+                        e
+                    } else {
+                        SinkError::WebhookGaveUp {
+                            attempts: attempt,
+                            last: Box::new(e),
+                        }
+                    })
+                }
+                Err(e) => tracing::debug!("webhook attempt {attempt} failed: {e}"),
+            }
+            std::thread::sleep(delay);
+            delay = delay.saturating_mul(2);
+            attempt += 1;
+        }
+    }
+
+    /// Names what a failed request ran into.
+    fn failure(&self, e: ureq::Error) -> SinkError {
+        use std::io::ErrorKind;
+        let address = self.sink.url.address();
+        match e {
+            ureq::Error::HostNotFound => SinkError::WebhookAddress {
+                host: self.sink.url.uri().host().unwrap_or_default().to_string(),
+            },
+            ureq::Error::Timeout(t) => SinkError::WebhookTimeout {
+                address,
+                waiting_for: match t {
+                    ureq::Timeout::Resolve | ureq::Timeout::Connect => "connection",
+                    _ => "answer",
+                },
+                after: self.sink.timeout,
+            },
+            ureq::Error::Rustls(e) => SinkError::WebhookTls {
+                address,
+                reason: e.to_string(),
+            },
+            ureq::Error::Tls(reason) => SinkError::WebhookTls {
+                address,
+                reason: reason.to_string(),
+            },
+            ureq::Error::StatusCode(status) => SinkError::WebhookStatus { address, status },
+            ureq::Error::Protocol(e) => SinkError::WebhookExchange {
+                address,
+                reason: format!("not an HTTP answer: {e}"),
+            },
+            // A refused handshake reaches ureq as an I/O error carrying rustls's.
+            ureq::Error::Io(e) => match e.get_ref().and_then(|i| i.downcast_ref::<rustls::Error>())
+            {
+                Some(tls) => SinkError::WebhookTls {
+                    address,
+                    reason: tls.to_string(),
+                },
+                None if matches!(
+                    e.kind(),
+                    ErrorKind::ConnectionRefused
+                        | ErrorKind::HostUnreachable
+                        | ErrorKind::NetworkUnreachable
+                        | ErrorKind::NetworkDown
+                        | ErrorKind::AddrNotAvailable
+                ) =>
+                {
+                    SinkError::WebhookConnect { address, source: e }
+                }
+                None => SinkError::WebhookExchange {
+                    address,
+                    reason: format!("connection lost: {e}"),
+                },
+            },
+            other => SinkError::WebhookExchange {
+                address,
+                reason: other.to_string(),
+            },
+        }
+    }
+}
+
+fn append_line(path: &Path, event: &AlertEvent) -> Result<(), SinkError> {
+    let failed = |source| SinkError::File {
+        path: path.to_path_buf(),
+        source,
+    };
     let mut file = std::fs::OpenOptions::new()
         .create(true)
         .append(true)
         .open(path)
-        .map_err(|e| format!("{}: {e}", path.display()))?;
+        .map_err(failed)?;
     // One write per line: with O_APPEND a line lands whole at the end.
     let line = format!("{}\n", to_json(event));
-    file.write_all(line.as_bytes())
-        .map_err(|e| format!("{}: {e}", path.display()))
+    file.write_all(line.as_bytes()).map_err(failed)
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn every_bundled_root_reaches_the_tls_settings() {
+        // The client adds roots with rustls's add_parsable_certificates, which
+        // skips what it cannot parse: none of the bundled list may be skipped.
+        let roots = trusted_roots(None);
+        assert_eq!(roots.len(), webpki_root_certs::TLS_SERVER_ROOT_CERTS.len());
+        assert!(roots.len() > 100, "{} roots", roots.len());
+        let mut store = rustls::RootCertStore::empty();
+        let (added, ignored) =
+            store.add_parsable_certificates(roots.iter().map(|c| CertificateDer::from(c.der())));
+        assert_eq!((added, ignored), (roots.len(), 0));
+    }
 }

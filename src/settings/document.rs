@@ -381,20 +381,27 @@ pub struct AlertsSection {
 
 impl From<&AlertSettings> for AlertsSection {
     fn from(a: &AlertSettings) -> Self {
-        let command = a.command.clone().unwrap_or_default();
-        let webhook = a.webhook.clone().unwrap_or_default();
+        let w = a.webhook.as_ref();
         AlertsSection {
             command: a
                 .command
                 .iter()
                 .flat_map(|c| std::iter::once(c.program.clone()).chain(c.args.iter().cloned()))
                 .collect(),
-            command_timeout_s: command.timeout.as_secs(),
-            webhook_url: webhook.url.to_string(),
-            webhook_timeout_s: webhook.timeout.as_secs(),
-            webhook_retries: webhook.retries,
-            webhook_backoff_s: webhook.backoff.as_secs(),
-            webhook_ca_file: webhook.ca_file,
+            command_timeout_s: a
+                .command
+                .as_ref()
+                .map_or(CommandSink::DEFAULT_TIMEOUT, |c| c.timeout)
+                .as_secs(),
+            webhook_url: w.map(|w| w.url.to_string()).unwrap_or_default(),
+            webhook_timeout_s: w
+                .map_or(WebhookSink::DEFAULT_TIMEOUT, |w| w.timeout)
+                .as_secs(),
+            webhook_retries: w.map_or(WebhookSink::DEFAULT_RETRIES, |w| w.retries),
+            webhook_backoff_s: w
+                .map_or(WebhookSink::DEFAULT_BACKOFF, |w| w.backoff)
+                .as_secs(),
+            webhook_ca_file: w.and_then(|w| w.ca_file.clone()),
             file: a.file.clone(),
         }
     }
@@ -402,15 +409,6 @@ impl From<&AlertSettings> for AlertsSection {
 
 impl Default for AlertsSection {
     fn default() -> Self {
-        let defaults = AlertSettings {
-            command: Some(CommandSink::default()),
-            webhook: Some(WebhookSink::default()),
-            file: None,
-        };
-        AlertsSection {
-            command: Vec::new(),
-            webhook_url: String::new(),
-            ..AlertsSection::from(&defaults)
-        }
+        AlertsSection::from(&AlertSettings::default())
     }
 }

@@ -19,6 +19,7 @@ use crate::analysis::Background;
 use crate::decode::{self, DecodeError};
 use crate::pipeline::PipelineParams;
 use crate::qc::params::{AlertSettings, QualitySettings};
+use crate::qc::sinks::{CaFile, SinkError};
 use crate::settings::document::{
     AlertsSection, CalibrationSection, Document, FlatFieldFiles, FrameFile, LimitsSection,
     MeasureSection, QualitySection, SegmentSection, StoreSection, WatchSection,
@@ -76,6 +77,14 @@ pub enum ConfigError {
         /// Why.
         message: String,
     },
+    /// The webhook's CA file cannot be used.
+    #[error("{path}: alerts.webhook_ca_file = {source}")]
+    CaFile {
+        /// The configuration file.
+        path: PathBuf,
+        /// What is wrong with the CA file (it names the file).
+        source: SinkError,
+    },
     /// A flat-field frame is not the one the settings were stored with.
     #[error("{path}: {frame} has changed since these settings were stored (content hash {found}, stored {stored}); restore the file or remove the hash to use it as it is now")]
     FrameChanged {
@@ -110,8 +119,8 @@ pub struct Settings {
     pub flat_field: Option<FlatFieldFiles>,
 }
 
-/// Validated settings whose flat-field frames, if any, are not read yet:
-/// [`Parsed::read_frames`] reads them.
+/// Validated settings whose files (flat-field frames, the webhook's CA file)
+/// are not read yet: [`Parsed::read_files`] reads them.
 #[derive(Debug)]
 pub struct Parsed {
     settings: Settings,
@@ -119,14 +128,26 @@ pub struct Parsed {
 }
 
 impl Parsed {
-    /// Reads the flat-field frames (with the configured `[limits]`), checks
-    /// their content hashes where the settings give one, and records the hashes.
+    /// Checks that the webhook's CA file holds usable certificates, reads the
+    /// flat-field frames (with the configured `[limits]`), checks their content
+    /// hashes where the settings give one, and records the hashes.
     ///
     /// # Errors
-    /// [`ConfigError::Frame`], [`ConfigError::FlatField`] or
-    /// [`ConfigError::FrameChanged`].
-    pub fn read_frames(self) -> Result<Settings, ConfigError> {
+    /// [`ConfigError::CaFile`], [`ConfigError::Frame`],
+    /// [`ConfigError::FlatField`] or [`ConfigError::FrameChanged`].
+    pub fn read_files(self) -> Result<Settings, ConfigError> {
         let Parsed { mut settings, path } = self;
+        if let Some(ca) = settings
+            .alerts
+            .webhook
+            .as_ref()
+            .and_then(|w| w.ca_file.as_deref())
+        {
+            CaFile::load(ca).map_err(|source| ConfigError::CaFile {
+                path: path.clone(),
+                source,
+            })?;
+        }
         let Some(files) = settings.flat_field.as_mut() else {
             return Ok(settings);
         };
@@ -203,12 +224,12 @@ impl Settings {
     /// # Errors
     /// [`ConfigError`] as for [`load`].
     pub fn from_toml(text: &str, name: &str) -> Result<Settings, ConfigError> {
-        parse_anchored(text, Path::new(name), Path::new(""))?.read_frames()
+        parse_anchored(text, Path::new(name), Path::new(""))?.read_files()
     }
 }
 
-/// Reads and validates a configuration file, then reads the flat-field frames
-/// it names. Relative paths in it are anchored at its folder.
+/// Reads and validates a configuration file, then reads the files it names
+/// (flat-field frames, the webhook's CA file). Relative paths in it are anchored at its folder.
 ///
 /// # Errors
 /// [`ConfigError`] naming the file, and the line for syntax and key errors.
@@ -220,13 +241,13 @@ pub fn load(path: &Path) -> Result<Settings, ConfigError> {
     from_text(&text, path)
 }
 
-/// [`parse`], then [`Parsed::read_frames`]: settings from text, with the
-/// flat-field frames it names read.
+/// [`parse`], then [`Parsed::read_files`]: settings from text, with the
+/// files it names read.
 ///
 /// # Errors
 /// [`ConfigError`] as for [`load`].
 pub fn from_text(text: &str, path: &Path) -> Result<Settings, ConfigError> {
-    parse(text, path)?.read_frames()
+    parse(text, path)?.read_files()
 }
 
 /// Parses and validates configuration text without reading anything else;
@@ -388,7 +409,7 @@ exclude_border = true
         let text = "[segment]\nbackground = \"flat-field\"\nflat_frame = \"no-such-flat.tif\"\n";
         // Pure: the missing file is not noticed until the frames are read.
         let parsed = parse(text, Path::new("/nowhere/c.toml")).unwrap();
-        let err = parsed.read_frames().unwrap_err().to_string();
+        let err = parsed.read_files().unwrap_err().to_string();
         assert!(err.contains("/nowhere/no-such-flat.tif"), "{err}");
     }
 
@@ -476,7 +497,10 @@ file = "alerts.jsonl"
 
     #[test]
     fn the_stored_settings_load_back_equal() {
-        let path = Path::new("/etc/framewarden/night.toml");
+        let dir = tempfile::tempdir().unwrap();
+        let ca = rcgen::generate_simple_self_signed(vec!["localhost".into()]).unwrap();
+        std::fs::write(dir.path().join("lab-ca.pem"), ca.cert.pem()).unwrap();
+        let path = &dir.path().join("night.toml");
         for text in ["", EVERYTHING_SET] {
             let settings = from_text(text, path).unwrap();
             let stored = settings.to_toml();
@@ -489,7 +513,7 @@ file = "alerts.jsonl"
         assert_ne!(everything, from_text("", path).unwrap());
         assert_eq!(
             everything.store.database,
-            Path::new("/etc/framewarden/results/night.db")
+            dir.path().join("results/night.db")
         );
     }
 

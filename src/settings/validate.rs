@@ -13,7 +13,7 @@ use crate::naming::NamePattern;
 use crate::pipeline::{Calibration, CalibrationPreference};
 use crate::qc::metrics::Metric;
 use crate::qc::params::{
-    AlertSettings, ChartParams, CommandSink, FlagLimits, QualitySettings, WebhookSink,
+    AlertSettings, ChartParams, CommandSink, FlagLimits, QualitySettings, WebhookSink, WebhookUrl,
 };
 use crate::settings::document::{
     AlertsSection, CalibrationSection, FlatFieldFiles, FrameFile, LimitsSection, QualitySection,
@@ -424,15 +424,12 @@ pub fn alerts(a: AlertsSection, base: &Path) -> Result<AlertSettings, ValueError
     let webhook = if a.webhook_url.is_empty() {
         None
     } else {
-        if !a.webhook_url.starts_with("http://") && !a.webhook_url.starts_with("https://") {
-            return Err(ValueError::Range {
-                key: "alerts.webhook_url",
-                value: format!("\"{}\"", a.webhook_url),
-                expected: "http://host[:port]/path or https://...".into(),
-            });
-        }
+        let url: WebhookUrl = a
+            .webhook_url
+            .parse()
+            .map_err(|e| ValueError::Combination(format!("alerts.webhook_url = {e}")))?;
         Some(WebhookSink {
-            url: a.webhook_url,
+            url,
             timeout: Duration::from_secs(positive(
                 "alerts.webhook_timeout_s",
                 a.webhook_timeout_s,
