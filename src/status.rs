@@ -26,6 +26,8 @@ pub struct StatusReport {
     pub frames_failed: u64,
     /// Objects in done frames (the flattened count where the remedy ran).
     pub objects_total: u64,
+    /// Components the size limits removed in done frames (not in the total).
+    pub objects_size_filtered: u64,
     /// Done frames per minute between the first and the last analysis of the run.
     pub frames_per_minute: Option<f64>,
     /// When the last frame was recorded (UTC, RFC 3339).
@@ -126,6 +128,7 @@ fn query(
         frames_queued: 0,
         frames_failed: 0,
         objects_total: 0,
+        objects_size_filtered: 0,
         frames_per_minute: None,
         last_frame_at: None,
         last_frame_age_s: None,
@@ -159,18 +162,19 @@ fn query(
     let run_id = run.id;
     report.run = Some(run);
 
-    let (seen, done, queued, failed, objects, first_ms, last_ms): (i64, i64, i64, i64, i64, Option<i64>, Option<i64>) =
+    let (seen, done, queued, failed, objects, filtered, first_ms, last_ms): (i64, i64, i64, i64, i64, i64, Option<i64>, Option<i64>) =
         conn.query_row(
             &format!(
                 "SELECT count(*), total(status = 'done'), total(status = 'queued'), total(status = 'failed'),
                         total(CASE WHEN status = 'done' THEN {COUNT_USED_SQL} END),
+                        total(CASE WHEN status = 'done' THEN size_filtered END),
                         min(CASE WHEN status = 'done' THEN analyzed_at_ms END), max(analyzed_at_ms)
                  FROM frames WHERE run_id = ?1"
             ),
             [run_id],
             |r| {
                 let n = |i: usize| r.get::<_, f64>(i).map(|v| v as i64);
-                Ok((r.get(0)?, n(1)?, n(2)?, n(3)?, n(4)?, r.get(5)?, r.get(6)?))
+                Ok((r.get(0)?, n(1)?, n(2)?, n(3)?, n(4)?, n(5)?, r.get(6)?, r.get(7)?))
             },
         )?;
     report.frames_seen = seen as u64;
@@ -178,6 +182,7 @@ fn query(
     report.frames_queued = queued as u64;
     report.frames_failed = failed as u64;
     report.objects_total = objects as u64;
+    report.objects_size_filtered = filtered as u64;
     if let Some(last) = last_ms {
         report.last_frame_at =
             conn.query_row(&format!("SELECT {}", iso_time_sql("?1")), [last], |r| {
@@ -285,12 +290,13 @@ pub fn render(report: &StatusReport) -> String {
     );
     let _ = writeln!(
         out,
-        "frames: {} seen, {} done, {} queued, {} failed; {} objects",
+        "frames: {} seen, {} done, {} queued, {} failed; {} objects ({} more removed by the size filter)",
         report.frames_seen,
         report.frames_done,
         report.frames_queued,
         report.frames_failed,
-        report.objects_total
+        report.objects_total,
+        report.objects_size_filtered
     );
     if let Some(rate) = report.frames_per_minute {
         let _ = writeln!(out, "rate: {rate:.1} frames/min");

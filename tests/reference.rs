@@ -84,6 +84,7 @@ struct ObjectRef {
     major_axis_length: f64,
     minor_axis_length: f64,
     eccentricity: f64,
+    solidity: f64,
 }
 
 /// One page of one reference file, decoded by our decoder.
@@ -425,6 +426,17 @@ fn compare_segmentation(settings: &SegmentParams, pick: fn(&SegmentationRef) -> 
                 ("minor_axis_px", got.minor_axis_px, want.minor_axis_length),
                 ("eccentricity", got.eccentricity, want.eccentricity),
             ];
+            // skimage.measure.regionprops solidity (area / convex_area, the
+            // hull from skimage.morphology.convex_hull_image): within 2%.
+            let (g, w) = (got.solidity, want.solidity);
+            let dev = (g - w).abs() / w.abs().max(1e-9);
+            match worst.iter_mut().find(|(f, _)| *f == "solidity") {
+                Some((_, d)) => *d = d.max(dev),
+                None => worst.push(("solidity", dev)),
+            }
+            if dev > 0.02 {
+                failures.push(format!("{who}: solidity {g}, skimage regionprops {w}"));
+            }
             for (field, g, w) in pairs {
                 let dev = (g - w).abs() / w.abs().max(1.0);
                 match worst.iter_mut().find(|(f, _)| *f == field) {

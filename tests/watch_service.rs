@@ -155,6 +155,7 @@ fn status_polled_while_watch_ingests_never_fails() {
             "frames_queued",
             "frames_failed",
             "objects_total",
+            "objects_size_filtered",
             "last_frame_at",
         ] {
             assert!(doc.get(key).is_some(), "missing {key} in {doc}");

@@ -33,6 +33,16 @@ fn square_sum_below(n: u64) -> u64 {
     }
 }
 
+/// The kept objects of one frame, and how many the size limits removed.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Measured {
+    /// Kept objects, numbered 1.. in raster order of their first pixel.
+    pub objects: Vec<ObjectMeasures>,
+    /// Components dropped for their area (pixel or µm² limits), so that a
+    /// size filter never makes objects vanish silently.
+    pub size_filtered: usize,
+}
+
 /// Measures every component of `comps` on `raw`, drops those the filter
 /// rejects, and numbers the rest 1.. in raster order of their first pixel.
 ///
@@ -43,7 +53,7 @@ pub fn measure(
     comps: &Components,
     filter: &ObjectFilter,
     pixel_size_um: Option<f64>,
-) -> Vec<ObjectMeasures> {
+) -> Measured {
     let (w, h) = (raw.width, raw.height);
     let mut sums = vec![
         Sums {
@@ -73,6 +83,7 @@ pub fn measure(
         s.y_max = s.y_max.max(run.y + 1);
     }
     let area_um2 = |n: u64| pixel_size_um.map(|p| n as f64 * p * p);
+    let mut size_filtered = 0;
     let keep: Vec<bool> = sums
         .iter()
         .map(|s| {
@@ -81,10 +92,11 @@ pub fn measure(
             let um2_ok = area_um2(s.n).is_none_or(|a| {
                 a >= filter.min_area_um2 && (filter.max_area_um2 == 0.0 || a <= filter.max_area_um2)
             });
-            s.n >= filter.min_area_px
+            let size_ok = s.n >= filter.min_area_px
                 && (filter.max_area_px == 0 || s.n <= filter.max_area_px)
-                && um2_ok
-                && !(filter.exclude_border && touches)
+                && um2_ok;
+            size_filtered += usize::from(!size_ok);
+            size_ok && !(filter.exclude_border && touches)
         })
         .collect();
     // Final labels, 1-based, in component (raster) order.
@@ -112,6 +124,7 @@ pub fn measure(
         fill[k as usize] += 1;
     }
     let mut perimeter = vec![0f64; kept_count + 1];
+    let mut convex_area = vec![0u64; kept_count + 1];
     let mut channel_sums = vec![vec![(0u64, 0u16); extra.len()]; kept_count + 1];
     let mut mask = ObjectMask::default();
     for (k, s) in sums.iter().enumerate() {
@@ -124,6 +137,7 @@ pub fn measure(
             .map(|&i| comps.runs[i as usize]);
         mask.reset(s.x_min, s.y_min, s.x_max, s.y_max, runs.clone());
         perimeter[l] = mask.perimeter(runs.clone());
+        convex_area[l] = convex_hull_area(runs.clone(), s.y_min, s.y_max);
         for run in runs {
             for (slot, (_, page)) in channel_sums[l].iter_mut().zip(extra) {
                 let row = &page.row(run.y as usize)[run.x0 as usize..run.x1 as usize];
@@ -132,7 +146,8 @@ pub fn measure(
             }
         }
     }
-    sums.iter()
+    let objects = sums
+        .iter()
         .zip(&final_label)
         .filter(|(_, &l)| l != 0)
         .map(|(s, &l)| {
@@ -158,6 +173,7 @@ pub fn measure(
                 major_axis_px: major,
                 minor_axis_px: minor,
                 eccentricity: ecc,
+                solidity: s.n as f64 / convex_area[l as usize].max(s.n) as f64,
                 channels: extra
                     .iter()
                     .zip(&channel_sums[l as usize])
@@ -170,7 +186,11 @@ pub fn measure(
                     .collect(),
             }
         })
-        .collect()
+        .collect();
+    Measured {
+        objects,
+        size_filtered,
+    }
 }
 
 /// Major and minor axis lengths (4√λ of the covariance eigenvalues) and
@@ -193,6 +213,107 @@ fn ellipse(s: &Sums) -> (f64, f64, f64) {
         0.0
     };
     (4.0 * l1.sqrt(), 4.0 * l2.sqrt(), ecc)
+}
+
+/// Pixels of the object's convex hull: pixels whose centre lies inside (or on)
+/// the convex hull of the object's pixels, each pixel taken as the midpoints
+/// of its four edges (the convention of `skimage.morphology.convex_hull_image`,
+/// which `regionprops`' `solidity` uses). Only each row's leftmost and
+/// rightmost pixels can be hull points; the hull is Andrew's monotone chain
+/// (Andrew 1979) in doubled integer coordinates, then counted row by row.
+///
+/// A U of 5 pixels (`#.#` over `###`) has a hull of 6 pixels: the gap's
+/// centre is inside the hull, so its solidity is 5/6 (unit tests).
+fn convex_hull_area(runs: impl Iterator<Item = Run>, y_min: u32, y_max: u32) -> u64 {
+    let rows = (y_max - y_min) as usize;
+    let mut extent = vec![(u32::MAX, 0u32); rows];
+    for run in runs {
+        let e = &mut extent[(run.y - y_min) as usize];
+        e.0 = e.0.min(run.x0);
+        e.1 = e.1.max(run.x1);
+    }
+    // Doubled coordinates: pixel (x, y) has centre (2x, 2y) and edge midpoints
+    // (2x ± 1, 2y) and (2x, 2y ± 1).
+    let mut points: Vec<(i64, i64)> = Vec::with_capacity(rows * 6);
+    for (i, &(x0, x1)) in extent.iter().enumerate() {
+        if x0 >= x1 {
+            continue;
+        }
+        let y = 2 * (i64::from(y_min) + i as i64);
+        let (left, right) = (2 * i64::from(x0), 2 * (i64::from(x1) - 1));
+        for x in [left, right] {
+            points.extend([(x - 1, y), (x + 1, y), (x, y - 1), (x, y + 1)]);
+        }
+    }
+    points.sort_unstable();
+    points.dedup();
+    let hull = monotone_chain(&points);
+    // Count pixel centres per row: the hull's span at height 2y.
+    let mut area = 0u64;
+    for (i, _) in extent.iter().enumerate() {
+        let y = 2 * (i64::from(y_min) + i as i64);
+        if let Some((lo, hi)) = span_at(&hull, y) {
+            // Centres 2x with lo <= 2x <= hi.
+            let first = (lo / 2.0).ceil() as i64;
+            let last = (hi / 2.0).floor() as i64;
+            area += (last - first + 1).max(0) as u64;
+        }
+    }
+    area
+}
+
+fn cross(o: (i64, i64), a: (i64, i64), b: (i64, i64)) -> i64 {
+    (a.0 - o.0) * (b.1 - o.1) - (a.1 - o.1) * (b.0 - o.0)
+}
+
+/// Convex hull of sorted, distinct points, counter-clockwise, without
+/// collinear points (Andrew 1979, "Another efficient algorithm for convex
+/// hulls in two dimensions").
+fn monotone_chain(points: &[(i64, i64)]) -> Vec<(i64, i64)> {
+    if points.len() < 3 {
+        return points.to_vec();
+    }
+    let mut hull: Vec<(i64, i64)> = Vec::with_capacity(2 * points.len());
+    for pass in 0..2 {
+        let start = hull.len();
+        let iter: Box<dyn Iterator<Item = &(i64, i64)>> = if pass == 0 {
+            Box::new(points.iter())
+        } else {
+            Box::new(points.iter().rev())
+        };
+        for &p in iter {
+            while hull.len() >= start + 2 && cross(hull[hull.len() - 2], hull[hull.len() - 1], p) <= 0
+            {
+                hull.pop();
+            }
+            hull.push(p);
+        }
+        hull.pop();
+    }
+    hull
+}
+
+/// The hull's extent along the horizontal line at height `y` (inclusive), or
+/// `None` when the line misses it.
+fn span_at(hull: &[(i64, i64)], y: i64) -> Option<(f64, f64)> {
+    let mut lo = f64::INFINITY;
+    let mut hi = f64::NEG_INFINITY;
+    let n = hull.len();
+    for i in 0..n {
+        let (a, b) = (hull[i], hull[(i + 1) % n]);
+        if (a.1 - y) * (b.1 - y) > 0 {
+            continue;
+        }
+        if a.1 == b.1 {
+            lo = lo.min(a.0.min(b.0) as f64);
+            hi = hi.max(a.0.max(b.0) as f64);
+        } else {
+            let x = a.0 as f64 + (y - a.1) as f64 * (b.0 - a.0) as f64 / (b.1 - a.1) as f64;
+            lo = lo.min(x);
+            hi = hi.max(x);
+        }
+    }
+    (lo <= hi).then_some((lo, hi))
 }
 
 /// One object's pixels in a zero-padded box around its bounding box, reused
@@ -289,7 +410,7 @@ mod tests {
             pixels: px,
         };
         let c = label(&frame.pixels, w, rows.len(), 0, Connectivity::Eight, true);
-        measure(&frame, &[], &c, &filter, Some(0.5))
+        measure(&frame, &[], &c, &filter, Some(0.5)).objects
     }
 
     const ALL: ObjectFilter = ObjectFilter {
@@ -299,6 +420,45 @@ mod tests {
         max_area_um2: 0.0,
         exclude_border: false,
     };
+
+    #[test]
+    fn solidity_by_hand() {
+        // A rectangle is its own hull: solidity 1.
+        let rect = &objects(&[".....", ".###.", ".###.", "....."], ALL)[0];
+        assert_eq!(rect.solidity, 1.0);
+        // An L of three pixels (1,1), (2,1), (1,2): the hull's edge through the
+        // midpoints (2.5, 1), (2, 1.5), (1.5, 2), (1, 2.5) is x + y = 3.5, and
+        // the missing corner's centre (2, 2) has x + y = 4: outside. 3 / 3.
+        let l = &objects(&["....", ".##.", ".#..", "...."], ALL)[0];
+        assert_eq!(l.solidity, 1.0);
+        // A U: (1,1) and (3,1) over a full row 2. The hull's top edge runs
+        // along y = 0.5 from (1, 0.5) to (3, 0.5), so the gap's centre (2, 1)
+        // is inside: 6 hull pixels for 5, solidity 5 / 6.
+        let u = &objects(&[".....", ".#.#.", ".###.", "....."], ALL)[0];
+        assert!((u.solidity - 5.0 / 6.0).abs() < 1e-12, "{}", u.solidity);
+        // A 5 x 5 ring of 16 pixels (filled holes off): its hull is the 5 x 5
+        // square, 25 pixels, so 16 / 25.
+        let ring = ["#####", "#...#", "#...#", "#...#", "#####"];
+        let w = 5;
+        let px: Vec<u16> = ring
+            .iter()
+            .flat_map(|r| r.bytes().map(|b| if b == b'#' { 100 } else { 0 }))
+            .collect();
+        let frame = Frame {
+            width: w,
+            height: 5,
+            bit_depth: 8,
+            pixels: px,
+        };
+        let c = label(&frame.pixels, w, 5, 0, Connectivity::Eight, false);
+        let o = &measure(&frame, &[], &c, &ALL, None).objects[0];
+        assert_eq!((o.area_px, o.solidity), (16, 0.64));
+        // A plus of 5 pixels: the hull of the edge midpoints is a diamond
+        // through (±1.5, 0) and (0, ±1.5) around the centre, whose 4 corner
+        // pixel centres (±1, ±1) lie outside (|x| + |y| = 2 > 1.5): 5 / 5.
+        let plus = &objects(&[".....", "..#..", ".###.", "..#..", "....."], ALL)[0];
+        assert_eq!(plus.solidity, 1.0);
+    }
 
     #[test]
     fn a_3x2_rectangle_by_hand() {

@@ -23,6 +23,9 @@ pub struct FrameResult {
     /// (5/9 for a flat histogram, higher for two modes); see [`threshold::bimodality`].
     pub bimodality: f64,
     pub object_count: usize,
+    /// Components the size limits (`min_area_px`, `max_area_px`, and the µm²
+    /// limits when the pixel size is known) removed: nothing vanishes silently.
+    pub size_filtered: usize,
     /// Fraction of the frame covered by kept objects (after fill and filters).
     pub foreground_fraction: f64,
     /// Median raw intensity of the pixels the threshold calls background.
@@ -58,6 +61,10 @@ pub struct ObjectMeasures {
     pub major_axis_px: f64,
     pub minor_axis_px: f64,
     pub eccentricity: f64,
+    /// Area / area of the convex hull (pixels whose centre is inside the
+    /// hull), 1 for a convex object; as `skimage.measure.regionprops`'
+    /// `solidity`. Low for objects with dents, such as touching nuclei.
+    pub solidity: f64,
     /// The same intensity measures on each extra page listed in the config,
     /// in config order, measured inside this object.
     pub channels: Vec<ChannelIntensity>,

@@ -77,7 +77,10 @@ pub fn analyze_frame(
         params.connectivity,
         params.fill_holes,
     );
-    let objects = measure::measure(
+    let measure::Measured {
+        objects,
+        size_filtered,
+    } = measure::measure(
         frame,
         extra_pages,
         &components,
@@ -95,6 +98,7 @@ pub fn analyze_frame(
         separability,
         bimodality: threshold::bimodality(&seg_hist),
         object_count: objects.len(),
+        size_filtered,
         foreground_fraction: kept_area as f64 / frame.len().max(1) as f64,
         background_level: q.background_level,
         saturation_fraction: q.saturation_fraction,

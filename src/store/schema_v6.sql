@@ -15,7 +15,11 @@ ALTER TABLE flags RENAME COLUMN kind TO flag;
 ALTER TABLE alerts RENAME COLUMN kind TO condition;
 ALTER TABLE alerts RENAME COLUMN raised_at_ms TO opened_at_ms;
 
--- Objects of the recount are result = 'recount'.
+-- Components the size limits removed, per frame (NULL before v6), so that a
+-- size filter never makes objects vanish silently.
+ALTER TABLE frames ADD COLUMN size_filtered INTEGER;
+
+-- Objects of the recount are result = 'recount'; each object's solidity.
 CREATE TABLE objects_v6 (
     frame_id             INTEGER NOT NULL REFERENCES frames(id) ON DELETE CASCADE,
     result               TEXT    NOT NULL DEFAULT 'raw' CHECK (result IN ('raw', 'recount')),
@@ -36,6 +40,7 @@ CREATE TABLE objects_v6 (
     major_axis_px        REAL NOT NULL,
     minor_axis_px        REAL NOT NULL,
     eccentricity         REAL NOT NULL,
+    solidity             REAL,                   -- area / convex hull area; NULL before v6
     channels             TEXT,                   -- JSON array of per-page intensities
     PRIMARY KEY (frame_id, result, label)
 ) WITHOUT ROWID;

@@ -464,7 +464,7 @@ fn record_done(
                  width = ?6, height = ?7, bit_depth = ?8, method = ?9, threshold = ?10, separability = ?11,
                  object_count = ?12, foreground_fraction = ?13, background_level = ?14,
                  saturation_fraction = ?15, focus = ?16, illumination_change = ?17,
-                 pixel_size_um = ?18, pixel_size_source = ?19, bimodality = ?20
+                 pixel_size_um = ?18, pixel_size_source = ?19, bimodality = ?20, size_filtered = ?21
              WHERE {FRAME_KEY_SQL} AND status <> 'done'
              RETURNING id"
         ))?
@@ -490,6 +490,7 @@ fn record_done(
                 r.pixel_size_um,
                 analysis.pixel_size_source.map(|s| s.as_str()),
                 r.bimodality,
+                r.size_filtered as i64,
             ],
             |row| row.get(0),
         )
@@ -519,15 +520,16 @@ fn insert_objects(
 ) -> rusqlite::Result<()> {
     use rusqlite::types::Value;
     for chunk in objects.chunks(OBJECTS_PER_INSERT) {
-        let row = "(?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)";
+        let row = "(?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)";
         let sql = format!(
             "INSERT INTO objects (frame_id, result, label, area_px, area_um2, centroid_x, centroid_y,
                  bbox_x_min, bbox_y_min, bbox_x_max, bbox_y_max, mean_intensity, integrated_intensity,
-                 max_intensity, perimeter_px, circularity, major_axis_px, minor_axis_px, eccentricity, channels)
+                 max_intensity, perimeter_px, circularity, major_axis_px, minor_axis_px, eccentricity,
+                 solidity, channels)
              VALUES {}",
             vec![row; chunk.len()].join(", ")
         );
-        let mut values: Vec<Value> = Vec::with_capacity(chunk.len() * 20);
+        let mut values: Vec<Value> = Vec::with_capacity(chunk.len() * 21);
         for o in chunk {
             let channels = (!o.channels.is_empty())
                 .then(|| serde_json::to_string(&o.channels).unwrap_or_default());
@@ -551,6 +553,7 @@ fn insert_objects(
                 Value::Real(o.major_axis_px),
                 Value::Real(o.minor_axis_px),
                 Value::Real(o.eccentricity),
+                Value::Real(o.solidity),
                 channels.map_or(Value::Null, Value::Text),
             ]);
         }
@@ -625,6 +628,7 @@ mod tests {
             major_axis_px: 2.0,
             minor_axis_px: 2.0,
             eccentricity: 0.0,
+            solidity: 1.0,
             channels: vec![],
         };
         let objects: Vec<_> = (0..objects)
@@ -643,6 +647,7 @@ mod tests {
                 separability: 0.9,
                 bimodality: 0.8,
                 object_count: objects.len(),
+                size_filtered: 0,
                 foreground_fraction: 0.25,
                 background_level: 1.0,
                 saturation_fraction: 0.0,

@@ -317,6 +317,7 @@ def objects_of(labels, img):
                 "major_axis_length": float(r.axis_major_length),
                 "minor_axis_length": float(r.axis_minor_length),
                 "eccentricity": float(r.eccentricity),
+                "solidity": float(r.solidity),
             }
         )
     return out
