@@ -327,3 +327,68 @@ fn pure_noise_is_told_apart_by_the_bimodality_coefficient() {
         r.bimodality
     );
 }
+
+/// A frame of bright discs (radius `r`) on a dark background; each entry of
+/// `centres` is one disc.
+fn discs(width: usize, height: usize, r: f64, centres: &[(f64, f64)]) -> Frame {
+    let mut pixels = vec![100u16; width * height];
+    for y in 0..height {
+        for x in 0..width {
+            let inside = centres
+                .iter()
+                .any(|&(cx, cy)| (x as f64 - cx).powi(2) + (y as f64 - cy).powi(2) <= r * r);
+            if inside {
+                pixels[y * width + x] = 3000;
+            }
+        }
+    }
+    Frame {
+        width,
+        height,
+        bit_depth: 16,
+        pixels,
+    }
+}
+
+#[test]
+fn touching_pairs_are_reported_as_merged_and_separate_discs_are_not() {
+    // 6 x 6 cells of 40 px; radius 8. In the first row each cell holds two
+    // discs 12 px apart: one object of 367 px, solidity 0.880 (skimage
+    // regionprops on the same mask); the other 5 rows hold single discs of
+    // 197 px, solidity 0.925. Median area 197, so the pairs are above 1.6 x
+    // the median and below 0.9 solidity: 6 of 36 objects look merged.
+    let mut pairs = Vec::new();
+    let mut singles = Vec::new();
+    for row in 0..6 {
+        for col in 0..6 {
+            let (cx, cy) = (20.0 + 40.0 * col as f64, 20.0 + 40.0 * row as f64);
+            if row < 1 {
+                pairs.extend([(cx - 6.0, cy), (cx + 6.0, cy)]);
+            } else {
+                singles.push((cx, cy));
+            }
+        }
+    }
+    let all: Vec<(f64, f64)> = pairs.iter().chain(&singles).copied().collect();
+    let mixed = otsu(&discs(240, 240, 8.0, &all));
+    assert_eq!(mixed.object_count, 36);
+    assert!(
+        (mixed.merged_fraction - 6.0 / 36.0).abs() < 1e-9,
+        "{}",
+        mixed.merged_fraction
+    );
+    let pair = mixed
+        .objects
+        .iter()
+        .find(|o| o.area_px == 367)
+        .expect("a pair");
+    assert!(
+        (pair.solidity - 0.880_095_923).abs() < 1e-6,
+        "{}",
+        pair.solidity
+    );
+    let separate = otsu(&discs(240, 240, 8.0, &singles));
+    assert_eq!(separate.merged_fraction, 0.0);
+    // Each disc alone is convex: its solidity is near 1 (digitised, above 0.9).
+    assert!(separate.objects.iter().all(|o| o.solidity > 0.9));
+}

@@ -43,6 +43,44 @@ pub struct Measured {
     pub size_filtered: usize,
 }
 
+/// Solidity below which a large object looks like several touching ones.
+pub const MERGED_MAX_SOLIDITY: f64 = 0.9;
+/// Area, as a multiple of the frame's median object area, above which a
+/// low-solidity object looks like several touching ones.
+pub const MERGED_MIN_AREA_RATIO: f64 = 1.6;
+
+/// Share of `objects` that look like several touching objects merged into
+/// one: solidity below [`MERGED_MAX_SOLIDITY`] and area above
+/// [`MERGED_MIN_AREA_RATIO`] × the median area (two touching round nuclei
+/// of one size have about twice the area and a solidity near 0.85; one
+/// convex nucleus has a solidity above 0.9 whatever its size). 0 without
+/// objects. Both limits are our judgement, checked on synthetic touching pairs.
+///
+/// ```
+/// use framewarden::analysis::measure::merged_fraction;
+/// assert_eq!(merged_fraction(&[]), 0.0);
+/// ```
+pub fn merged_fraction(objects: &[ObjectMeasures]) -> f64 {
+    if objects.is_empty() {
+        return 0.0;
+    }
+    let mut areas: Vec<u64> = objects.iter().map(|o| o.area_px).collect();
+    areas.sort_unstable();
+    let n = areas.len();
+    let median = if n % 2 == 1 {
+        areas[n / 2] as f64
+    } else {
+        (areas[n / 2 - 1] + areas[n / 2]) as f64 / 2.0
+    };
+    let merged = objects
+        .iter()
+        .filter(|o| {
+            o.solidity < MERGED_MAX_SOLIDITY && o.area_px as f64 > MERGED_MIN_AREA_RATIO * median
+        })
+        .count();
+    merged as f64 / n as f64
+}
+
 /// Measures every component of `comps` on `raw`, drops those the filter
 /// rejects, and numbers the rest 1.. in raster order of their first pixel.
 ///
@@ -282,7 +320,8 @@ fn monotone_chain(points: &[(i64, i64)]) -> Vec<(i64, i64)> {
             Box::new(points.iter().rev())
         };
         for &p in iter {
-            while hull.len() >= start + 2 && cross(hull[hull.len() - 2], hull[hull.len() - 1], p) <= 0
+            while hull.len() >= start + 2
+                && cross(hull[hull.len() - 2], hull[hull.len() - 1], p) <= 0
             {
                 hull.pop();
             }

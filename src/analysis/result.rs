@@ -26,6 +26,9 @@ pub struct FrameResult {
     /// Components the size limits (`min_area_px`, `max_area_px`, and the µm²
     /// limits when the pixel size is known) removed: nothing vanishes silently.
     pub size_filtered: usize,
+    /// Share of the objects that look like several touching ones merged
+    /// (low solidity, large area; see [`crate::analysis::measure::merged_fraction`]).
+    pub merged_fraction: f64,
     /// Fraction of the frame covered by kept objects (after fill and filters).
     pub foreground_fraction: f64,
     /// Median raw intensity of the pixels the threshold calls background.

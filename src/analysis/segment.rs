@@ -99,6 +99,7 @@ pub fn analyze_frame(
         bimodality: threshold::bimodality(&seg_hist),
         object_count: objects.len(),
         size_filtered,
+        merged_fraction: measure::merged_fraction(&objects),
         foreground_fraction: kept_area as f64 / frame.len().max(1) as f64,
         background_level: q.background_level,
         saturation_fraction: q.saturation_fraction,

@@ -20,6 +20,8 @@ pub enum FlagKind {
     UnimodalHistogram,
     SmallForeground,
     UnevenIllumination,
+    /// Many objects look like touching ones merged into one.
+    MergedObjects,
     Saturated,
     OutOfFocus,
     EmptyFrame,
@@ -35,6 +37,7 @@ impl FlagKind {
             FlagKind::UnimodalHistogram => "unimodal_histogram",
             FlagKind::SmallForeground => "small_foreground",
             FlagKind::UnevenIllumination => "uneven_illumination",
+            FlagKind::MergedObjects => "merged_objects",
             FlagKind::Saturated => "saturated",
             FlagKind::OutOfFocus => "out_of_focus",
             FlagKind::EmptyFrame => "empty_frame",
@@ -120,6 +123,22 @@ pub fn frame_flags(m: &FrameMetrics, limits: &FlagLimits, ctx: &PositionContext)
                 "uneven illumination: the background changes by {:.0}% across the frame (limit {:.0}%)",
                 100.0 * m.illumination_change,
                 100.0 * limits.max_illumination_change
+            ),
+        );
+    }
+    if m.object_count >= limits.min_objects_for_merged
+        && m.merged_fraction > limits.max_merged_fraction
+    {
+        flag(
+            FlagKind::MergedObjects,
+            m.merged_fraction,
+            limits.max_merged_fraction,
+            format!(
+                "{:.0}% of the objects look like touching objects merged into one (solidity below {:.2} and more than {:.1} times the median area; limit {:.0}%): the count is likely too low; consider [segment] split = \"distance\"",
+                100.0 * m.merged_fraction,
+                crate::analysis::measure::MERGED_MAX_SOLIDITY,
+                crate::analysis::measure::MERGED_MIN_AREA_RATIO,
+                100.0 * limits.max_merged_fraction
             ),
         );
     }
@@ -260,7 +279,7 @@ mod tests {
         let ctx = context();
         let eps = 1e-9;
         type Set = fn(&mut FrameMetrics, f64);
-        let cases: [(FlagKind, f64, f64, Set); 6] = [
+        let cases: [(FlagKind, f64, f64, Set); 7] = [
             (
                 FlagKind::LowSeparability,
                 l.min_separability,
@@ -284,6 +303,12 @@ mod tests {
                 l.max_illumination_change,
                 eps,
                 |m, v| m.illumination_change = v,
+            ),
+            (
+                FlagKind::MergedObjects,
+                l.max_merged_fraction,
+                eps,
+                |m, v| m.merged_fraction = v,
             ),
             (
                 FlagKind::Saturated,

@@ -20,6 +20,8 @@ pub struct FrameMetrics {
     /// Sarle's bimodality coefficient; NaN when unknown (never flags).
     pub bimodality: f64,
     pub object_count: usize,
+    /// Share of objects that look merged; NaN when unknown (never flags).
+    pub merged_fraction: f64,
     pub foreground_fraction: f64,
     pub background_level: f64,
     pub saturation_fraction: f64,
@@ -35,6 +37,7 @@ impl From<&FrameResult> for FrameMetrics {
             separability: r.separability,
             bimodality: r.bimodality,
             object_count: r.object_count,
+            merged_fraction: r.merged_fraction,
             foreground_fraction: r.foreground_fraction,
             background_level: r.background_level,
             saturation_fraction: r.saturation_fraction,
@@ -136,6 +139,7 @@ impl FrameMetrics {
             separability: 0.9,
             bimodality: 0.9,
             object_count: 40,
+            merged_fraction: 0.0,
             foreground_fraction: 0.05,
             background_level: 6500.0,
             saturation_fraction: 0.0,

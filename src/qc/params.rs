@@ -32,6 +32,10 @@ pub struct FlagLimits {
     pub count_window: usize,
     /// Largest relative change of the count against that median.
     pub max_count_jump: f64,
+    /// Largest share of objects that look like touching ones merged.
+    pub max_merged_fraction: f64,
+    /// The merged-objects flag needs at least this many objects in the frame.
+    pub min_objects_for_merged: usize,
 }
 
 /// Parameters of the drift charts (see [`crate::qc::drift`]).
@@ -118,6 +122,8 @@ impl Default for QualitySettings {
                 min_usual_count: 5.0,
                 count_window: 5,
                 max_count_jump: 0.5,
+                max_merged_fraction: 0.1,
+                min_objects_for_merged: 10,
             },
             charts: ChartParams {
                 baseline_frames: 20,

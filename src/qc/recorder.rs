@@ -322,7 +322,8 @@ impl QcRecorder {
         let mut stmt = conn.prepare(&format!(
             "SELECT file, {POSITION_SQL}, analyzed_at_ms, status,
                     method, threshold, separability, object_count, foreground_fraction,
-                    background_level, saturation_fraction, focus, illumination_change, bimodality
+                    background_level, saturation_fraction, focus, illumination_change, bimodality,
+                    merged_fraction
              FROM frames WHERE run_id = ?1 AND status IN ('done', 'failed') ORDER BY analyzed_at_ms, id"
         ))?;
         let mut rows = stmt.query([self.run_id])?;
@@ -343,6 +344,8 @@ impl QcRecorder {
                     separability: num(6)?,
                     // Rows from before schema 3 have none: unknown, never flags.
                     bimodality: r.get::<_, Option<f64>>(13)?.unwrap_or(f64::NAN),
+                    // Rows from before schema 6 have none: unknown, never flags.
+                    merged_fraction: r.get::<_, Option<f64>>(14)?.unwrap_or(f64::NAN),
                     object_count: r.get::<_, Option<i64>>(7)?.unwrap_or(0).max(0) as usize,
                     foreground_fraction: num(8)?,
                     background_level: num(9)?,

@@ -333,6 +333,8 @@ pub fn quality(q: QualitySection) -> Result<(QualitySettings, Option<Recount>), 
         )?,
         count_window: positive("quality.count_window", q.count_window)?,
         max_count_jump: positive_f64("quality.max_count_jump", q.max_count_jump)?,
+        max_merged_fraction: fraction("quality.max_merged_fraction", q.max_merged_fraction)?,
+        min_objects_for_merged: q.min_objects_for_merged,
     };
     let charted = q
         .charted_metrics

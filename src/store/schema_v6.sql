@@ -18,6 +18,8 @@ ALTER TABLE alerts RENAME COLUMN raised_at_ms TO opened_at_ms;
 -- Components the size limits removed, per frame (NULL before v6), so that a
 -- size filter never makes objects vanish silently.
 ALTER TABLE frames ADD COLUMN size_filtered INTEGER;
+-- Share of objects that look like touching ones merged into one (NULL before v6).
+ALTER TABLE frames ADD COLUMN merged_fraction REAL;
 
 -- Objects of the recount are result = 'recount'; each object's solidity.
 CREATE TABLE objects_v6 (

@@ -464,7 +464,8 @@ fn record_done(
                  width = ?6, height = ?7, bit_depth = ?8, method = ?9, threshold = ?10, separability = ?11,
                  object_count = ?12, foreground_fraction = ?13, background_level = ?14,
                  saturation_fraction = ?15, focus = ?16, illumination_change = ?17,
-                 pixel_size_um = ?18, pixel_size_source = ?19, bimodality = ?20, size_filtered = ?21
+                 pixel_size_um = ?18, pixel_size_source = ?19, bimodality = ?20, size_filtered = ?21,
+                 merged_fraction = ?22
              WHERE {FRAME_KEY_SQL} AND status <> 'done'
              RETURNING id"
         ))?
@@ -491,6 +492,7 @@ fn record_done(
                 analysis.pixel_size_source.map(|s| s.as_str()),
                 r.bimodality,
                 r.size_filtered as i64,
+                r.merged_fraction,
             ],
             |row| row.get(0),
         )
@@ -648,6 +650,7 @@ mod tests {
                 bimodality: 0.8,
                 object_count: objects.len(),
                 size_filtered: 0,
+                merged_fraction: 0.0,
                 foreground_fraction: 0.25,
                 background_level: 1.0,
                 saturation_fraction: 0.0,
