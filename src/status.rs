@@ -41,8 +41,8 @@ pub struct StatusReport {
     pub flag_counts: Vec<crate::qc::report::FlagCount>,
     /// The most recent frames with quality flags or a failure, newest first.
     pub flagged_frames: Vec<crate::qc::report::FlaggedFrame>,
-    /// One line per position (well, and site) when the file-name pattern
-    /// names them; empty otherwise.
+    /// One line per position (well, site, channel) when the file-name pattern
+    /// names any of them; empty otherwise.
     pub positions: Vec<PositionSummary>,
 }
 

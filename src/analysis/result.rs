@@ -20,7 +20,8 @@ pub struct FrameResult {
     /// reported whatever the method. 0 for a constant frame.
     pub separability: f64,
     /// Sarle's bimodality coefficient of the segmented image's histogram
-    /// (5/9 for a flat histogram, higher for two modes); see [`threshold::bimodality`].
+    /// (5/9 for a flat histogram, higher for two modes); see
+    /// [`crate::analysis::threshold::bimodality`].
     pub bimodality: f64,
     pub object_count: usize,
     /// Fraction of the frame covered by kept objects (after fill and filters).

@@ -33,7 +33,7 @@ impl AlertState {
 /// One alert event, as stored, logged and sent to the sinks.
 #[derive(Debug, Clone, PartialEq, Serialize)]
 pub struct AlertEvent {
-    /// What is wrong: `drift:<metric>`, `stalled`, `low_disk_space`,
+    /// What is wrong: `drift:<metric>`, `stalled`, `low_disk_space:<volume>`,
     /// `failure_rate`; or what happened: `service_restarted`, `run_complete`.
     pub condition: String,
     pub state: AlertState,
