@@ -23,42 +23,72 @@ pub const DEFAULT_SCENARIO: &str = include_str!("../demo-data/plate-timelapse.to
 #[derive(Debug, Clone, Deserialize)]
 #[serde(deny_unknown_fields)]
 pub struct Scenario {
+    /// Wells imaged at every time point (e.g. `A01`); must not be empty.
     pub wells: Vec<String>,
+    /// Channel name written into every file name.
     pub channel: String,
+    /// Number of time points (at least 1).
     pub time_points: usize,
+    /// Time from the start of one time point to the next, in ms.
     pub interval_ms: u64,
+    /// Width and height of every frame, in pixels.
     pub size_px: usize,
+    /// Bits per sample of the frames: 8 or 16.
     pub bit_depth: u8,
+    /// Objects per well at time point 0.
     pub start_objects: usize,
+    /// Factor by which each well's object count grows per time point.
     pub growth_per_step: f64,
+    /// Time point from which the lamp dims and the illumination gradient grows,
+    /// reaching `lamp_end` and `gradient_end` at the last time point.
     pub decline_from: usize,
+    /// Lamp brightness at the last time point (1 = nominal).
     pub lamp_end: f64,
+    /// Illumination gradient at the last time point: (max − min) / mean across the
+    /// frame.
     pub gradient_end: f64,
+    /// Pieces each file is written in, with pauses between them (at least 1).
     pub chunks: usize,
+    /// Pause after each piece, in ms.
     pub chunk_pause_ms: u64,
+    /// Every n-th file is written under a temporary name and renamed when
+    /// complete; 0 = never.
     pub temp_name_every: usize,
+    /// Suffix of the temporary name (e.g. `.part`).
     pub temp_suffix: String,
+    /// One file cut off half-way, never finished; `None` = every file is whole.
     pub corrupt: Option<CorruptFile>,
 }
 
+/// The file of a scenario that is written truncated.
 #[derive(Debug, Clone, Deserialize)]
 #[serde(deny_unknown_fields)]
 pub struct CorruptFile {
+    /// Its well.
     pub well: String,
+    /// Its time point.
     pub time_point: usize,
 }
 
+/// Why the demo could not run.
 #[derive(Debug, thiserror::Error)]
 pub enum DemoError {
+    /// The scenario (or the demo's own settings) is invalid, or a frame could not
+    /// be drawn; the message says why.
     #[error("scenario: {0}")]
     Scenario(String),
+    /// A folder or file of the demo could not be created or written.
     #[error("demo folder {path}: {source}")]
     Io {
+        /// The folder or file.
         path: PathBuf,
+        /// The cause.
         source: std::io::Error,
     },
+    /// The watch service did not start.
     #[error(transparent)]
     Watch(#[from] WatchError),
+    /// The database could not be read for the status.
     #[error(transparent)]
     Store(#[from] crate::store::StoreError),
 }
@@ -78,6 +108,8 @@ impl Scenario {
         Ok(s)
     }
 
+    /// File name of one well's frame at time point `t`:
+    /// `<well>_t<tttt>_<channel>.tif`.
     pub fn file_name(&self, well: &str, t: usize) -> String {
         format!("{well}_t{t:04}_{}.tif", self.channel)
     }

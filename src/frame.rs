@@ -9,10 +9,13 @@
 /// keep 256 levels; 16-bit data keeps all 65,536 levels.
 #[derive(Debug, Clone, PartialEq, Eq)]
 pub struct Frame {
+    /// Width in pixels (samples per row).
     pub width: usize,
+    /// Height in pixels (number of rows).
     pub height: usize,
     /// Significant bits per sample: 8 or 16.
     pub bit_depth: u8,
+    /// Samples, row by row: `width * height` of them, each at most [`Frame::max_value`].
     pub pixels: Vec<u16>,
 }
 
@@ -85,10 +88,12 @@ impl Frame {
         usize::from(self.max_value()) + 1
     }
 
+    /// Number of pixels (`width * height`).
     pub fn len(&self) -> usize {
         self.pixels.len()
     }
 
+    /// True when the frame has no pixels.
     pub fn is_empty(&self) -> bool {
         self.pixels.is_empty()
     }

@@ -15,14 +15,18 @@ use crate::store::{self, iso_time_sql, now_ms, StoreError, COUNT_USED_SQL, POSIT
 /// Everything `status` shows; `--json` prints it as one document.
 #[derive(Debug, Clone, Serialize, PartialEq)]
 pub struct StatusReport {
+    /// Path of the database read.
     pub database: String,
     /// The current or last run; `None` before the first frame was ever seen.
     pub run: Option<RunInfo>,
     /// Files recorded in this run (any status).
     pub frames_seen: u64,
+    /// Files of this run analyzed with a result.
     pub frames_done: u64,
     /// Complete files queued for analysis or being analyzed.
     pub frames_queued: u64,
+    /// Files of this run recorded as failed (no result: unreadable, still
+    /// incomplete after the retries, or interrupted too often).
     pub frames_failed: u64,
     /// Objects in done frames (the flattened count where the remedy ran).
     pub objects_total: u64,
@@ -32,6 +36,7 @@ pub struct StatusReport {
     pub frames_per_minute: Option<f64>,
     /// When the last frame was recorded (UTC, RFC 3339).
     pub last_frame_at: Option<String>,
+    /// Seconds from `last_frame_at` to the moment the status was read.
     pub last_frame_age_s: Option<f64>,
     /// The most recent frames, newest first.
     pub frames: Vec<RecentFrame>,
@@ -43,49 +48,69 @@ pub struct StatusReport {
     pub flag_counts: Vec<crate::qc::report::FlagCount>,
     /// The most recent frames with quality flags or a failure, newest first.
     pub flagged_frames: Vec<crate::qc::report::FlaggedFrame>,
-    /// One line per position (well, and site) when the file-name pattern
-    /// names them; empty otherwise.
+    /// One line per position (well, site, channel) when the file-name pattern
+    /// names any of them; empty otherwise.
     pub positions: Vec<PositionSummary>,
 }
 
 /// A position's frames and counts over the run.
 #[derive(Debug, Clone, Serialize, PartialEq)]
 pub struct PositionSummary {
+    /// Well, site and channel, whichever the file-name pattern names (e.g.
+    /// `A01 site 2 channel dapi`); see [`crate::store::POSITION_SQL`].
     pub position: String,
+    /// Files of the position analyzed with a result.
     pub frames_done: u64,
+    /// Files of the position recorded as failed.
     pub frames_failed: u64,
     /// Done frames with at least one quality flag.
     pub frames_flagged: u64,
-    /// Counts used (flattened recount where the remedy ran) of the position's
-    /// first and last done frames, in the order they were recorded, and the
-    /// smallest and largest.
+    /// Count used (the recount where the uneven-illumination remedy ran) of the
+    /// position's first done frame, in recording order.
     pub first_count: Option<i64>,
+    /// Count used of the position's last done frame.
     pub last_count: Option<i64>,
+    /// Smallest count used among the position's done frames.
     pub min_count: Option<i64>,
+    /// Largest count used among the position's done frames.
     pub max_count: Option<i64>,
 }
 
+/// One run: an acquisition being watched (a restart of the service continues
+/// it).
 #[derive(Debug, Clone, Serialize, PartialEq)]
 pub struct RunInfo {
+    /// Run number, as `status --run N` takes it.
     pub id: i64,
+    /// The watched folders.
     pub folders: Vec<String>,
+    /// When the run started (UTC, RFC 3339).
     pub started_at: String,
     /// `None` while the run is being watched.
     pub ended_at: Option<String>,
 }
 
+/// One recorded version of a file, as `status` lists it.
 #[derive(Debug, Clone, Serialize, PartialEq)]
 pub struct RecentFrame {
+    /// The file's path.
     pub file: String,
+    /// 1 for the first version of this path, +1 for each rewrite of it.
     pub version: i64,
+    /// `queued`, `done` or `failed`.
     pub status: String,
     /// The count used: the flattened recount where the uneven-illumination
     /// remedy ran, otherwise the first result's.
     pub object_count: Option<i64>,
     /// The first result's threshold (a flattened recount thresholds other pixels).
     pub threshold: Option<f64>,
+    /// Why the file failed; `None` unless `status` is `failed`.
     pub error: Option<String>,
+    /// When the result or failure was recorded (UTC, RFC 3339); `None` while
+    /// queued.
     pub analyzed_at: Option<String>,
+    /// Time from the file being judged complete to its result or failure being
+    /// recorded, in ms; `None` while queued.
     pub latency_ms: Option<i64>,
 }
 

@@ -30,10 +30,13 @@ use crate::frame::Frame;
 /// frame by frame over one layout (see [`layout`] and [`render`]).
 #[derive(Debug, Clone, PartialEq)]
 pub struct SceneSpec {
+    /// Frame width in pixels.
     pub width: usize,
+    /// Frame height in pixels.
     pub height: usize,
     /// 8 or 16.
     pub bit_depth: u8,
+    /// Number of objects to place.
     pub object_count: usize,
     /// Range of the semi-major axis, in pixels (`min <= max`, `min >= 1`).
     pub radius_px: (f64, f64),
@@ -67,6 +70,7 @@ pub struct SceneSpec {
     /// border, in pixels (at least 2, so counts are unambiguous under
     /// 8-connectivity).
     pub min_gap_px: f64,
+    /// Seed of the layout, and of the noise when rendered by [`generate`].
     pub seed: u64,
 }
 
@@ -110,13 +114,17 @@ const MAX_ATTEMPTS: usize = 20_000;
 pub struct TruthObject {
     /// Centre of the drawn ellipse (pixel coordinates, x = column).
     pub centre_x: f64,
+    /// Centre of the drawn ellipse, y (row).
     pub centre_y: f64,
+    /// Semi-major axis in pixels.
     pub semi_major_px: f64,
+    /// Semi-minor axis in pixels (at least 1).
     pub semi_minor_px: f64,
     /// Orientation of the major axis, radians from +x towards +y.
     pub angle_rad: f64,
     /// Level before illumination and lamp, fraction of full scale.
     pub level: f64,
+    /// Whether the object is drawn as a ring, its hole left at background level.
     pub has_hole: bool,
     /// Pixels of the filled object (hole included), as rasterised.
     pub area_px: u64,
@@ -124,13 +132,16 @@ pub struct TruthObject {
     pub hole_px: u64,
     /// Centroid of the filled object's pixels.
     pub centroid_x: f64,
+    /// Centroid of the filled object's pixels, y (row).
     pub centroid_y: f64,
 }
 
 /// A rendered frame and the truth it was drawn from.
 #[derive(Debug, Clone)]
 pub struct Scene {
+    /// The rendered frame.
     pub frame: Frame,
+    /// The objects drawn in it, in placement order.
     pub objects: Vec<TruthObject>,
 }
 
@@ -144,13 +155,19 @@ impl Scene {
 /// Errors from an impossible scene description.
 #[derive(Debug, thiserror::Error, PartialEq)]
 pub enum SynthError {
+    /// A spec value is out of range; the message names it.
     #[error("scene spec: {0}")]
     Invalid(String),
+    /// The objects did not all fit with the required gaps.
     #[error("placed only {placed} of {requested} objects in {width} x {height}: use fewer or smaller objects")]
     NoRoom {
+        /// Objects placed before giving up.
         placed: usize,
+        /// Objects asked for (`object_count`).
         requested: usize,
+        /// Frame width in pixels.
         width: usize,
+        /// Frame height in pixels.
         height: usize,
     },
 }

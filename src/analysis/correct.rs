@@ -180,7 +180,9 @@ fn grey_pass(
 /// `corrected = (raw - dark) / (flat - dark) × mean(flat - dark)`.
 #[derive(Clone, PartialEq)]
 pub struct FlatField {
+    /// Width in pixels of the flat frame (frames corrected must match it).
     pub width: usize,
+    /// Height in pixels of the flat frame (frames corrected must match it).
     pub height: usize,
     dark: Vec<u16>,
     /// `mean(flat - dark) / (flat - dark)` per pixel (0 where flat <= dark).

@@ -15,8 +15,11 @@ use crate::analysis::simd::multiversion;
 /// A horizontal run `[x0, x1)` on row `y`.
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
 pub struct Run {
+    /// Row (0-based).
     pub y: u32,
+    /// First column of the run (inclusive).
     pub x0: u32,
+    /// Column after the run's last pixel (exclusive).
     pub x1: u32,
 }
 

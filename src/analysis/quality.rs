@@ -12,11 +12,21 @@ pub fn is_uneven(illumination_change: f64, max_illumination_change: f64) -> bool
     illumination_change > max_illumination_change
 }
 
+/// The quality measures of one frame, as [`assess`] computes them.
 #[derive(Debug, Clone, Copy, PartialEq)]
 pub struct FrameQuality {
+    /// Median raw intensity of the pixels the threshold calls background
+    /// (`segmented <= t`); 0 when there are none.
     pub background_level: f64,
+    /// Fraction (0..1) of raw pixels at the top of the bit depth (255 or 65535).
     pub saturation_fraction: f64,
+    /// Variance of the 4-neighbour Laplacian of the raw frame over interior pixels;
+    /// 0 for a frame under 3 pixels wide or high. Compare within a run only: it
+    /// depends on content and brightness.
     pub focus: f64,
+    /// (max − min) / mean of the surface fitted to the blocks' background means (see
+    /// [`illumination`]); 0 for an even field, a dark background or too few
+    /// background blocks.
     pub illumination_change: f64,
 }
 

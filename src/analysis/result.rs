@@ -9,8 +9,11 @@ use serde::Serialize;
 /// Everything measured on one frame.
 #[derive(Debug, Clone, Serialize, PartialEq)]
 pub struct FrameResult {
+    /// Frame width in pixels.
     pub width: usize,
+    /// Frame height in pixels.
     pub height: usize,
+    /// Significant bits per sample of the frame: 8 or 16.
     pub bit_depth: u8,
     /// Threshold method that produced `threshold` (`otsu`, `triangle`, ...).
     pub method: String,
@@ -20,8 +23,10 @@ pub struct FrameResult {
     /// reported whatever the method. 0 for a constant frame.
     pub separability: f64,
     /// Sarle's bimodality coefficient of the segmented image's histogram
-    /// (5/9 for a flat histogram, higher for two modes); see [`threshold::bimodality`].
+    /// (5/9 for a flat histogram, higher for two modes); see
+    /// [`crate::analysis::threshold::bimodality`].
     pub bimodality: f64,
+    /// Number of objects kept by the object filters (`objects.len()`).
     pub object_count: usize,
     /// Components the size limits (`min_area_px`, `max_area_px`, and the µm²
     /// limits when the pixel size is known) removed: nothing vanishes silently.
@@ -42,6 +47,7 @@ pub struct FrameResult {
     pub illumination_change: f64,
     /// Pixel size used for µm² areas, when known.
     pub pixel_size_um: Option<f64>,
+    /// The kept objects, in label order.
     pub objects: Vec<ObjectMeasures>,
 }
 
@@ -50,19 +56,38 @@ pub struct FrameResult {
 pub struct ObjectMeasures {
     /// 1-based, in raster order of each object's first pixel.
     pub label: u32,
+    /// Object area in pixels, filled holes included when hole filling is on.
     pub area_px: u64,
+    /// Area in µm² (`area_px` × pixel size²); `None` when the pixel size is unknown.
     pub area_um2: Option<f64>,
+    /// Mean column of the object's pixels (px, 0-based, pixel centres at integers).
     pub centroid_x: f64,
+    /// Mean row of the object's pixels (px, 0-based, pixel centres at integers).
     pub centroid_y: f64,
     /// `[x_min, y_min, x_max, y_max]`, max exclusive.
     pub bbox: [u32; 4],
+    /// Mean raw intensity of the object's pixels on the segmented page (before any
+    /// correction).
     pub mean_intensity: f64,
+    /// Sum of the raw intensities of the object's pixels.
     pub integrated_intensity: f64,
+    /// Highest raw intensity among the object's pixels.
     pub max_intensity: f64,
+    /// Perimeter in pixels with the weights of `skimage.measure.perimeter`
+    /// (4-neighbourhood): each border pixel counts 1, √2 or (1+√2)/2 by the shape
+    /// of the border around it.
     pub perimeter_px: f64,
+    /// 4πA/P² from `area_px` and `perimeter_px`: about 1 for a disc, lower for
+    /// elongated or ragged shapes; 0 when the perimeter is 0. Not capped: objects
+    /// of a few pixels can exceed 1.
     pub circularity: f64,
+    /// Major axis length (px) of the ellipse with the object's second central
+    /// moments: 4√λ₁, λ₁ the larger eigenvalue of the pixel coordinates' covariance.
     pub major_axis_px: f64,
+    /// Minor axis length (px) of the same ellipse: 4√λ₂, λ₂ the smaller eigenvalue.
     pub minor_axis_px: f64,
+    /// Eccentricity √(1 − λ₂/λ₁) of the same ellipse: 0 for a circle (and for a
+    /// single pixel), 1 for a straight line one pixel wide.
     pub eccentricity: f64,
     /// Area / area of the convex hull (pixels whose centre is inside the
     /// hull), 1 for a convex object; as `skimage.measure.regionprops`'
@@ -73,25 +98,39 @@ pub struct ObjectMeasures {
     pub channels: Vec<ChannelIntensity>,
 }
 
+/// Intensity measures of one extra page inside one object.
 #[derive(Debug, Clone, Serialize, PartialEq)]
 pub struct ChannelIntensity {
+    /// Page of the file these were measured on (0-based, as listed in
+    /// `[measure] pages`).
     pub page: usize,
+    /// Mean intensity of that page over the object's pixels.
     pub mean_intensity: f64,
+    /// Sum of that page's intensities over the object's pixels.
     pub integrated_intensity: f64,
+    /// Highest intensity of that page among the object's pixels.
     pub max_intensity: f64,
 }
 
 /// Why a frame could not be analyzed (the frame itself was readable).
 #[derive(Debug, Clone, PartialEq, Eq, thiserror::Error)]
 pub enum AnalysisError {
+    /// An extra page's size differs from the segmented page's.
     #[error("page {page} is {got_w}x{got_h} but the segmented page is {want_w}x{want_h}")]
     PageSize {
+        /// The extra page (0-based).
         page: usize,
+        /// Its width in pixels.
         got_w: usize,
+        /// Its height in pixels.
         got_h: usize,
+        /// The segmented page's width in pixels.
         want_w: usize,
+        /// The segmented page's height in pixels.
         want_h: usize,
     },
+    /// The flat-field correction could not be applied to the frame (its size differs
+    /// from the flat frame's); the message says how.
     #[error("flat-field correction: {0}")]
     FlatField(String),
 }

@@ -11,6 +11,7 @@ use crate::frame::Frame;
 pub struct Histogram {
     /// `counts[v]` = number of pixels with value `v`; length 256 or 65,536.
     pub counts: Vec<u64>,
+    /// Number of pixels counted (the sum of `counts`).
     pub total: u64,
 }
 

@@ -14,8 +14,11 @@ use serde::Serialize;
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize)]
 #[serde(rename_all = "snake_case")]
 pub enum AlertState {
+    /// The condition became true: an episode opens (JSON `opened`).
     Opened,
+    /// The condition cleared: its episode closes (JSON `recovered`).
     Recovered,
+    /// A one-off event that opens and closes at once (JSON `notice`).
     Notice,
 }
 
@@ -33,14 +36,16 @@ impl AlertState {
 /// One alert event, as stored, logged and sent to the sinks.
 #[derive(Debug, Clone, PartialEq, Serialize)]
 pub struct AlertEvent {
-    /// What is wrong: `drift:<metric>`, `stalled`, `low_disk_space`,
+    /// What is wrong: `drift:<metric>`, `stalled`, `low_disk_space:<volume>`,
     /// `failure_rate`; or what happened: `service_restarted`, `run_complete`.
     pub condition: String,
+    /// Whether the event opens or closes an episode, or is a notice.
     pub state: AlertState,
     /// Milliseconds since the Unix epoch.
     pub at_ms: i64,
     /// The file that triggered (or ended) the episode, when a frame did.
     pub file: Option<String>,
+    /// A sentence for a person saying what happened, with the values behind it.
     pub message: String,
 }
 
@@ -81,6 +86,7 @@ impl AlertBook {
         })
     }
 
+    /// Whether an episode of `condition` is open now.
     pub fn is_open(&self, condition: &str) -> bool {
         self.open.contains_key(condition)
     }

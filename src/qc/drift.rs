@@ -14,7 +14,9 @@ use crate::qc::params::ChartParams;
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize)]
 #[serde(rename_all = "snake_case")]
 pub enum Direction {
+    /// The metric rose above its baseline (JSON `up`).
     Up,
+    /// The metric fell below its baseline (JSON `down`).
     Down,
 }
 
@@ -34,11 +36,15 @@ pub enum Signal {
 pub struct Step {
     /// Standardised, clipped value: (x − μ₀) / σ₀.
     pub z: f64,
+    /// The EWMA statistic after this value, in σ₀ units.
     pub ewma: f64,
     /// Current EWMA control limit (in σ₀ units).
     pub ewma_limit: f64,
+    /// Upper CUSUM sum C⁺ after this value, in σ₀ units (capped at 2h).
     pub cusum_up: f64,
+    /// Lower CUSUM sum C⁻ after this value, in σ₀ units (capped at 2h).
     pub cusum_down: f64,
+    /// What this value did to the chart.
     pub signal: Signal,
 }
 
@@ -46,6 +52,7 @@ pub struct Step {
 #[derive(Debug, Clone, PartialEq)]
 pub struct Chart {
     params: ChartParams,
+    /// Baseline mean μ₀, in the metric's own unit.
     pub mean: f64,
     /// Baseline sigma after the floor.
     pub sigma: f64,
@@ -81,6 +88,7 @@ impl Chart {
         Chart::new(params, mean, sd.max(metric.sigma_floor(mean)))
     }
 
+    /// The drift declared and not yet recovered; `None` while in control.
     pub fn drift(&self) -> Option<Direction> {
         self.drift
     }

@@ -16,21 +16,36 @@ use crate::qc::params::FlagLimits;
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Hash, Serialize)]
 #[serde(rename_all = "snake_case")]
 pub enum FlagKind {
+    /// Otsu's separability is below `min_separability`: a global threshold is doubtful.
     LowSeparability,
+    /// Sarle's bimodality coefficient is below `min_bimodality`: the frame may hold
+    /// no distinct objects.
     UnimodalHistogram,
+    /// Objects cover less than `min_foreground_fraction` of the frame under an
+    /// Otsu-based threshold, which is unreliable for so small a class.
     SmallForeground,
+    /// The illumination change is above `max_illumination_change`.
     UnevenIllumination,
     /// Many objects look like touching ones merged into one.
     MergedObjects,
+    /// More than `max_saturation_fraction` of the pixels are at the top of the bit
+    /// depth.
     Saturated,
+    /// Focus is below `min_focus_ratio` times the position's baseline focus.
     OutOfFocus,
+    /// No objects where the position's baseline frames usually have at least
+    /// `min_usual_count`.
     EmptyFrame,
+    /// The count changed by more than `max_count_jump` (relative) against the
+    /// median of the position's recent frames.
     CountJump,
     /// The file could not be decoded or analyzed (the error row's reason).
     Failed,
 }
 
 impl FlagKind {
+    /// The flag's name in the database (`flags.flag`), JSON and messages, e.g.
+    /// `low_separability`.
     pub fn as_str(self) -> &'static str {
         match self {
             FlagKind::LowSeparability => "low_separability",
@@ -50,9 +65,15 @@ impl FlagKind {
 /// One flag with its evidence. `value` and `limit` are `None` only for a failure.
 #[derive(Debug, Clone, PartialEq, Serialize)]
 pub struct FrameFlag {
+    /// Which flag.
     pub kind: FlagKind,
+    /// The frame's value that crossed the limit (for `count_jump` the relative
+    /// change); `None` for a failure.
     pub value: Option<f64>,
+    /// The limit it crossed (for `out_of_focus` the baseline focus times the
+    /// ratio, for `empty_frame` the usual count); `None` for a failure.
     pub limit: Option<f64>,
+    /// A sentence for a person: the value, the limit and what it means.
     pub message: String,
 }
 

@@ -15,17 +15,25 @@ use crate::analysis::{FrameResult, Method};
 pub struct FrameMetrics {
     /// True when the threshold came from Otsu's criterion (otsu, multi-otsu).
     pub otsu_based: bool,
+    /// Threshold level used (foreground is `pixel > threshold`).
     pub threshold: f64,
+    /// Otsu's separability η at Otsu's level, 0..1.
     pub separability: f64,
     /// Sarle's bimodality coefficient; NaN when unknown (never flags).
     pub bimodality: f64,
+    /// Objects found (the first segmentation's count, not the recount's).
     pub object_count: usize,
     /// Share of objects that look merged; NaN when unknown (never flags).
     pub merged_fraction: f64,
+    /// Fraction (0..1) of the frame covered by kept objects.
     pub foreground_fraction: f64,
+    /// Median raw intensity of the background pixels.
     pub background_level: f64,
+    /// Fraction (0..1) of pixels at the top of the bit depth.
     pub saturation_fraction: f64,
+    /// Variance of the 4-neighbour Laplacian (larger is sharper).
     pub focus: f64,
+    /// (max − min) / mean of the fitted background surface; 0 for an even field.
     pub illumination_change: f64,
 }
 
@@ -55,7 +63,9 @@ pub enum Metric {
     BackgroundLevel,
     /// A growing illumination gradient.
     IlluminationChange,
+    /// A moving threshold: brightness or the objects' share of the field changed.
     Threshold,
+    /// Objects and background becoming harder to tell apart.
     Separability,
     /// Focus loss.
     Focus,
@@ -64,6 +74,7 @@ pub enum Metric {
 }
 
 impl Metric {
+    /// Every metric, in a fixed order (a position keeps its charts in this order).
     pub const ALL: [Metric; 6] = [
         Metric::BackgroundLevel,
         Metric::IlluminationChange,
@@ -73,6 +84,8 @@ impl Metric {
         Metric::ObjectCount,
     ];
 
+    /// The metric's name in settings (`charted_metrics`), alert conditions
+    /// (`drift:<name>`) and JSON.
     pub fn as_str(self) -> &'static str {
         match self {
             Metric::BackgroundLevel => "background_level",
@@ -96,6 +109,7 @@ impl Metric {
         }
     }
 
+    /// This metric's value on one frame.
     pub fn value(self, m: &FrameMetrics) -> f64 {
         match self {
             Metric::BackgroundLevel => m.background_level,

@@ -29,7 +29,9 @@ pub fn drift_condition(metric: Metric) -> String {
 /// What one frame produced: its flags and any alert events.
 #[derive(Debug, Clone, Default, PartialEq)]
 pub struct Verdict {
+    /// The frame's flags, each with its evidence; empty for a clean frame.
     pub flags: Vec<FrameFlag>,
+    /// Alert events the frame caused: episodes opened or closed, notices.
     pub events: Vec<AlertEvent>,
 }
 
@@ -60,6 +62,7 @@ pub struct RunMonitor {
 }
 
 impl RunMonitor {
+    /// A monitor for a new run: no positions, no open episodes, nothing recorded.
     pub fn new(settings: QualitySettings) -> RunMonitor {
         RunMonitor {
             settings,

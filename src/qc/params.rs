@@ -17,11 +17,18 @@ use crate::qc::metrics::Metric;
 /// Limits of the per-frame flags. A flag is raised only strictly beyond its limit.
 #[derive(Debug, Clone, PartialEq)]
 pub struct FlagLimits {
+    /// Otsu's separability η below this (0..1): the histogram is not bimodal enough
+    /// for a global threshold.
     pub min_separability: f64,
     /// Sarle's bimodality coefficient below this: the histogram looks unimodal.
     pub min_bimodality: f64,
+    /// Objects covering less than this fraction (0..1) of the frame are flagged when
+    /// the threshold is Otsu-based and at least one object was found.
     pub min_foreground_fraction: f64,
+    /// Illumination change ((max − min) / mean of the fitted background) above this
+    /// is uneven; it also triggers the recount when that is on.
     pub max_illumination_change: f64,
+    /// Share (0..1) of saturated pixels above which a frame is flagged.
     pub max_saturation_fraction: f64,
     /// Focus below this share of the position's baseline focus is flagged.
     pub min_focus_ratio: f64,
@@ -47,8 +54,11 @@ pub struct ChartParams {
     pub ewma_lambda: f64,
     /// EWMA control-limit width in standard deviations of the statistic.
     pub ewma_width: f64,
-    /// CUSUM reference value and decision interval, in baseline sigmas (Page 1954).
+    /// CUSUM reference value (allowance) k, in baseline sigmas (Page 1954):
+    /// subtracted from each standardised value before it adds to a sum.
     pub cusum_k: f64,
+    /// CUSUM decision interval h, in baseline sigmas: a drift is declared when
+    /// either sum exceeds it.
     pub cusum_h: f64,
     /// Standardised values are clipped to ±this before charting, so one wild
     /// frame cannot declare a drift on its own.
@@ -63,7 +73,9 @@ pub struct ChartParams {
 /// Validated `[quality]` settings.
 #[derive(Debug, Clone, PartialEq)]
 pub struct QualitySettings {
+    /// Limits of the per-frame flags.
     pub flags: FlagLimits,
+    /// Baselines and drift charts.
     pub charts: ChartParams,
     /// No new frame for this long while the run is active opens a stall alert.
     pub stall_after: Duration,
@@ -74,6 +86,9 @@ pub struct QualitySettings {
     pub min_free_space_bytes: u64,
     /// Recent outcomes whose failure share is watched.
     pub failure_window: usize,
+    /// Share (0..1) of failed frames among those recent outcomes above which a
+    /// failure-rate alert opens (judged once 10 outcomes, or the whole window if
+    /// smaller, are known).
     pub max_failure_fraction: f64,
 }
 
@@ -82,18 +97,26 @@ pub struct QualitySettings {
 pub struct AlertSettings {
     /// Program and arguments, run directly (never through a shell).
     pub command: Option<CommandSink>,
+    /// HTTP(S) POST of each alert's JSON to a URL.
     pub webhook: Option<WebhookSink>,
     /// Append-only JSON-lines file.
     pub file: Option<PathBuf>,
 }
 
+/// A program run for each alert, with the alert's JSON on its stdin and its
+/// fields in `FRAMEWARDEN_ALERT_*` environment variables.
 #[derive(Debug, Clone, PartialEq)]
 pub struct CommandSink {
+    /// Program to run: a path, or a name looked up in `PATH`.
     pub program: String,
+    /// Fixed arguments, passed as they are.
     pub args: Vec<String>,
+    /// Time the program may run before it is killed and the delivery counts as
+    /// failed.
     pub timeout: Duration,
 }
 
+/// An HTTP(S) endpoint that receives each alert's JSON by POST.
 #[derive(Debug, Clone, PartialEq)]
 pub struct WebhookSink {
     /// `http://host[:port]/path` or `https://...`, checked when the
@@ -102,6 +125,7 @@ pub struct WebhookSink {
     /// Extra trusted CA certificates (PEM) for an https webhook, e.g. an
     /// in-house server's own CA; the bundled public roots are always trusted.
     pub ca_file: Option<PathBuf>,
+    /// Time allowed, per attempt, to connect and for each read and write.
     pub timeout: Duration,
     /// Further attempts after a failed first one.
     pub retries: u32,

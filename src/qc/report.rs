@@ -15,6 +15,8 @@ use crate::store::iso_time_sql;
 /// One alert episode.
 #[derive(Debug, Clone, Serialize, PartialEq)]
 pub struct AlertRow {
+    /// What was wrong, or the notice: `drift:<metric>`, `stalled`,
+    /// `low_disk_space:<volume>`, `failure_rate`, `service_restarted`, `run_complete`.
     pub condition: String,
     /// UTC, RFC 3339.
     pub opened_at: String,
@@ -22,6 +24,7 @@ pub struct AlertRow {
     pub closed_at: Option<String>,
     /// The file that triggered it, when a frame did.
     pub frame: Option<String>,
+    /// The sentence written when the episode opened.
     pub message: String,
     /// What ended it.
     pub closed_message: Option<String>,
@@ -30,9 +33,14 @@ pub struct AlertRow {
 /// One flag with its evidence, as shown.
 #[derive(Debug, Clone, Serialize, PartialEq)]
 pub struct FlagRow {
+    /// The flag's name (e.g. `low_separability`, `failed`).
     pub flag: String,
+    /// The frame's value that crossed the limit; `None` for a failure.
     pub value: Option<f64>,
+    /// The limit it crossed; `None` for a failure.
     pub limit: Option<f64>,
+    /// A sentence for a person: the value, the limit and what it means (for a
+    /// failure, the reason).
     pub message: String,
 }
 
@@ -47,9 +55,13 @@ impl From<FrameFlag> for FlagRow {
     }
 }
 
+/// One frame with quality flags or a failure, and its flags.
 #[derive(Debug, Clone, Serialize, PartialEq)]
 pub struct FlaggedFrame {
+    /// The frame's file.
     pub file: String,
+    /// Its flags, in the order they were raised; a failure adds a `failed` flag
+    /// last.
     pub flags: Vec<FlagRow>,
 }
 
@@ -82,7 +94,9 @@ pub fn alerts(conn: &Connection, run_id: i64) -> rusqlite::Result<Vec<AlertRow>>
 /// How many frames of the run carry one flag (failures count as `failed`).
 #[derive(Debug, Clone, Serialize, PartialEq)]
 pub struct FlagCount {
+    /// The flag's name (`failed` for frames that produced no result).
     pub flag: String,
+    /// Frames of the run carrying it.
     pub frames: u64,
 }
 

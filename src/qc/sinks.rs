@@ -29,57 +29,120 @@ use crate::qc::params::{AlertSettings, CommandSink, WebhookSink};
 /// only, since a webhook's path often carries its secret.
 #[derive(Debug, thiserror::Error)]
 pub enum SinkError {
+    /// The command could not be started.
     #[error("cannot start {program}: {source}")]
     CommandStart {
+        /// The program.
         program: String,
+        /// The cause.
         source: std::io::Error,
     },
+    /// The command ended with a failure status.
     #[error("{program} exited with {status}")]
-    CommandFailed { program: String, status: ExitStatus },
+    CommandFailed {
+        /// The program.
+        program: String,
+        /// Its exit status.
+        status: ExitStatus,
+    },
+    /// The command ran past its timeout and was killed.
     #[error("{program} still running after {} s; killed", .timeout.as_secs())]
-    CommandTimeout { program: String, timeout: Duration },
+    CommandTimeout {
+        /// The program.
+        program: String,
+        /// `command_timeout_s`.
+        timeout: Duration,
+    },
+    /// Waiting for the command failed.
     #[error("waiting for {program}: {source}")]
     CommandWait {
+        /// The program.
         program: String,
+        /// The cause.
         source: std::io::Error,
     },
 
     /// A CA file that cannot be read or holds no usable certificate (found when
     /// the configuration loads).
     #[error("{}: {reason}", .path.display())]
-    CaFile { path: PathBuf, reason: String },
+    CaFile {
+        /// The CA file.
+        path: PathBuf,
+        /// What is wrong with it.
+        reason: String,
+    },
 
+    /// The webhook's host name has no address.
     #[error("webhook host {host}: no address found")]
-    WebhookAddress { host: String },
+    WebhookAddress {
+        /// The host name.
+        host: String,
+    },
+    /// No connection to the webhook's server.
     #[error("webhook: connect {address}: {source}")]
     WebhookConnect {
+        /// `host:port`.
         address: String,
+        /// The cause.
         source: std::io::Error,
     },
+    /// The TLS handshake failed (an unknown certificate, for instance).
     #[error("webhook {address}: TLS: {reason}")]
-    WebhookTls { address: String, reason: String },
+    WebhookTls {
+        /// `host:port`.
+        address: String,
+        /// The TLS library's reason.
+        reason: String,
+    },
+    /// An attempt ran past `webhook_timeout_s`.
     #[error("webhook {address}: no {waiting_for} within {} ms", .after.as_millis())]
     WebhookTimeout {
+        /// `host:port`.
         address: String,
         /// "connection" (address lookup, TCP and TLS) or "answer".
         waiting_for: &'static str,
+        /// The bound that ran out.
         after: Duration,
     },
+    /// The server answered with a status other than 2xx.
     #[error("webhook {address}: HTTP status {status}")]
-    WebhookStatus { address: String, status: u16 },
+    WebhookStatus {
+        /// `host:port`.
+        address: String,
+        /// The HTTP status.
+        status: u16,
+    },
+    /// The exchange failed otherwise (a malformed answer, a reset).
     #[error("webhook {address}: {reason}")]
-    WebhookExchange { address: String, reason: String },
+    WebhookExchange {
+        /// `host:port`.
+        address: String,
+        /// The HTTP client's reason.
+        reason: String,
+    },
+    /// Every attempt failed.
     #[error("{attempts} attempts failed, the last: {last}")]
-    WebhookGaveUp { attempts: u32, last: Box<SinkError> },
+    WebhookGaveUp {
+        /// Attempts made (1 + retries).
+        attempts: u32,
+        /// The last attempt's error.
+        last: Box<SinkError>,
+    },
 
+    /// A sink's delivery thread could not be started.
     #[error("cannot start the {sink} sink's thread: {source}")]
     Thread {
+        /// `command`, `webhook` or `file`.
         sink: &'static str,
+        /// The cause.
         source: std::io::Error,
     },
+    /// The alert file could not be written.
     #[error("alert file {}: {source}", .path.display())]
     File {
+        /// The alert file.
         path: PathBuf,
+        /// The cause.
         source: std::io::Error,
     },
 }
@@ -301,10 +364,7 @@ impl CaFile {
         })
     }
 
-    pub fn path(&self) -> &Path {
-        &self.path
-    }
-
+    /// The certificates, in file order.
     pub fn certificates(&self) -> &[CertificateDer<'static>] {
         &self.certs
     }

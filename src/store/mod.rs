@@ -73,29 +73,58 @@ impl Default for StoreSettings {
 /// Errors opening or using the database, with what to do about them.
 #[derive(Debug, thiserror::Error)]
 pub enum StoreError {
+    /// There is no database file at this path.
     #[error("no database at {0}: start `framewarden watch` first, or pass --db FILE")]
     Missing(PathBuf),
+    /// The file is not a framewarden database (another SQLite file, or not SQLite).
     #[error("{0} is not a framewarden database (wrong or missing application id); pass the file `framewarden watch` writes")]
     Foreign(PathBuf),
+    /// The database was written by a newer framewarden.
     #[error("{path} has schema version {found}, newer than this framewarden understands ({SCHEMA_VERSION}); upgrade framewarden")]
-    TooNew { path: PathBuf, found: i32 },
+    TooNew {
+        /// The database.
+        path: PathBuf,
+        /// Its schema version (`PRAGMA user_version`), above [`SCHEMA_VERSION`].
+        found: i32,
+    },
+    /// SQLite failed on the database.
     #[error("{path}: {source}")]
     Sqlite {
+        /// The database.
         path: PathBuf,
+        /// The cause.
         source: rusqlite::Error,
     },
+    /// The folder for the database or its lock could not be created.
     #[error("cannot create the database folder {path}: {source}")]
     Folder {
+        /// The folder.
         path: PathBuf,
+        /// The cause.
         source: std::io::Error,
     },
+    /// The database has no run with the number asked for.
     #[error("{path} has no run {run} (`framewarden status` without --run shows the last one)")]
-    NoRun { path: PathBuf, run: i64 },
+    NoRun {
+        /// The database.
+        path: PathBuf,
+        /// The run number asked for.
+        run: i64,
+    },
+    /// Another process holds the writer's lock on the database.
     #[error("another framewarden watch is recording into {db} (it holds {lock}); one service per database")]
-    InUse { db: PathBuf, lock: PathBuf },
+    InUse {
+        /// The database.
+        db: PathBuf,
+        /// The lock file the other process holds (`<database>.lock`).
+        lock: PathBuf,
+    },
+    /// The writer's lock file could not be created or locked.
     #[error("cannot take the writer's lock {lock}: {source}")]
     Lock {
+        /// The lock file (`<database>.lock`).
         lock: PathBuf,
+        /// The cause.
         source: std::io::Error,
     },
 }
@@ -115,6 +144,7 @@ impl StoreError {
 pub struct FrameKey {
     /// The path as text (lossy for non-UTF-8 names).
     pub path: String,
+    /// File size in bytes.
     pub size_bytes: u64,
     /// Modification time in nanoseconds since the Unix epoch.
     pub mtime_ns: i64,
@@ -154,11 +184,14 @@ impl FrameKey {
 pub enum FrameStatus {
     /// Judged complete and handed to a worker; not finished yet (redone after a crash).
     Queued,
+    /// Analyzed; its measures and objects are recorded.
     Done,
+    /// No result; the row's error says why.
     Failed,
 }
 
 impl FrameStatus {
+    /// The name stored in the `frames.status` column: `queued`, `done` or `failed`.
     pub fn as_str(self) -> &'static str {
         match self {
             FrameStatus::Queued => "queued",

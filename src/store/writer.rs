@@ -74,26 +74,39 @@ pub trait FrameObserver: Send {
 pub enum StoreOp {
     /// A file judged completely written and handed to a worker.
     Queued {
+        /// The file version.
         key: FrameKey,
+        /// When the file was first seen (ms since the Unix epoch).
         detected_at_ms: i64,
+        /// When it was judged completely written (ms since the Unix epoch).
         ready_at_ms: i64,
+        /// The parts of its name (well, site, time point, channel) the pattern found.
         names: NameParts,
     },
     /// The analysis of a queued frame.
     Done {
+        /// The file version.
         key: FrameKey,
+        /// Analysis attempts it took, this one included.
         attempts: u32,
+        /// The result (and recount) to record.
         analysis: Box<FileAnalysis>,
     },
     /// A queued frame that produced no result, with the reason.
     Failed {
+        /// The file version.
         key: FrameKey,
+        /// Analysis attempts made, the last one included.
         attempts: u32,
+        /// Why it failed, stored as the row's error.
         reason: String,
     },
     /// A queued frame whose file changed or went away before it was analyzed;
     /// its new version (if any) is recorded under its own identity.
-    Withdrawn { key: FrameKey },
+    Withdrawn {
+        /// The file version whose queued row is removed.
+        key: FrameKey,
+    },
 }
 
 impl StoreOp {

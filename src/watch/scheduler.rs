@@ -30,13 +30,18 @@ pub enum SchedMsg {
     Found(Vec<PathBuf>),
     /// A worker read the file short (or saw it change): look again after a backoff.
     Retry {
+        /// The file.
         path: PathBuf,
+        /// The version the worker tried (its row stays `queued`).
         previous: FrameKey,
+        /// Analysis attempts made so far; the backoff doubles with each.
         attempts: u32,
+        /// When the file was first seen (ms since the Unix epoch).
         detected_at_ms: i64,
     },
     /// Frames whose final row is committed: they leave the in-flight set.
     Committed(Vec<FrameKey>),
+    /// Stop the scheduler loop.
     Stop,
 }
 
