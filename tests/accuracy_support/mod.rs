@@ -395,7 +395,7 @@ pub fn render_crowd(c: &Crowd) -> Case {
     if c.blur_sigma_px > 0.0 {
         blur(&mut ideal, n, c.blur_sigma_px);
     }
-    let mut noise = Rng(c.seed ^ 0x6e6f_6973_65);
+    let mut noise = Rng(c.seed ^ 0x006e_6f69_7365);
     let pixels = ideal
         .iter()
         .map(|&v| ((v + c.noise_sigma * noise.normal()) * 65535.0 + 0.5).clamp(0.0, 65535.0) as u16)
