@@ -34,6 +34,49 @@ pub struct Components {
     pub count: usize,
 }
 
+impl Components {
+    /// The components as a `width × height` label image in raster order:
+    /// kept components (those for which `keep(index)` is true, `index` being
+    /// the 0-based component number) are numbered `1..=n` in the order of
+    /// their first pixel, everything else is 0.
+    ///
+    /// With `keep` testing the same area (and border) rule, the numbers are
+    /// the `label`s that [`crate::analysis::measure::measure`] gives.
+    pub fn label_image(
+        &self,
+        width: usize,
+        height: usize,
+        keep: impl Fn(usize) -> bool,
+    ) -> Vec<u32> {
+        let mut number = vec![0u32; self.count];
+        let mut next = 0;
+        for (k, n) in number.iter_mut().enumerate() {
+            if keep(k) {
+                next += 1;
+                *n = next;
+            }
+        }
+        let mut image = vec![0u32; width * height];
+        for (run, &k) in self.runs.iter().zip(&self.component) {
+            let l = number[k as usize];
+            if l != 0 {
+                let row = run.y as usize * width;
+                image[row + run.x0 as usize..row + run.x1 as usize].fill(l);
+            }
+        }
+        image
+    }
+
+    /// Pixels of each component, indexed by component number.
+    pub fn areas(&self) -> Vec<u64> {
+        let mut a = vec![0u64; self.count];
+        for (r, &k) in self.runs.iter().zip(&self.component) {
+            a[k as usize] += u64::from(r.x1 - r.x0);
+        }
+        a
+    }
+}
+
 struct UnionFind {
     parent: Vec<u32>,
 }
@@ -289,6 +332,30 @@ mod tests {
         let c = label(&px, w, h, 0, Connectivity::Eight, true);
         assert_eq!(areas(&c), vec![25]);
         assert_eq!(label(&px, w, h, 0, Connectivity::Eight, false).count, 2);
+    }
+
+    #[test]
+    fn label_image_numbers_kept_components_in_raster_order() {
+        // Components in raster order of their first pixel: 0 = the U (7 px,
+        // first pixel (0,0)), 1 = the dot at (4,0) (1 px), 2 = the bar in
+        // column 4, rows 2-3 (2 px). Keeping areas >= 2 drops the dot.
+        let (px, w, h) = img(&["#.#.#", "#.#..", "###.#", "....#"]);
+        let c = label(&px, w, h, 0, Connectivity::Four, false);
+        assert_eq!(c.areas(), vec![7, 1, 2]);
+        let area = c.areas();
+        #[rustfmt::skip]
+        let want: Vec<u32> = vec![
+            1, 0, 1, 0, 0,
+            1, 0, 1, 0, 0,
+            1, 1, 1, 0, 2,
+            0, 0, 0, 0, 2,
+        ];
+        assert_eq!(c.label_image(w, h, |k| area[k] >= 2), want);
+        // Keeping all: the dot is 2 and the bar 3.
+        let all = c.label_image(w, h, |_| true);
+        assert_eq!((all[4], all[14], all[19]), (2, 3, 3));
+        // Keeping none: all background.
+        assert!(c.label_image(w, h, |_| false).iter().all(|&l| l == 0));
     }
 
     #[test]
