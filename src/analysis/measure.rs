@@ -41,6 +41,8 @@ pub struct Measured {
     /// Components dropped for their area (pixel or µm² limits), so that a
     /// size filter never makes objects vanish silently.
     pub size_filtered: usize,
+    /// Each component's object label, 0 for a dropped component.
+    pub component_labels: Vec<u32>,
 }
 
 /// Solidity below which a large object looks like several touching ones.
@@ -228,6 +230,7 @@ pub fn measure(
     Measured {
         objects,
         size_filtered,
+        component_labels: final_label,
     }
 }
 

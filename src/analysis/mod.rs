@@ -23,4 +23,4 @@ pub mod threshold;
 pub use params::{Background, Connectivity, Method, ObjectFilter, SegmentParams};
 pub use recount::Recount;
 pub use result::{AnalysisError, ChannelIntensity, FrameResult, ObjectMeasures};
-pub use segment::analyze_frame;
+pub use segment::{analyze_frame, segment_frame, Segmented};

@@ -39,6 +39,49 @@ pub fn analyze_frame(
     params: &SegmentParams,
     pixel_size_um: Option<f64>,
 ) -> Result<FrameResult, AnalysisError> {
+    run(frame, extra_pages, params, pixel_size_um, false).map(|(result, _)| result)
+}
+
+/// A frame's analysis with its label image.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Segmented {
+    /// The same result as [`analyze_frame`]'s.
+    pub result: FrameResult,
+    /// One value per pixel, row by row: the label of the object the pixel
+    /// belongs to (as in `result.objects`), 0 for background.
+    pub labels: Vec<u32>,
+}
+
+/// [`analyze_frame`], and the label image of the objects it kept.
+///
+/// ```
+/// use framewarden::{frame::Frame, analysis::{segment_frame, SegmentParams}};
+/// let f = Frame::from_rows_u8(&[&[0, 9, 0, 9], &[0, 9, 0, 0]]);
+/// let s = segment_frame(&f, &[], &SegmentParams::default(), None).unwrap();
+/// assert_eq!(s.labels, vec![0, 1, 0, 2, 0, 1, 0, 0]);
+/// ```
+///
+/// # Errors
+/// As [`analyze_frame`].
+pub fn segment_frame(
+    frame: &Frame,
+    extra_pages: &[(usize, &Frame)],
+    params: &SegmentParams,
+    pixel_size_um: Option<f64>,
+) -> Result<Segmented, AnalysisError> {
+    run(frame, extra_pages, params, pixel_size_um, true).map(|(result, labels)| Segmented {
+        result,
+        labels: labels.unwrap_or_default(),
+    })
+}
+
+fn run(
+    frame: &Frame,
+    extra_pages: &[(usize, &Frame)],
+    params: &SegmentParams,
+    pixel_size_um: Option<f64>,
+    want_labels: bool,
+) -> Result<(FrameResult, Option<Vec<u32>>), AnalysisError> {
     for &(page, f) in extra_pages {
         if (f.width, f.height) != (frame.width, frame.height) {
             return Err(AnalysisError::PageSize {
@@ -80,6 +123,7 @@ pub fn analyze_frame(
     let measure::Measured {
         objects,
         size_filtered,
+        component_labels,
     } = measure::measure(
         frame,
         extra_pages,
@@ -87,9 +131,11 @@ pub fn analyze_frame(
         &params.filter,
         pixel_size_um,
     );
+    let labels = want_labels
+        .then(|| components.label_image(frame.width, frame.height, |k| component_labels[k] != 0));
     let q = quality::assess(frame, &raw_hist, corrected.as_ref(), t);
     let kept_area: u64 = objects.iter().map(|o| o.area_px).sum();
-    Ok(FrameResult {
+    let result = FrameResult {
         width: frame.width,
         height: frame.height,
         bit_depth: frame.bit_depth,
@@ -107,7 +153,8 @@ pub fn analyze_frame(
         illumination_change: q.illumination_change,
         pixel_size_um,
         objects,
-    })
+    };
+    Ok((result, labels))
 }
 
 /// Flat-field, then smoothing, then rolling-ball; `None` when nothing applies.

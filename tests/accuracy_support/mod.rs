@@ -17,9 +17,7 @@
 use std::path::{Path, PathBuf};
 use std::process::Command;
 
-use framewarden::analysis::{
-    analyze_frame, correct, label, threshold, Background, Method, SegmentParams,
-};
+use framewarden::analysis::{segment_frame, SegmentParams};
 use framewarden::decode::{self, DecodeLimits};
 use framewarden::frame::Frame;
 
@@ -122,67 +120,12 @@ pub fn score(truth: &[u32], pred: &[u32]) -> Scores {
     }
 }
 
-/// Our pipeline as a label image: the same steps as
-/// [`framewarden::analysis::analyze_frame`] (correction, threshold, hole
-/// filling, labelling, the pixel-area and border filter), through the public
-/// kernels, with labels numbered as its objects. Checks that its objects are
-/// `analyze_frame`'s, object for object, so the scores are the shipped
-/// pipeline's.
+/// Our pipeline's label image: the shipped analysis itself
+/// ([`framewarden::analysis::segment_frame`]), labels numbered as its objects.
 pub fn our_labels(frame: &Frame, params: &SegmentParams) -> Vec<u32> {
-    let (w, h) = (frame.width, frame.height);
-    let mut corrected: Option<Frame> = None;
-    if let Background::FlatField(_) = params.background {
-        panic!("the accuracy check does not model flat-field correction");
-    }
-    if params.smooth_sigma_px > 0.0 {
-        corrected = Some(correct::gaussian(frame, params.smooth_sigma_px));
-    }
-    if let Background::RollingBall { radius_px } = params.background {
-        corrected = Some(correct::rolling_ball(
-            corrected.as_ref().unwrap_or(frame),
-            radius_px,
-        ));
-    }
-    let seg = corrected.as_ref().unwrap_or(frame);
-    let hist = threshold::Histogram::of(seg);
-    let t = match &params.method {
-        Method::Otsu => threshold::otsu(&hist),
-        Method::Triangle => threshold::triangle(&hist),
-        Method::Li => threshold::li(&hist),
-        Method::MultiOtsu { classes, boundary } => {
-            threshold::multi_otsu(&hist, *classes)[boundary - 1]
-        }
-        Method::Fixed(level) => *level,
-    };
-    let comps = label::label(&seg.pixels, w, h, t, params.connectivity, params.fill_holes);
-    let area = comps.areas();
-    let mut touches = vec![false; comps.count];
-    for (r, &k) in comps.runs.iter().zip(&comps.component) {
-        if r.y == 0 || r.y as usize == h - 1 || r.x0 == 0 || r.x1 as usize == w {
-            touches[k as usize] = true;
-        }
-    }
-    let f = &params.filter;
-    let labels = comps.label_image(w, h, |k| {
-        area[k] >= f.min_area_px
-            && (f.max_area_px == 0 || area[k] <= f.max_area_px)
-            && !(f.exclude_border && touches[k])
-    });
-
-    // The same objects as the shipped analysis, in the same order.
-    let shipped = analyze_frame(frame, &[], params, None).expect("the frame analyzes");
-    let mut ours = vec![0u64; labels.iter().copied().max().unwrap_or(0) as usize];
-    for &l in labels.iter().filter(|&&l| l > 0) {
-        ours[l as usize - 1] += 1;
-    }
-    let theirs: Vec<u64> = shipped.objects.iter().map(|o| o.area_px).collect();
-    assert_eq!(
-        ours, theirs,
-        "analyze_frame's objects differ from the label image built from the same \
-         kernels: the analysis has a step this check does not reproduce (a split?); \
-         update tests/accuracy_support/mod.rs::our_labels"
-    );
-    labels
+    segment_frame(frame, &[], params, None)
+        .expect("the frame analyzes")
+        .labels
 }
 
 /// One image to score: the frame, its exact truth, a name.
