@@ -84,3 +84,80 @@ macro_rules! multiversion {
 }
 
 pub(crate) use multiversion;
+
+/// For tests: says on stderr, once per `what`, that only the portable build of
+/// `what` was checked because this CPU lacks AVX2. Written to stderr directly,
+/// past the test harness's capture, so the skip shows in a passing run.
+#[cfg(test)]
+pub(crate) fn report_no_avx2(what: &'static str) {
+    use std::io::Write;
+    use std::sync::{Mutex, PoisonError};
+    static SAID: Mutex<Vec<&str>> = Mutex::new(Vec::new());
+    let mut said = SAID.lock().unwrap_or_else(PoisonError::into_inner);
+    if !said.contains(&what) {
+        said.push(what);
+        let _ = writeln!(
+            std::io::stderr(),
+            "{what}: this CPU lacks AVX2, so its AVX2 build was not compared (portable build only)"
+        );
+    }
+}
+
+/// Inputs for tests that compare the two builds of a [`multiversion!`] loop.
+#[cfg(test)]
+pub(crate) mod test_inputs {
+    use proptest::prelude::*;
+
+    /// Row lengths around the 32-pixel blocks and 256-bit vectors (0, 1, 31,
+    /// 32, 33, ...), anything up to 200, and long rows.
+    pub(crate) fn lengths() -> impl Strategy<Value = usize> {
+        prop_oneof![
+            prop::sample::select(vec![0usize, 1, 2, 3, 15, 16, 17, 31, 32, 33, 63, 64, 65]),
+            0usize..200,
+            prop::sample::select(vec![1000usize, 2048, 4095, 4096, 4097]),
+        ]
+    }
+
+    /// Thresholds at the ends of the range, in 8-bit range, and anywhere.
+    pub(crate) fn thresholds() -> impl Strategy<Value = u16> {
+        prop_oneof![
+            prop::sample::select(vec![0u16, 1, 254, 255, 256, u16::MAX - 1, u16::MAX]),
+            0u16..300,
+            any::<u16>(),
+        ]
+    }
+
+    /// `n` pixel values in runs of 1 to 300 pixels, each run at `t`, at `t + 1`
+    /// or `t - 1`, anywhere at or below `t`, anywhere above it, or anywhere;
+    /// the runs repeat until `n` values are drawn.
+    pub(crate) fn pixels_near(t: u16, n: usize) -> impl Strategy<Value = Vec<u16>> {
+        let run = (
+            1usize..=300,
+            0u8..6,
+            prop::collection::vec(any::<u16>(), 300),
+        );
+        prop::collection::vec(run, 1..12).prop_map(move |runs| {
+            let mut out = Vec::with_capacity(n);
+            while out.len() < n {
+                for (len, kind, noise) in &runs {
+                    for &r in noise.iter().take(*len) {
+                        if out.len() == n {
+                            return out;
+                        }
+                        out.push(match kind {
+                            0 => t,
+                            1 => t.saturating_add(1),
+                            2 => t.saturating_sub(1),
+                            // At most t: r mod (t + 1) < 65536.
+                            3 => (u32::from(r) % (u32::from(t) + 1)) as u16,
+                            // Above t when anything is (t < 65535).
+                            4 => t.saturating_add(1).max(r),
+                            _ => r,
+                        });
+                    }
+                }
+            }
+            out
+        })
+    }
+}
