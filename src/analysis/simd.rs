@@ -2,9 +2,11 @@
 //! with AVX2, so the binary runs on any x86-64 yet uses wide vectors where the
 //! CPU has them. The loop is written once; the compiler vectorises it twice.
 //!
-//! The CPU is asked once per process ([`has_avx2`]). What each loop computes
-//! is left to its module ([`super::label`], [`super::quality`]); this file is
-//! the only place in the crate that needs `unsafe` for SIMD.
+//! The CPU is asked once per process ([`has_avx2`]), and the loops that use
+//! [`multiversion!`] are whole-frame passes, so each pass over a frame makes
+//! one choice, not one per run or row of pixels. What each loop computes is
+//! left to its module ([`super::label`], [`super::quality`]); this file is the
+//! only place in the crate that needs `unsafe` for SIMD.
 
 use std::sync::LazyLock;
 
