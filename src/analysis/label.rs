@@ -8,6 +8,10 @@
 //! label" (holes = background regions not connected to the border under the
 //! complementary connectivity). Components are numbered in raster order of their
 //! first pixel. Measurements are left to [`crate::analysis::measure`].
+//!
+//! The first pass over the pixels (cutting rows into runs and joining them with
+//! the row above) is built twice, for the baseline CPU and with AVX2, and
+//! chosen once per frame; the choice is left to [`crate::analysis::simd`].
 
 use crate::analysis::params::Connectivity;
 use crate::analysis::simd::multiversion;
@@ -77,6 +81,7 @@ impl Components {
     }
 }
 
+#[derive(Debug, PartialEq)]
 struct UnionFind {
     parent: Vec<u32>,
 }
@@ -131,65 +136,19 @@ pub fn label(
     fill_holes: bool,
 ) -> Components {
     debug_assert_eq!(pixels.len(), width * height);
-    let fg8 = connectivity == Connectivity::Eight;
-    // Background uses the complementary connectivity.
-    let bg8 = !fg8;
-    let mut runs: Vec<Run> = Vec::new();
-    let mut is_fg: Vec<bool> = Vec::new();
-    let mut uf = UnionFind { parent: Vec::new() };
-    // (foreground run, background run) pairs that touch 4-wise.
-    let mut contacts: Vec<(u32, u32)> = Vec::new();
-    let mut prev = 0..0usize;
-    for y in 0..height {
-        let row = &pixels[y * width..(y + 1) * width];
-        let start = runs.len();
-        let mut x = 0;
-        while x < width {
-            let fg = row[x] > threshold;
-            let x0 = x;
-            x = run_end(row, x, threshold, fg);
-            if fg || fill_holes {
-                let id = runs.len() as u32;
-                runs.push(Run {
-                    y: y as u32,
-                    x0: x0 as u32,
-                    x1: x as u32,
-                });
-                is_fg.push(fg);
-                uf.parent.push(id);
-                // Horizontal neighbours alternate kinds when both kinds are kept.
-                if fill_holes && id as usize > start {
-                    let left = id - 1;
-                    contacts.push(if fg { (id, left) } else { (left, id) });
-                }
-            }
-        }
-        let cur = start..runs.len();
-        // Join with the previous row: two pointers over runs sorted by x0.
-        let mut i = prev.start;
-        for j in cur.clone() {
-            let b = runs[j];
-            // Runs of the previous row that end more than one pixel left of b
-            // cannot touch b or any later run of this row.
-            while i < prev.end && runs[i].x1 < b.x0 {
-                i += 1;
-            }
-            let mut k = i;
-            while k < prev.end && runs[k].x0 <= b.x1 {
-                let a = runs[k];
-                let overlap4 = a.x0 < b.x1 && b.x0 < a.x1;
-                match (is_fg[k], is_fg[j]) {
-                    (true, true) if overlap4 || fg8 => uf.union(k as u32, j as u32),
-                    (false, false) if overlap4 || bg8 => uf.union(k as u32, j as u32),
-                    (true, false) if overlap4 => contacts.push((k as u32, j as u32)),
-                    (false, true) if overlap4 => contacts.push((j as u32, k as u32)),
-                    _ => {}
-                }
-                k += 1;
-            }
-        }
-        prev = cur;
-    }
+    let Scan {
+        runs,
+        mut is_fg,
+        mut uf,
+        contacts,
+    } = scan(
+        pixels,
+        width,
+        height,
+        threshold,
+        connectivity == Connectivity::Eight,
+        fill_holes,
+    );
 
     if fill_holes {
         // Background components touching the border are "outside"; the rest are holes.
@@ -238,35 +197,128 @@ pub fn label(
     out
 }
 
+/// What the first pass of [`label`] leaves: every kept run, its kind, the
+/// union-find after joining runs along and across rows, and the
+/// (foreground, background) pairs of runs that touch 4-wise.
+#[derive(Debug, PartialEq)]
+struct Scan {
+    runs: Vec<Run>,
+    is_fg: Vec<bool>,
+    uf: UnionFind,
+    contacts: Vec<(u32, u32)>,
+}
+
 multiversion! {
-    /// First index at or after `from` whose state (`> threshold`) differs from
-    /// `fg`, or `row.len()`. Whole blocks of one state are skipped with a
-    /// vectorised min/max, which is most of a sparse frame.
-    fn run_end(row: &[u16], from: usize, threshold: u16, fg: bool) -> usize {
-        const BLOCK: usize = 32;
-        let mut x = from;
-        while x + BLOCK <= row.len() {
-            let block = &row[x..x + BLOCK];
-            let uniform = if fg {
-                block.iter().fold(u16::MAX, |m, &v| m.min(v)) > threshold
-            } else {
-                block.iter().fold(0, |m, &v| m.max(v)) <= threshold
-            };
-            if !uniform {
-                break;
+    /// The first pass of [`label`]: cuts each row into maximal runs of
+    /// foreground (`> threshold`) and, with `fill_holes`, background, and joins
+    /// each run with the runs of the row above it touches (foreground 8-wise
+    /// when `fg8`, background the other way).
+    fn scan(
+        pixels: &[u16],
+        width: usize,
+        height: usize,
+        threshold: u16,
+        fg8: bool,
+        fill_holes: bool,
+    ) -> Scan {
+        // Background uses the complementary connectivity.
+        let bg8 = !fg8;
+        let mut runs: Vec<Run> = Vec::new();
+        let mut is_fg: Vec<bool> = Vec::new();
+        let mut uf = UnionFind { parent: Vec::new() };
+        // (foreground run, background run) pairs that touch 4-wise.
+        let mut contacts: Vec<(u32, u32)> = Vec::new();
+        let mut prev = 0..0usize;
+        for y in 0..height {
+            let row = &pixels[y * width..(y + 1) * width];
+            let start = runs.len();
+            let mut x = 0;
+            while x < width {
+                let fg = row[x] > threshold;
+                let x0 = x;
+                x = run_end(row, x, threshold, fg);
+                if fg || fill_holes {
+                    let id = runs.len() as u32;
+                    runs.push(Run {
+                        y: y as u32,
+                        x0: x0 as u32,
+                        x1: x as u32,
+                    });
+                    is_fg.push(fg);
+                    uf.parent.push(id);
+                    // Horizontal neighbours alternate kinds when both kinds are kept.
+                    if fill_holes && id as usize > start {
+                        let left = id - 1;
+                        contacts.push(if fg { (id, left) } else { (left, id) });
+                    }
+                }
             }
-            x += BLOCK;
+            let cur = start..runs.len();
+            // Join with the previous row: two pointers over runs sorted by x0.
+            let mut i = prev.start;
+            for j in cur.clone() {
+                let b = runs[j];
+                // Runs of the previous row that end more than one pixel left of b
+                // cannot touch b or any later run of this row.
+                while i < prev.end && runs[i].x1 < b.x0 {
+                    i += 1;
+                }
+                let mut k = i;
+                while k < prev.end && runs[k].x0 <= b.x1 {
+                    let a = runs[k];
+                    let overlap4 = a.x0 < b.x1 && b.x0 < a.x1;
+                    match (is_fg[k], is_fg[j]) {
+                        (true, true) if overlap4 || fg8 => uf.union(k as u32, j as u32),
+                        (false, false) if overlap4 || bg8 => uf.union(k as u32, j as u32),
+                        (true, false) if overlap4 => contacts.push((k as u32, j as u32)),
+                        (false, true) if overlap4 => contacts.push((j as u32, k as u32)),
+                        _ => {}
+                    }
+                    k += 1;
+                }
+            }
+            prev = cur;
         }
-        while x < row.len() && (row[x] > threshold) == fg {
-            x += 1;
+        Scan {
+            runs,
+            is_fg,
+            uf,
+            contacts,
         }
-        x
     }
+}
+
+/// First index at or after `from` whose state (`> threshold`) differs from
+/// `fg`, or `row.len()`. Whole blocks of one state are skipped with a
+/// vectorised min/max, which is most of a sparse frame. Always inlined, so
+/// [`scan`]'s AVX2 build has an AVX2 copy.
+#[inline(always)]
+fn run_end(row: &[u16], from: usize, threshold: u16, fg: bool) -> usize {
+    const BLOCK: usize = 32;
+    let mut x = from;
+    while x + BLOCK <= row.len() {
+        let block = &row[x..x + BLOCK];
+        let uniform = if fg {
+            block.iter().fold(u16::MAX, |m, &v| m.min(v)) > threshold
+        } else {
+            block.iter().fold(0, |m, &v| m.max(v)) <= threshold
+        };
+        if !uniform {
+            break;
+        }
+        x += BLOCK;
+    }
+    while x < row.len() && (row[x] > threshold) == fg {
+        x += 1;
+    }
+    x
 }
 
 #[cfg(test)]
 mod tests {
     use super::*;
+    use crate::analysis::simd::{report_no_avx2, test_inputs};
+    use proptest::prelude::*;
 
     fn areas(c: &Components) -> Vec<u32> {
         let mut a = vec![0; c.count];
@@ -366,5 +418,54 @@ mod tests {
             vec![1, 1]
         );
         assert_eq!(label(&px, 4, 1, 6, Connectivity::Eight, false).count, 0);
+    }
+
+    /// `(width, height, threshold, pixels)` with rows of every awkward length
+    /// and values on both sides of the threshold and right at it.
+    fn images() -> impl Strategy<Value = (usize, usize, u16, Vec<u16>)> {
+        (test_inputs::lengths(), 0usize..6, test_inputs::thresholds()).prop_flat_map(|(w, h, t)| {
+            (
+                Just(w),
+                Just(h),
+                Just(t),
+                test_inputs::pixels_near(t, w * h),
+            )
+        })
+    }
+
+    proptest! {
+        #![proptest_config(ProptestConfig { cases: 500, ..ProptestConfig::default() })]
+
+        #[test]
+        fn scan_avx2_build_matches_the_portable_one(
+            (w, h, t, px) in images(),
+            fg8 in any::<bool>(),
+            fill_holes in any::<bool>(),
+        ) {
+            let portable = scan::portable(&px, w, h, t, fg8, fill_holes);
+            match scan::avx2(&px, w, h, t, fg8, fill_holes) {
+                Some(avx2) => prop_assert_eq!(avx2, portable),
+                None => report_no_avx2("label::scan"),
+            }
+        }
+
+        #[test]
+        fn scan_cuts_the_runs_a_pixel_by_pixel_walk_cuts((w, h, t, px) in images(), fill_holes in any::<bool>()) {
+            let mut expected = Vec::new();
+            for (y, row) in px.chunks_exact(w.max(1)).take(h).enumerate() {
+                let mut x0 = 0;
+                for x in 1..=w {
+                    if x == w || (row[x] > t) != (row[x0] > t) {
+                        if fill_holes || row[x0] > t {
+                            expected.push((Run { y: y as u32, x0: x0 as u32, x1: x as u32 }, row[x0] > t));
+                        }
+                        x0 = x;
+                    }
+                }
+            }
+            let s = scan(&px, w, h, t, true, fill_holes);
+            let got: Vec<(Run, bool)> = s.runs.into_iter().zip(s.is_fg).collect();
+            prop_assert_eq!(got, expected);
+        }
     }
 }

@@ -1,6 +1,9 @@
 //! Per-frame quality measures: background level, saturation, focus and the
 //! fitted illumination field. Turning them into flags is left to the quality
 //! control of the run.
+//!
+//! The pass over the rows is built twice, for the baseline CPU and with AVX2,
+//! and chosen once per frame; the choice is left to [`crate::analysis::simd`].
 
 use crate::analysis::simd::multiversion;
 use crate::analysis::threshold::Histogram;
@@ -45,38 +48,13 @@ pub fn assess(
     let saturation_fraction = raw_hist.counts[usize::from(raw.max_value())] as f64 / n;
     let (w, h) = (raw.width, raw.height);
     let (gx, gy) = (GRID.min(w).max(1), GRID.min(h).max(1));
-    let mut block_sum = vec![0u64; gx * gy];
-    let mut block_n = vec![0u64; gx * gy];
-    // Background histogram of raw values, needed only when segmentation ran on a
-    // corrected frame (otherwise the raw histogram below t is it).
-    let mut bg_hist = segmented.map(|_| vec![0u64; raw.levels()]);
-    let (mut lap_sum, mut lap_sq) = (0i128, 0u128);
-    // Column span of each block, so the inner loops run over contiguous slices.
-    let col_start: Vec<usize> = (0..=gx).map(|b| b * w / gx).collect();
-    for y in 0..h {
-        let row = raw.row(y);
-        let seg_row = segmented.map_or(row, |s| s.row(y));
-        let by = y * gy / h;
-        for b in 0..gx {
-            let (x0, x1) = (col_start[b], col_start[b + 1]);
-            let (sum, n) = masked_sum(&row[x0..x1], &seg_row[x0..x1], t);
-            block_sum[by * gx + b] += sum;
-            block_n[by * gx + b] += n;
-        }
-        if let Some(hist) = bg_hist.as_mut() {
-            for (&v, &sv) in row.iter().zip(seg_row) {
-                if sv <= t {
-                    hist[usize::from(v)] += 1;
-                }
-            }
-        }
-        if y >= 1 && y + 1 < h && w >= 3 {
-            let (up, down) = (raw.row(y - 1), raw.row(y + 1));
-            let (s, s2) = laplacian_sums(up, row, down);
-            lap_sum += i128::from(s);
-            lap_sq += u128::from(s2);
-        }
-    }
+    let RowSums {
+        block_sum,
+        block_n,
+        bg_hist,
+        lap_sum,
+        lap_sq,
+    } = row_sums(raw, segmented, t, gx, gy);
     let interior = (w.saturating_sub(2) * h.saturating_sub(2)) as f64;
     let focus = if interior > 0.0 {
         let mean = lap_sum as f64 / interior;
@@ -102,41 +80,104 @@ pub fn assess(
     }
 }
 
-multiversion! {
-    /// Sum and count of `values` where `seg <= t` (the background's share of a block row).
-    fn masked_sum(values: &[u16], seg: &[u16], t: u16) -> (u64, u64) {
-        let (mut sum, mut n) = (0u64, 0u64);
-        // 4096 samples of at most 65535 fit a u32 sum; narrow lanes vectorise better.
-        for (cv, cs) in values.chunks(4096).zip(seg.chunks(4096)) {
-            let (mut s32, mut n32) = (0u32, 0u32);
-            for (&v, &sv) in cv.iter().zip(cs) {
-                let m = u32::from(sv <= t);
-                s32 += u32::from(v) & 0u32.wrapping_sub(m);
-                n32 += m;
-            }
-            sum += u64::from(s32);
-            n += u64::from(n32);
-        }
-        (sum, n)
-    }
+/// What [`assess`] gathers in its one pass over the rows.
+#[derive(Debug, PartialEq)]
+struct RowSums {
+    /// Sum of the background's raw values in each of `gx × gy` blocks, row-major.
+    block_sum: Vec<u64>,
+    /// Number of background pixels in each block.
+    block_n: Vec<u64>,
+    /// Histogram of the background's raw values, when segmentation ran on a
+    /// corrected frame (otherwise the raw histogram below `t` is it).
+    bg_hist: Option<Vec<u64>>,
+    /// Sum of the 4-neighbour Laplacian over the interior.
+    lap_sum: i128,
+    /// Sum of its squares.
+    lap_sq: u128,
 }
 
 multiversion! {
-    /// Sum and sum of squares of the 4-neighbour Laplacian over the interior of
-    /// one row (`up` and `down` are the rows above and below).
-    fn laplacian_sums(up: &[u16], row: &[u16], down: &[u16]) -> (i64, u64) {
-        let w = row.len();
-        let (mut s, mut s2) = (0i64, 0u64);
-        // |lap| <= 4 * 65535, so i32 holds it and its square fits u64.
-        for x in 1..w - 1 {
-            let lap = i32::from(up[x]) + i32::from(down[x]) + i32::from(row[x - 1])
-                + i32::from(row[x + 1])
-                - 4 * i32::from(row[x]);
-            s += i64::from(lap);
-            s2 += (i64::from(lap) * i64::from(lap)) as u64;
+    /// The pass over the rows behind [`assess`]: background sums per block of
+    /// a `gx × gy` grid, the background histogram when `segmented` is given,
+    /// and the Laplacian's sums. Background is `segmented <= t` (`raw` when
+    /// `segmented` is `None`).
+    fn row_sums(raw: &Frame, segmented: Option<&Frame>, t: u16, gx: usize, gy: usize) -> RowSums {
+        let (w, h) = (raw.width, raw.height);
+        let mut block_sum = vec![0u64; gx * gy];
+        let mut block_n = vec![0u64; gx * gy];
+        let mut bg_hist = segmented.map(|_| vec![0u64; raw.levels()]);
+        let (mut lap_sum, mut lap_sq) = (0i128, 0u128);
+        // Column span of each block, so the inner loops run over contiguous slices.
+        let col_start: Vec<usize> = (0..=gx).map(|b| b * w / gx).collect();
+        for y in 0..h {
+            let row = raw.row(y);
+            let seg_row = segmented.map_or(row, |s| s.row(y));
+            let by = y * gy / h;
+            for b in 0..gx {
+                let (x0, x1) = (col_start[b], col_start[b + 1]);
+                let (sum, n) = masked_sum(&row[x0..x1], &seg_row[x0..x1], t);
+                block_sum[by * gx + b] += sum;
+                block_n[by * gx + b] += n;
+            }
+            if let Some(hist) = bg_hist.as_mut() {
+                for (&v, &sv) in row.iter().zip(seg_row) {
+                    if sv <= t {
+                        hist[usize::from(v)] += 1;
+                    }
+                }
+            }
+            if y >= 1 && y + 1 < h && w >= 3 {
+                let (up, down) = (raw.row(y - 1), raw.row(y + 1));
+                let (s, s2) = laplacian_sums(up, row, down);
+                lap_sum += i128::from(s);
+                lap_sq += u128::from(s2);
+            }
         }
-        (s, s2)
+        RowSums {
+            block_sum,
+            block_n,
+            bg_hist,
+            lap_sum,
+            lap_sq,
+        }
     }
+}
+
+/// Sum and count of `values` where `seg <= t` (the background's share of a
+/// block row). Always inlined, so [`row_sums`]'s AVX2 build has an AVX2 copy.
+#[inline(always)]
+fn masked_sum(values: &[u16], seg: &[u16], t: u16) -> (u64, u64) {
+    let (mut sum, mut n) = (0u64, 0u64);
+    // 4096 samples of at most 65535 fit a u32 sum; narrow lanes vectorise better.
+    for (cv, cs) in values.chunks(4096).zip(seg.chunks(4096)) {
+        let (mut s32, mut n32) = (0u32, 0u32);
+        for (&v, &sv) in cv.iter().zip(cs) {
+            let m = u32::from(sv <= t);
+            s32 += u32::from(v) & 0u32.wrapping_sub(m);
+            n32 += m;
+        }
+        sum += u64::from(s32);
+        n += u64::from(n32);
+    }
+    (sum, n)
+}
+
+/// Sum and sum of squares of the 4-neighbour Laplacian over the interior of
+/// one row (`up` and `down` are the rows above and below; at least 3 wide).
+/// Always inlined, like [`masked_sum`].
+#[inline(always)]
+fn laplacian_sums(up: &[u16], row: &[u16], down: &[u16]) -> (i64, u64) {
+    let w = row.len();
+    let (mut s, mut s2) = (0i64, 0u64);
+    // |lap| <= 4 * 65535, so i32 holds it and its square fits u64.
+    for x in 1..w - 1 {
+        let lap =
+            i32::from(up[x]) + i32::from(down[x]) + i32::from(row[x - 1]) + i32::from(row[x + 1])
+                - 4 * i32::from(row[x]);
+        s += i64::from(lap);
+        s2 += (i64::from(lap) * i64::from(lap)) as u64;
+    }
+    (s, s2)
 }
 
 /// Fits `z = a + b·u + c·v + d·u² + e·v² + f·u·v` (u, v in [-1, 1] across the
@@ -237,6 +278,8 @@ fn solve(a: &mut [[f64; 6]; 6], b: &mut [f64; 6], n: usize) -> Option<[f64; 6]> 
 #[cfg(test)]
 mod tests {
     use super::*;
+    use crate::analysis::simd::{report_no_avx2, test_inputs};
+    use proptest::prelude::*;
 
     fn frame16(w: usize, h: usize, f: impl Fn(usize, usize) -> u16) -> Frame {
         Frame {
@@ -296,5 +339,78 @@ mod tests {
         let q = assess(&f, &Histogram::of(&f), None, 100);
         assert!((q.saturation_fraction - 2.0 / 6.0).abs() < 1e-12);
         assert_eq!(q.background_level, 12.0); // median of 10, 12, 14
+    }
+
+    /// `(raw, segmented, t)`: 16-bit frames whose blocks (a sixteenth of a wide
+    /// row) take every awkward length, up to past the 4096-sample chunks of
+    /// [`masked_sum`], with values on both sides of `t` and right at it.
+    fn frames() -> impl Strategy<Value = (Frame, Option<Frame>, u16)> {
+        let widths = prop_oneof![
+            test_inputs::lengths(),
+            test_inputs::lengths().prop_map(|n| n * GRID),
+            Just(4097 * GRID + 5),
+        ];
+        let heights = prop::sample::select(vec![0usize, 1, 2, 3, 4, 17, 33]);
+        (widths, heights, test_inputs::thresholds()).prop_flat_map(|(w, h, t)| {
+            // Wide frames keep a few rows, so a case stays under a million pixels.
+            let h = if w > 5000 { h.min(4) } else { h };
+            let n = w * h;
+            (
+                test_inputs::pixels_near(t, n),
+                prop::option::of(test_inputs::pixels_near(t, n)),
+            )
+                .prop_map(move |(raw, seg)| {
+                    let frame = |pixels| Frame {
+                        width: w,
+                        height: h,
+                        bit_depth: 16,
+                        pixels,
+                    };
+                    (frame(raw), seg.map(frame), t)
+                })
+        })
+    }
+
+    fn grid(f: &Frame) -> (usize, usize) {
+        (GRID.min(f.width).max(1), GRID.min(f.height).max(1))
+    }
+
+    proptest! {
+        #![proptest_config(ProptestConfig { cases: 300, ..ProptestConfig::default() })]
+
+        #[test]
+        fn row_sums_avx2_build_matches_the_portable_one((raw, seg, t) in frames()) {
+            let (gx, gy) = grid(&raw);
+            let portable = row_sums::portable(&raw, seg.as_ref(), t, gx, gy);
+            match row_sums::avx2(&raw, seg.as_ref(), t, gx, gy) {
+                Some(avx2) => prop_assert_eq!(avx2, portable),
+                None => report_no_avx2("quality::row_sums"),
+            }
+        }
+
+        #[test]
+        fn row_sums_add_up_to_a_pixel_by_pixel_count((raw, seg, t) in frames()) {
+            let (gx, gy) = grid(&raw);
+            let s = row_sums(&raw, seg.as_ref(), t, gx, gy);
+            let segmented = seg.as_ref().unwrap_or(&raw);
+            let background = raw.pixels.iter().zip(&segmented.pixels).filter(|&(_, &sv)| sv <= t);
+            let (sum, n) = background.fold((0u64, 0u64), |(s, n), (&v, _)| (s + u64::from(v), n + 1));
+            prop_assert_eq!(s.block_sum.iter().sum::<u64>(), sum);
+            prop_assert_eq!(s.block_n.iter().sum::<u64>(), n);
+            if let Some(hist) = &s.bg_hist {
+                prop_assert_eq!(hist.iter().sum::<u64>(), n);
+            }
+            let (w, h) = (raw.width, raw.height);
+            let (mut lap_sum, mut lap_sq) = (0i128, 0u128);
+            for y in 1..h.saturating_sub(1) {
+                for x in 1..w.saturating_sub(1) {
+                    let p = |x: usize, y: usize| i128::from(raw.pixels[y * w + x]);
+                    let lap = p(x, y - 1) + p(x, y + 1) + p(x - 1, y) + p(x + 1, y) - 4 * p(x, y);
+                    lap_sum += lap;
+                    lap_sq += (lap * lap) as u128;
+                }
+            }
+            prop_assert_eq!((s.lap_sum, s.lap_sq), (lap_sum, lap_sq));
+        }
     }
 }
