@@ -232,7 +232,8 @@ fn a_recount_after_flattening_is_reported_beside_the_first_result() {
     let config = dir.path().join("fw.toml");
     std::fs::write(
         &config,
-        "[quality]\non_uneven_illumination = \"flatten\"\nflatten_radius_px = 30.0\n",
+        // Every component counts: the remedy, not the size filter, must fix it.
+        "[segment]\nmin_area_px = 0\n[quality]\non_uneven_illumination = \"flatten\"\nflatten_radius_px = 30.0\n",
     )
     .unwrap();
     let run = |json: bool| {

@@ -9,7 +9,7 @@
 use std::sync::Arc;
 
 use framewarden::analysis::{analyze_frame, correct::FlatField, FrameResult};
-use framewarden::analysis::{Background, SegmentParams};
+use framewarden::analysis::{Background, ObjectFilter, SegmentParams};
 use framewarden::frame::Frame;
 use framewarden::synth::{generate, render, Scene, SceneSpec, TruthObject};
 
@@ -74,7 +74,13 @@ fn counts_match_truth_across_seeds_depths_counts_and_noise() {
                 };
                 let scene = generate(&spec).unwrap();
                 assert_eq!(scene.object_count(), count);
-                let r = otsu(&scene.frame);
+                // Every drawn object counts, the smallest (about 18 px) too:
+                // the default size filter would rightly drop those.
+                let keep_all = SegmentParams {
+                    filter: ObjectFilter::KEEP_ALL,
+                    ..SegmentParams::default()
+                };
+                let r = analyze(&scene.frame, &keep_all);
                 assert_eq!(r.object_count, count, "{spec:?}");
             }
         }

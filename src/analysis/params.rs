@@ -106,10 +106,26 @@ pub struct ObjectFilter {
     pub exclude_border: bool,
 }
 
+impl ObjectFilter {
+    /// The default smallest object, in pixels: see `min_area_px` in
+    /// `config/framewarden.toml` for the reasoning.
+    pub const DEFAULT_MIN_AREA_PX: u64 = 20;
+
+    /// A filter that keeps every component (for tests and benches that want
+    /// the raw labelling).
+    pub const KEEP_ALL: ObjectFilter = ObjectFilter {
+        min_area_px: 0,
+        max_area_px: 0,
+        min_area_um2: 0.0,
+        max_area_um2: 0.0,
+        exclude_border: false,
+    };
+}
+
 impl Default for ObjectFilter {
     fn default() -> Self {
         ObjectFilter {
-            min_area_px: 0,
+            min_area_px: ObjectFilter::DEFAULT_MIN_AREA_PX,
             max_area_px: 0,
             min_area_um2: 0.0,
             max_area_um2: 0.0,

@@ -23,9 +23,8 @@ pub struct FrameQuality {
     pub background_level: f64,
     /// Fraction (0..1) of raw pixels at the top of the bit depth (255 or 65535).
     pub saturation_fraction: f64,
-    /// Variance of the 4-neighbour Laplacian of the raw frame over interior pixels;
-    /// 0 for a frame under 3 pixels wide or high. Compare within a run only: it
-    /// depends on content and brightness.
+    /// Sharpness of the objects' edges, independent of the lamp's brightness:
+    /// see [`focus`]. 0 without objects or contrast.
     pub focus: f64,
     /// (max − min) / mean of the surface fitted to the blocks' background means (see
     /// [`illumination`]); 0 for an even field, a dark background or too few
@@ -37,31 +36,26 @@ pub struct FrameQuality {
 const GRID: usize = 16;
 
 /// Measures `raw`; `segmented` is the frame the threshold `t` applies to
-/// (`None` when it is `raw` itself), so background pixels are `segmented <= t`.
+/// (`None` when it is `raw` itself), so background pixels are `segmented <= t`;
+/// `boundary_px` is the summed perimeter of the kept objects (for [`focus`]).
 pub fn assess(
     raw: &Frame,
     raw_hist: &Histogram,
     segmented: Option<&Frame>,
     t: u16,
+    boundary_px: f64,
 ) -> FrameQuality {
     let n = raw.len().max(1) as f64;
     let saturation_fraction = raw_hist.counts[usize::from(raw.max_value())] as f64 / n;
     let (w, h) = (raw.width, raw.height);
     let (gx, gy) = (GRID.min(w).max(1), GRID.min(h).max(1));
+    let sums = row_sums(raw, segmented, t, gx, gy);
     let RowSums {
         block_sum,
         block_n,
         bg_hist,
-        lap_sum,
-        lap_sq,
-    } = row_sums(raw, segmented, t, gx, gy);
-    let interior = (w.saturating_sub(2) * h.saturating_sub(2)) as f64;
-    let focus = if interior > 0.0 {
-        let mean = lap_sum as f64 / interior;
-        (lap_sq as f64 / interior - mean * mean).max(0.0)
-    } else {
-        0.0
-    };
+        ..
+    } = &sums;
     let background_level = match &bg_hist {
         Some(counts) => Histogram {
             total: counts.iter().sum(),
@@ -71,7 +65,20 @@ pub fn assess(
         None => raw_hist.median_upto(usize::from(t)),
     }
     .unwrap_or(0.0);
-    let illumination_change = illumination(&block_sum, &block_n, gx, gy, w * h / (gx * gy));
+    let illumination_change = illumination(block_sum, block_n, gx, gy, w * h / (gx * gy));
+    // Mean raw value of the pixels that are not background.
+    let bg_n: u64 = block_n.iter().sum();
+    let bg_sum: u64 = block_sum.iter().sum();
+    let all_sum: u64 = (raw_hist.counts.iter().enumerate())
+        .map(|(v, &c)| v as u64 * c)
+        .sum();
+    let fg_n = raw.len() as u64 - bg_n.min(raw.len() as u64);
+    let contrast = if fg_n > 0 {
+        (all_sum - bg_sum.min(all_sum)) as f64 / fg_n as f64 - background_level
+    } else {
+        0.0
+    };
+    let focus = focus(&sums, w, h, contrast, boundary_px);
     FrameQuality {
         background_level,
         saturation_fraction,
@@ -94,6 +101,40 @@ struct RowSums {
     lap_sum: i128,
     /// Sum of its squares.
     lap_sq: u128,
+    /// The same two sums over the interior's background pixels only.
+    lap_bg_sum: i128,
+    /// Sum of the background's squared Laplacian.
+    lap_bg_sq: u128,
+    /// Interior background pixels.
+    lap_bg_n: u64,
+}
+
+/// Sharpness of the objects' edges: the energy of the 4-neighbour Laplacian
+/// (its variance over the frame, the focus measure of Pech-Pacheco et al.
+/// 2000, "Diatom autofocusing in brightfield microscopy: a comparative
+/// study", ICPR) above the noise floor measured on the background's own
+/// pixels, per pixel of object boundary, in units of the object-background
+/// contrast squared. The normalisation is ours: a dimmer lamp scales the
+/// Laplacian and the contrast alike, so the ratio stays (noise aside, which
+/// the floor removes); more or fewer objects change the boundary length and
+/// the energy alike. For an edge blurred by a Gaussian of σ pixels the value
+/// falls roughly as 1/σ³. 0 without objects, boundary or contrast.
+fn focus(sums: &RowSums, w: usize, h: usize, contrast: f64, boundary_px: f64) -> f64 {
+    let variance = |sum: i128, sq: u128, n: f64| {
+        if n > 0.0 {
+            let mean = sum as f64 / n;
+            (sq as f64 / n - mean * mean).max(0.0)
+        } else {
+            0.0
+        }
+    };
+    let interior = (w.saturating_sub(2) * h.saturating_sub(2)) as f64;
+    if interior == 0.0 || boundary_px <= 0.0 || contrast <= 0.0 {
+        return 0.0;
+    }
+    let all = variance(sums.lap_sum, sums.lap_sq, interior);
+    let noise = variance(sums.lap_bg_sum, sums.lap_bg_sq, sums.lap_bg_n as f64);
+    (all - noise).max(0.0) * interior / (boundary_px * contrast * contrast)
 }
 
 multiversion! {
@@ -107,6 +148,7 @@ multiversion! {
         let mut block_n = vec![0u64; gx * gy];
         let mut bg_hist = segmented.map(|_| vec![0u64; raw.levels()]);
         let (mut lap_sum, mut lap_sq) = (0i128, 0u128);
+        let (mut lap_bg_sum, mut lap_bg_sq, mut lap_bg_n) = (0i128, 0u128, 0u64);
         // Column span of each block, so the inner loops run over contiguous slices.
         let col_start: Vec<usize> = (0..=gx).map(|b| b * w / gx).collect();
         for y in 0..h {
@@ -128,9 +170,12 @@ multiversion! {
             }
             if y >= 1 && y + 1 < h && w >= 3 {
                 let (up, down) = (raw.row(y - 1), raw.row(y + 1));
-                let (s, s2) = laplacian_sums(up, row, down);
-                lap_sum += i128::from(s);
-                lap_sq += u128::from(s2);
+                let l = laplacian_sums(up, row, down, seg_row, t);
+                lap_sum += i128::from(l.sum);
+                lap_sq += u128::from(l.sq);
+                lap_bg_sum += i128::from(l.bg_sum);
+                lap_bg_sq += u128::from(l.bg_sq);
+                lap_bg_n += l.bg_n;
             }
         }
         RowSums {
@@ -139,6 +184,9 @@ multiversion! {
             bg_hist,
             lap_sum,
             lap_sq,
+            lap_bg_sum,
+            lap_bg_sq,
+            lap_bg_n,
         }
     }
 }
@@ -162,22 +210,44 @@ fn masked_sum(values: &[u16], seg: &[u16], t: u16) -> (u64, u64) {
     (sum, n)
 }
 
+/// The Laplacian's sums over one row's interior, all pixels and background
+/// pixels (`seg <= t`) apart.
+struct LaplacianSums {
+    sum: i64,
+    sq: u64,
+    bg_sum: i64,
+    bg_sq: u64,
+    bg_n: u64,
+}
+
 /// Sum and sum of squares of the 4-neighbour Laplacian over the interior of
-/// one row (`up` and `down` are the rows above and below; at least 3 wide).
-/// Always inlined, like [`masked_sum`].
+/// one row (`up` and `down` are the rows above and below; at least 3 wide),
+/// and the same over its background pixels (`seg <= t`). Always inlined, like
+/// [`masked_sum`].
 #[inline(always)]
-fn laplacian_sums(up: &[u16], row: &[u16], down: &[u16]) -> (i64, u64) {
+fn laplacian_sums(up: &[u16], row: &[u16], down: &[u16], seg: &[u16], t: u16) -> LaplacianSums {
     let w = row.len();
-    let (mut s, mut s2) = (0i64, 0u64);
+    let mut l = LaplacianSums {
+        sum: 0,
+        sq: 0,
+        bg_sum: 0,
+        bg_sq: 0,
+        bg_n: 0,
+    };
     // |lap| <= 4 * 65535, so i32 holds it and its square fits u64.
     for x in 1..w - 1 {
         let lap =
             i32::from(up[x]) + i32::from(down[x]) + i32::from(row[x - 1]) + i32::from(row[x + 1])
                 - 4 * i32::from(row[x]);
-        s += i64::from(lap);
-        s2 += (i64::from(lap) * i64::from(lap)) as u64;
+        let sq = (i64::from(lap) * i64::from(lap)) as u64;
+        let bg = i64::from(seg[x] <= t);
+        l.sum += i64::from(lap);
+        l.sq += sq;
+        l.bg_sum += i64::from(lap) * bg;
+        l.bg_sq += sq * bg as u64;
+        l.bg_n += bg as u64;
     }
-    (s, s2)
+    l
 }
 
 /// Fits `z = a + b·u + c·v + d·u² + e·v² + f·u·v` (u, v in [-1, 1] across the
@@ -293,7 +363,7 @@ mod tests {
     #[test]
     fn flat_frame_has_no_illumination_change_and_no_focus() {
         let f = frame16(64, 48, |_, _| 1000);
-        let q = assess(&f, &Histogram::of(&f), None, 1000);
+        let q = assess(&f, &Histogram::of(&f), None, 1000, 0.0);
         assert_eq!(
             (q.focus, q.background_level, q.saturation_fraction),
             (0.0, 1000.0, 0.0)
@@ -308,7 +378,7 @@ mod tests {
         // mean is 1000 + 10·(4i + 1.5), from 1015 to 1615; the surface spans exactly
         // that, mean 1315: change = 600 / 1315.
         let f = frame16(64, 64, |x, _| 1000 + 10 * x as u16);
-        let q = assess(&f, &Histogram::of(&f), None, u16::MAX);
+        let q = assess(&f, &Histogram::of(&f), None, u16::MAX, 0.0);
         assert!(
             (q.illumination_change - 600.0 / 1315.0).abs() < 1e-9,
             "{}",
@@ -319,24 +389,39 @@ mod tests {
     }
 
     #[test]
-    fn focus_is_the_variance_of_the_laplacian_by_hand() {
-        // 3x3 frame, one interior pixel: Laplacian = 4 neighbours - 4·centre.
-        // Single value -> variance 0. A 4x3 frame with interior (1,1), (2,1):
-        // rows [0 0 0 0],[0 8 0 0],[0 0 0 0]: lap(1,1) = 0 - 32 = -32, lap(2,1) = 8.
-        // mean -12, variance ((−20)² + 20²)/2 = 400.
+    fn focus_by_hand() {
+        // A 4x3 frame, rows [2 2 2 2], [2 10 2 2], [2 2 2 2], threshold 5: one
+        // object pixel (value 10) and background 2 (median), contrast 10 - 2 = 8.
+        // Interior pixels (1,1) and (2,1): lap(1,1) = 4·2 - 4·10 = -32,
+        // lap(2,1) = (2 + 2 + 10 + 2) - 4·2 = 8; mean -12, variance
+        // ((-20)² + 20²) / 2 = 400 over 2 pixels. The background's interior
+        // pixel (2,1) alone has variance 0 (the noise floor). With a boundary of
+        // 4 px: focus = (400 - 0) · 2 / (4 · 8²) = 3.125.
         let f = Frame {
             width: 4,
             height: 3,
             bit_depth: 8,
-            pixels: vec![0, 0, 0, 0, 0, 8, 0, 0, 0, 0, 0, 0],
+            pixels: vec![2, 2, 2, 2, 2, 10, 2, 2, 2, 2, 2, 2],
         };
-        assert_eq!(assess(&f, &Histogram::of(&f), None, 255).focus, 400.0);
+        let focus = |boundary| assess(&f, &Histogram::of(&f), None, 5, boundary).focus;
+        assert_eq!(focus(4.0), 3.125);
+        // The same frame with the lamp at half and an offset of 7: unchanged.
+        let dim = Frame {
+            pixels: f.pixels.iter().map(|&v| v / 2 + 7).collect(),
+            ..f.clone()
+        };
+        assert_eq!(
+            assess(&dim, &Histogram::of(&dim), None, 9, 4.0).focus,
+            3.125
+        );
+        // No objects, no boundary: 0.
+        assert_eq!(focus(0.0), 0.0);
     }
 
     #[test]
     fn saturation_and_background_median() {
         let f = Frame::from_rows_u8(&[&[255, 10, 12], &[14, 200, 255]]);
-        let q = assess(&f, &Histogram::of(&f), None, 100);
+        let q = assess(&f, &Histogram::of(&f), None, 100, 0.0);
         assert!((q.saturation_fraction - 2.0 / 6.0).abs() < 1e-12);
         assert_eq!(q.background_level, 12.0); // median of 10, 12, 14
     }
@@ -402,15 +487,22 @@ mod tests {
             }
             let (w, h) = (raw.width, raw.height);
             let (mut lap_sum, mut lap_sq) = (0i128, 0u128);
+            let (mut bg_sum, mut bg_sq, mut bg_n) = (0i128, 0u128, 0u64);
             for y in 1..h.saturating_sub(1) {
                 for x in 1..w.saturating_sub(1) {
                     let p = |x: usize, y: usize| i128::from(raw.pixels[y * w + x]);
                     let lap = p(x, y - 1) + p(x, y + 1) + p(x - 1, y) + p(x + 1, y) - 4 * p(x, y);
                     lap_sum += lap;
                     lap_sq += (lap * lap) as u128;
+                    if segmented.pixels[y * w + x] <= t {
+                        bg_sum += lap;
+                        bg_sq += (lap * lap) as u128;
+                        bg_n += 1;
+                    }
                 }
             }
             prop_assert_eq!((s.lap_sum, s.lap_sq), (lap_sum, lap_sq));
+            prop_assert_eq!((s.lap_bg_sum, s.lap_bg_sq, s.lap_bg_n), (bg_sum, bg_sq, bg_n));
         }
     }
 }

@@ -75,7 +75,11 @@ mod tests {
             ..SceneSpec::default()
         };
         let scene = synth::generate(&spec).unwrap();
-        let params = SegmentParams::default();
+        // Every component counts: the remedy, not the size filter, must fix it.
+        let params = SegmentParams {
+            filter: crate::analysis::ObjectFilter::KEEP_ALL,
+            ..SegmentParams::default()
+        };
         let first = analyze_frame(&scene.frame, &[], &params, None).unwrap();
         assert!(
             first.illumination_change > 0.25,

@@ -5,20 +5,8 @@
 //! Pure and clock-free: one value in, one chart step out. Which positions exist,
 //! and turning declared drifts into alerts, is [`crate::qc::monitor`]'s job.
 
-use serde::Serialize;
-
-use crate::qc::metrics::Metric;
+use crate::qc::metrics::{Direction, Metric};
 use crate::qc::params::ChartParams;
-
-/// Direction of a declared drift.
-#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize)]
-#[serde(rename_all = "snake_case")]
-pub enum Direction {
-    /// The metric rose above its baseline (JSON `up`).
-    Up,
-    /// The metric fell below its baseline (JSON `down`).
-    Down,
-}
 
 /// What one frame did to a chart.
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]

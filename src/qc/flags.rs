@@ -175,7 +175,11 @@ pub fn frame_flags(m: &FrameMetrics, limits: &FlagLimits, ctx: &PositionContext)
             ),
         );
     }
-    if let Some(base) = ctx.baseline_focus.filter(|&b| b > 0.0) {
+    // Focus needs objects to measure (an empty frame has its own flag).
+    if let Some(base) = ctx
+        .baseline_focus
+        .filter(|&b| b > 0.0 && m.object_count > 0)
+    {
         let limit = base * limits.min_focus_ratio;
         if m.focus < limit {
             flag(

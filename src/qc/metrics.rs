@@ -97,6 +97,14 @@ impl Metric {
         }
     }
 
+    /// Whether a drift of this metric in `direction` is trouble worth an
+    /// alert. Focus only downward: a growing culture or a cleaner field makes
+    /// frames sharper, which never needs anyone at night. Every other metric
+    /// both ways (a brightening lamp or a count surge also needs a look).
+    pub fn harms(self, direction: Direction) -> bool {
+        !(self == Metric::Focus && direction == Direction::Up)
+    }
+
     /// Plain words for messages.
     pub fn describe(self) -> &'static str {
         match self {
@@ -141,6 +149,16 @@ impl Metric {
         }
         .max(f64::MIN_POSITIVE)
     }
+}
+
+/// Direction of a declared drift.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize)]
+#[serde(rename_all = "snake_case")]
+pub enum Direction {
+    /// The metric rose above its baseline (JSON `up`).
+    Up,
+    /// The metric fell below its baseline (JSON `down`).
+    Down,
 }
 
 #[cfg(test)]

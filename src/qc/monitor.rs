@@ -9,9 +9,9 @@
 use std::collections::{BTreeMap, VecDeque};
 
 use crate::qc::alerts::{AlertBook, AlertEvent, AlertState};
-use crate::qc::drift::{median, Chart, Direction, Signal, Step};
+use crate::qc::drift::{median, Chart, Signal, Step};
 use crate::qc::flags::{frame_flags, num, FrameFlag, PositionContext};
-use crate::qc::metrics::{FrameMetrics, Metric};
+use crate::qc::metrics::{Direction, FrameMetrics, Metric};
 use crate::qc::params::QualitySettings;
 
 /// Condition of a stalled acquisition.
@@ -230,7 +230,8 @@ impl RunMonitor {
         self.positions
             .values()
             .filter_map(|p| p.charts.get(metric_index(metric)))
-            .any(|c| c.drift().is_some())
+            .filter_map(|c| c.drift())
+            .any(|direction| metric.harms(direction))
     }
 
     fn record_outcome(&mut self, failed: bool, at_ms: i64, file: &str) -> Option<AlertEvent> {
