@@ -1,0 +1,691 @@
+//! Splitting touching objects: marker-controlled watershed (Beucher & Meyer
+//! 1993) of the distance map, restricted to each object.
+//!
+//! For each labelled object, the Euclidean distance of its pixels to the
+//! nearest pixel outside it ([`crate::analysis::distance`]) rises towards the
+//! middle of every round part. Markers are the maxima of that distance whose
+//! dynamic (Soille's h-maxima: how far the distance must drop on the way to a
+//! higher maximum) is at least `min_depth_px`. An object with one marker is
+//! left exactly as labelled; one with several is flooded from its markers by
+//! priority-queue flooding (Meyer 1991; Vincent & Soille 1991) in order of
+//! decreasing distance.
+//!
+//! Choices, all exact integer arithmetic on squared distances:
+//! - Distances: pixels outside the frame are not background (as in
+//!   `scipy.ndimage.distance_transform_edt`), so an object cut by the frame's
+//!   edge is treated as going on beyond it.
+//! - A marker is one pixel: the first, in raster order, of the highest
+//!   plateau of its basin. The dynamic implies a separation: two markers with
+//!   dynamic `h` are at least about `2h` pixels apart, because the distance
+//!   changes by at most one pixel per pixel travelled; no separate minimum
+//!   separation is needed.
+//! - Flooding pops the highest level first; among equal levels the pixel
+//!   queued first (FIFO, markers queued in raster order). A pixel is queued at
+//!   the lower of its own distance and the level of the pixel that queues it:
+//!   the flood never climbs back up (Meyer's flooding; a pixel above the
+//!   current level is not taken ahead of the others at that level). A pixel
+//!   takes the label of the neighbour that queued it, i.e. the first basin to
+//!   reach it. No watershed line is left: every object pixel belongs to
+//!   exactly one piece, so the objects' union and total area are unchanged.
+//! - Neighbours follow the labelling connectivity; each piece is connected.
+//!
+//! Measuring the pieces is [`crate::analysis::measure`]'s, choosing whether to
+//! split at all is the caller's ([`crate::analysis::segment`]).
+
+use std::cmp::Reverse;
+use std::collections::BinaryHeap;
+
+use crate::analysis::distance::{squared_edt_into, Scratch};
+use crate::analysis::label::{Components, Run};
+use crate::analysis::params::Connectivity;
+
+const UNSET: u32 = u32::MAX;
+
+/// Calls `f` with each in-frame neighbour index of pixel `i`.
+#[inline]
+fn for_neighbours(
+    i: usize,
+    width: usize,
+    height: usize,
+    connectivity: Connectivity,
+    mut f: impl FnMut(usize),
+) {
+    let (x, y) = (i % width, i / width);
+    let (left, right) = (x > 0, x + 1 < width);
+    let (up, down) = (y > 0, y + 1 < height);
+    if up {
+        f(i - width);
+    }
+    if left {
+        f(i - 1);
+    }
+    if right {
+        f(i + 1);
+    }
+    if down {
+        f(i + width);
+    }
+    if connectivity == Connectivity::Eight {
+        if up && left {
+            f(i - width - 1);
+        }
+        if up && right {
+            f(i - width + 1);
+        }
+        if down && left {
+            f(i + width - 1);
+        }
+        if down && right {
+            f(i + width + 1);
+        }
+    }
+}
+
+fn find(parent: &mut [u32], mut i: u32) -> u32 {
+    while parent[i as usize] != i {
+        let p = parent[i as usize];
+        parent[i as usize] = parent[p as usize];
+        i = p;
+    }
+    i
+}
+
+/// The markers of a `width × height` image: a label image, 0 off the markers
+/// and `1..=k` on the `k` marker pixels in raster order.
+///
+/// `sq` holds squared distances ([`crate::analysis::distance::squared_edt`]),
+/// `mask` the object pixels. A marker is the top of a maximum of the distance
+/// whose dynamic is at least `min_depth_px` (distances in pixels, not
+/// squared), and every connected part of the mask gets the marker of its
+/// highest maximum. `min_depth_px` should be positive: at 0 every pixel is a
+/// maximum of dynamic 0. Inputs of mismatched lengths give an empty vector.
+///
+/// The dynamic is found by flooding down from the top (pixels by decreasing
+/// distance, equal distances in raster order) with a union-find: where two
+/// basins meet, the one with the lower top (the later one on a tie) ends, and
+/// its dynamic is its top minus the meeting level.
+///
+/// ```
+/// use framewarden::analysis::{distance::squared_edt, split::markers, Connectivity};
+/// // Two 3 x 3 squares joined by a one-pixel neck on the middle row: each
+/// // square's centre is 2 away from the background (squared 4); the neck is 1
+/// // (squared 1). Dynamic of the second centre: 2 - 1 = 1 pixel.
+/// let rows = [".........", ".###.###.", ".#######.", ".###.###.", "........."];
+/// let mask: Vec<bool> = rows.iter().flat_map(|r| r.bytes().map(|b| b == b'#')).collect();
+/// let d = squared_edt(&mask, 9, 5);
+/// let m = markers(&d, &mask, 9, 5, Connectivity::Eight, 1.0);
+/// assert_eq!((m[2 * 9 + 2], m[2 * 9 + 6]), (1, 2));
+/// assert_eq!(markers(&d, &mask, 9, 5, Connectivity::Eight, 1.5).iter().max(), Some(&1));
+/// ```
+pub fn markers(
+    sq: &[u32],
+    mask: &[bool],
+    width: usize,
+    height: usize,
+    connectivity: Connectivity,
+    min_depth_px: f64,
+) -> Vec<u32> {
+    let n = width.saturating_mul(height);
+    if sq.len() != n || mask.len() != n {
+        return Vec::new();
+    }
+    let mut out = vec![0u32; n];
+    let mut work = Work::default();
+    let peaks = marker_pixels(
+        sq,
+        mask,
+        width,
+        height,
+        connectivity,
+        min_depth_px,
+        &mut work,
+    );
+    for (k, &p) in peaks.iter().enumerate() {
+        out[p as usize] = k as u32 + 1;
+    }
+    out
+}
+
+/// Buffers reused from one object to the next.
+#[derive(Default)]
+struct Work {
+    order: Vec<u64>,
+    parent: Vec<u32>,
+    peak: Vec<u32>,
+    peaks: Vec<u32>,
+    heap: BinaryHeap<(u32, Reverse<u64>, u32)>,
+}
+
+/// The marker pixels of [`markers`], in raster order.
+fn marker_pixels(
+    sq: &[u32],
+    mask: &[bool],
+    width: usize,
+    height: usize,
+    connectivity: Connectivity,
+    min_depth_px: f64,
+    work: &mut Work,
+) -> Vec<u32> {
+    let n = sq.len();
+    // Pixels by decreasing distance, then raster order: the key's high half is
+    // the complemented distance, the low half the index.
+    work.order.clear();
+    work.order.extend(
+        (0..n)
+            .filter(|&i| mask[i])
+            .map(|i| (u64::from(!sq[i]) << 32) | i as u64),
+    );
+    work.order.sort_unstable();
+    work.parent.clear();
+    work.parent.resize(n, UNSET);
+    work.peak.clear();
+    work.peak.resize(n, UNSET);
+    work.peaks.clear();
+    let depth = |top: u32, level: u32| f64::from(top).sqrt() - f64::from(level).sqrt();
+    for k in 0..work.order.len() {
+        let p = (work.order[k] & 0xffff_ffff) as u32;
+        work.parent[p as usize] = p;
+        work.peak[p as usize] = p;
+        let level = sq[p as usize];
+        let (parent, peak, peaks) = (&mut work.parent, &mut work.peak, &mut work.peaks);
+        for_neighbours(p as usize, width, height, connectivity, |q| {
+            if parent[q] == UNSET {
+                return;
+            }
+            let (ra, rb) = (find(parent, p), find(parent, q as u32));
+            if ra == rb {
+                return;
+            }
+            let (ta, tb) = (peak[ra as usize], peak[rb as usize]);
+            // The higher top survives; on equal tops the one reached first
+            // (earlier in the order: smaller index) does.
+            let a_wins = (Reverse(sq[ta as usize]), ta) < (Reverse(sq[tb as usize]), tb);
+            let (win, lose) = if a_wins { (ra, rb) } else { (rb, ra) };
+            let top = peak[lose as usize];
+            if depth(sq[top as usize], level) >= min_depth_px {
+                peaks.push(top);
+            }
+            parent[lose as usize] = win;
+        });
+    }
+    // Each connected part's last basin has no higher maximum: always a marker.
+    for k in 0..work.order.len() {
+        let p = (work.order[k] & 0xffff_ffff) as u32;
+        if work.parent[p as usize] == p {
+            work.peaks.push(work.peak[p as usize]);
+        }
+    }
+    let mut peaks = std::mem::take(&mut work.peaks);
+    peaks.sort_unstable();
+    peaks
+}
+
+/// Floods the mask of a `width × height` image from labelled markers, by
+/// decreasing squared distance `sq`, and returns the label image: every mask
+/// pixel reachable from a marker takes its marker's label, others stay 0.
+///
+/// Markers off the mask are ignored. A pixel is queued at the lower of its
+/// own distance and the level of the pixel that queues it; the highest level
+/// pops first, ties first-in first-out with markers queued in raster order. A
+/// pixel takes the label of the neighbour that queued it, so no watershed line
+/// is left. Inputs of mismatched lengths give
+/// an empty vector.
+///
+/// ```
+/// use framewarden::analysis::{split::watershed, Connectivity};
+/// // One row, markers at both ends (squared distances 1). On the tie the left
+/// // marker pops first (queued first) and labels pixel 1 (squared 2), which
+/// // pops next and labels pixel 2 (squared 3), which labels pixel 3: the
+/// // right marker only pops then, with nothing left to take.
+/// let sq = [1, 2, 3, 1, 1];
+/// let mask = [true; 5];
+/// let labels = watershed(&sq, &mask, &[1, 0, 0, 0, 2], 5, 1, Connectivity::Four);
+/// assert_eq!(labels, vec![1, 1, 1, 1, 2]);
+/// ```
+pub fn watershed(
+    sq: &[u32],
+    mask: &[bool],
+    markers: &[u32],
+    width: usize,
+    height: usize,
+    connectivity: Connectivity,
+) -> Vec<u32> {
+    let n = width.saturating_mul(height);
+    if sq.len() != n || mask.len() != n || markers.len() != n {
+        return Vec::new();
+    }
+    let mut labels: Vec<u32> = markers
+        .iter()
+        .zip(mask)
+        .map(|(&m, &inside)| if inside { m } else { 0 })
+        .collect();
+    let mut heap = BinaryHeap::new();
+    flood(
+        sq,
+        mask,
+        &mut labels,
+        width,
+        height,
+        connectivity,
+        &mut heap,
+    );
+    labels
+}
+
+/// The flooding of [`watershed`] on `labels` (markers in, labels out).
+fn flood(
+    sq: &[u32],
+    mask: &[bool],
+    labels: &mut [u32],
+    width: usize,
+    height: usize,
+    connectivity: Connectivity,
+    heap: &mut BinaryHeap<(u32, Reverse<u64>, u32)>,
+) {
+    heap.clear();
+    let mut age = 0u64;
+    for (i, &l) in labels.iter().enumerate() {
+        if l != 0 {
+            heap.push((sq[i], Reverse(age), i as u32));
+            age += 1;
+        }
+    }
+    while let Some((level, _, p)) = heap.pop() {
+        let label = labels[p as usize];
+        for_neighbours(p as usize, width, height, connectivity, |q| {
+            if mask[q] && labels[q] == 0 {
+                labels[q] = label;
+                // The flood does not climb back: a pixel above the current
+                // level waits at that level.
+                heap.push((sq[q].min(level), Reverse(age), q as u32));
+                age += 1;
+            }
+        });
+    }
+}
+
+/// Splits every object of `components` (a `width × height` frame) that holds
+/// two or more markers of dynamic at least `min_depth_px` into one piece per
+/// marker, and numbers all objects again in raster order of their first
+/// pixel. Objects with one marker keep their runs unchanged; when none splits
+/// the input comes back as it was.
+///
+/// Each object is transformed on its bounding box widened by one pixel
+/// (inside the frame), where every pixel not in the object is background:
+/// the same distances as the whole frame's mask would give (the nearest
+/// pixel outside the object is always background of the frame's mask, and
+/// never beyond the widened box).
+pub fn split(
+    components: Components,
+    width: usize,
+    height: usize,
+    connectivity: Connectivity,
+    min_depth_px: f64,
+) -> Components {
+    let count = components.count;
+    if count == 0 || width == 0 || height == 0 {
+        return components;
+    }
+    // Runs grouped by component (counting sort).
+    let mut first = vec![0usize; count + 1];
+    for &k in &components.component {
+        first[(k as usize).min(count - 1) + 1] += 1;
+    }
+    for k in 0..count {
+        first[k + 1] += first[k];
+    }
+    let mut fill = first.clone();
+    let mut order = vec![0u32; components.runs.len()];
+    for (i, &k) in components.component.iter().enumerate() {
+        let k = (k as usize).min(count - 1);
+        order[fill[k]] = i as u32;
+        fill[k] += 1;
+    }
+
+    let mut scratch = Scratch::default();
+    let mut work = Work::default();
+    let (mut mask, mut sq, mut labels) = (Vec::new(), Vec::new(), Vec::new());
+    // The pieces of split objects: (object, piece runs with piece numbers).
+    let mut pieces: Vec<(usize, Vec<(Run, u32)>)> = Vec::new();
+    for k in 0..count {
+        let runs = order[first[k]..first[k + 1]]
+            .iter()
+            .map(|&i| components.runs[i as usize]);
+        let Some((x0, y0, x1, y1)) = runs.clone().fold(None, |b, r| {
+            let (x0, y0, x1, y1) = b.unwrap_or((r.x0, r.y, r.x1, r.y + 1));
+            Some((x0.min(r.x0), y0.min(r.y), x1.max(r.x1), y1.max(r.y + 1)))
+        }) else {
+            continue;
+        };
+        // The box widened by one pixel where the frame allows.
+        let bx0 = x0.saturating_sub(1) as usize;
+        let by0 = y0.saturating_sub(1) as usize;
+        let bx1 = (x1 as usize + 1).min(width);
+        let by1 = (y1 as usize + 1).min(height);
+        if bx1 <= bx0 || by1 <= by0 {
+            continue;
+        }
+        let (bw, bh) = (bx1 - bx0, by1 - by0);
+        mask.clear();
+        mask.resize(bw * bh, false);
+        for r in runs {
+            let row = (r.y as usize).saturating_sub(by0) * bw;
+            let (a, b) = (r.x0 as usize - bx0, (r.x1 as usize - bx0).min(bw));
+            if row < mask.len() && a < b {
+                mask[row + a..row + b].fill(true);
+            }
+        }
+        sq.clear();
+        sq.resize(bw * bh, 0);
+        squared_edt_into(&mask, bw, bh, &mut sq, &mut scratch);
+        let peaks = marker_pixels(&sq, &mask, bw, bh, connectivity, min_depth_px, &mut work);
+        if peaks.len() < 2 {
+            continue;
+        }
+        labels.clear();
+        labels.resize(bw * bh, 0);
+        for (j, &p) in peaks.iter().enumerate() {
+            labels[p as usize] = j as u32 + 1;
+        }
+        flood(
+            &sq,
+            &mask,
+            &mut labels,
+            bw,
+            bh,
+            connectivity,
+            &mut work.heap,
+        );
+        // The pieces' runs, row by row; a run ends where the label changes.
+        let mut piece_runs = Vec::new();
+        for y in 0..bh {
+            let row = &labels[y * bw..(y + 1) * bw];
+            let mut x = 0;
+            while x < bw {
+                let l = row[x];
+                let start = x;
+                while x < bw && row[x] == l {
+                    x += 1;
+                }
+                if l != 0 {
+                    let run = Run {
+                        y: (by0 + y) as u32,
+                        x0: (bx0 + start) as u32,
+                        x1: (bx0 + x) as u32,
+                    };
+                    piece_runs.push((run, l - 1));
+                }
+            }
+        }
+        pieces.push((k, piece_runs));
+    }
+    if pieces.is_empty() {
+        return components;
+    }
+    renumber(components, pieces)
+}
+
+/// The components with the split objects' runs replaced by their pieces',
+/// runs in raster order and components numbered by their first pixel.
+fn renumber(components: Components, pieces: Vec<(usize, Vec<(Run, u32)>)>) -> Components {
+    let mut is_split = vec![false; components.count];
+    for (k, _) in &pieces {
+        is_split[*k] = true;
+    }
+    // Provisional ids: untouched objects keep theirs, pieces come after.
+    let mut runs: Vec<(Run, u32)> = components
+        .runs
+        .iter()
+        .zip(&components.component)
+        .filter(|(_, &k)| !is_split.get(k as usize).copied().unwrap_or(false))
+        .map(|(&r, &k)| (r, k))
+        .collect();
+    let mut next = components.count as u32;
+    for (_, piece_runs) in pieces {
+        let n = piece_runs.iter().map(|&(_, l)| l + 1).max().unwrap_or(0);
+        runs.extend(piece_runs.into_iter().map(|(r, l)| (r, next + l)));
+        next += n;
+    }
+    runs.sort_unstable_by_key(|&(r, _)| (r.y, r.x0));
+    // Numbers in order of first appearance in raster order.
+    let mut number = vec![UNSET; next as usize];
+    let mut out = Components {
+        runs: Vec::with_capacity(runs.len()),
+        component: Vec::with_capacity(runs.len()),
+        count: 0,
+    };
+    for (r, id) in runs {
+        let slot = &mut number[id as usize];
+        if *slot == UNSET {
+            *slot = out.count as u32;
+            out.count += 1;
+        }
+        out.runs.push(r);
+        out.component.push(*slot);
+    }
+    out
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::analysis::distance::squared_edt;
+    use crate::analysis::label::label;
+
+    fn image(rows: &[&str]) -> (Vec<u16>, usize, usize) {
+        let w = rows[0].len();
+        let px = rows
+            .iter()
+            .flat_map(|r| r.bytes().map(|b| u16::from(b == b'#')))
+            .collect();
+        (px, w, rows.len())
+    }
+
+    fn areas(c: &Components) -> Vec<u32> {
+        let mut a = vec![0; c.count];
+        for (r, &k) in c.runs.iter().zip(&c.component) {
+            a[k as usize] += r.x1 - r.x0;
+        }
+        a
+    }
+
+    fn split_rows(rows: &[&str], conn: Connectivity, fill: bool, depth: f64) -> Components {
+        let (px, w, h) = image(rows);
+        split(label(&px, w, h, 0, conn, fill), w, h, conn, depth)
+    }
+
+    /// Two 5 x 5 squares side by side, joined on their middle row by a
+    /// two-pixel neck (columns 6 and 7), in a frame with a background ring.
+    const TWO_SQUARES: [&str; 7] = [
+        "..............",
+        ".#####..#####.",
+        ".#####..#####.",
+        ".############.",
+        ".#####..#####.",
+        ".#####..#####.",
+        "..............",
+    ];
+
+    #[test]
+    fn two_squares_joined_by_a_neck_split_in_two() {
+        // Each square's centre (3,3) and (10,3) is 3 from the background ring
+        // (squared 9); the neck pixels (6,3) and (7,3) have background right
+        // above and below: squared 1. Dynamic of the later centre: 3 - 1 = 2.
+        // Flooding from the centres meets in the neck: (6,3) is reached from
+        // the left square, (7,3) from the right (each is next to its own
+        // square's edge pixel, distance 1, which pops before either neck
+        // pixel is queued by the other side). Areas 25 + 1 and 25 + 1.
+        for conn in [Connectivity::Four, Connectivity::Eight] {
+            let c = split_rows(&TWO_SQUARES, conn, true, 2.0);
+            assert_eq!(c.count, 2, "{conn:?}");
+            assert_eq!(areas(&c), vec![26, 26], "{conn:?}");
+            // Dynamic 2 < 2.5: no split.
+            assert_eq!(split_rows(&TWO_SQUARES, conn, true, 2.5).count, 1);
+        }
+    }
+
+    #[test]
+    fn a_disc_stays_whole() {
+        // A disc of radius 4 around (5,5): x² + y² <= 16, 9 + 2·7 + 2·7 + 2·5
+        // + 2·1 = 49 pixels. The centre's nearest background pixel is
+        // (1,4)-like at squared 4² + 1² = 17 (closer than (5,0) at 25). Its
+        // 4-neighbours are at most 16 (e.g. (6,5) to (10,5)... to (9,4):
+        // 3² + 1² = 10): one maximum, so one marker at any depth.
+        let rows: Vec<String> = (0..11)
+            .map(|y: i32| {
+                (0..11)
+                    .map(|x: i32| {
+                        if (x - 5).pow(2) + (y - 5).pow(2) <= 16 {
+                            '#'
+                        } else {
+                            '.'
+                        }
+                    })
+                    .collect()
+            })
+            .collect();
+        let rows: Vec<&str> = rows.iter().map(String::as_str).collect();
+        let (px, w, h) = image(&rows);
+        let mask: Vec<bool> = px.iter().map(|&p| p > 0).collect();
+        let d = squared_edt(&mask, w, h);
+        assert_eq!(d[5 * 11 + 5], 17);
+        assert!(d[5 * 11 + 6] < 17 && d[4 * 11 + 5] < 17);
+        for depth in [0.25, 1.0, 2.0] {
+            let c = split_rows(&rows, Connectivity::Eight, true, depth);
+            assert_eq!((c.count, areas(&c)), (1, vec![49]), "depth {depth}");
+        }
+    }
+
+    #[test]
+    fn a_dumbbell_splits_at_its_bar() {
+        // Two 7 x 7 squares (columns 1-7 and 12-18, rows 1-7) joined on row 4
+        // by a bar of 4 pixels (columns 8-11). The centres (4,4) and (15,4)
+        // are 4 from the background (squared 16); the bar's pixels have
+        // background right above: 1. Dynamic 4 - 1 = 3 >= 2: two pieces.
+        // The squares' pixels next to the bar, (7,4) and (12,4), are squared
+        // 2 ((8,3) is background) and pop before any pixel at 1, queueing
+        // (8,4) left and (11,4) right; at level 1 those pop in that order
+        // before (9,4) and (10,4), which they queue: 2 bar pixels each.
+        let rows = [
+            ".....................",
+            ".#######....#######..",
+            ".#######....#######..",
+            ".#######....#######..",
+            ".##################..",
+            ".#######....#######..",
+            ".#######....#######..",
+            ".#######....#######..",
+            ".....................",
+        ];
+        for conn in [Connectivity::Four, Connectivity::Eight] {
+            let c = split_rows(&rows, conn, true, 2.0);
+            assert_eq!((c.count, areas(&c)), (2, vec![51, 51]), "{conn:?}");
+            // Dynamic 3 < 3.5: one object.
+            assert_eq!(split_rows(&rows, conn, true, 3.5).count, 1);
+        }
+    }
+
+    #[test]
+    fn an_object_with_a_hole_splits_only_when_the_hole_is_kept() {
+        // A 13 x 5 rectangle (columns 1-13, rows 1-5) with a one-pixel hole
+        // at its centre (7,3).
+        // Filled: the middle row is 3 from the top and bottom background
+        // (squared 9) from (3,3) to (11,3), one plateau: one object, 65 px.
+        // Kept (fill off): the hole is background, so (5,3) is 2 from it (4)
+        // and the plateau at 9 breaks into (3,3)-(4,3) and (10,3)-(11,3).
+        // Every path between them crosses column 7 (rows 1, 2, 4, 5), each
+        // pixel there 1 from the hole or the outside: saddle 1, dynamic
+        // 3 - 1 = 2. Two pieces of 64 px in all; each keeps its own half (30
+        // px: columns 1-6 or 8-13), column 7's four pixels go to either.
+        let rows = [
+            "...............",
+            ".#############.",
+            ".#############.",
+            ".######.######.",
+            ".#############.",
+            ".#############.",
+            "...............",
+        ];
+        for conn in [Connectivity::Four, Connectivity::Eight] {
+            let on = split_rows(&rows, conn, true, 2.0);
+            assert_eq!((on.count, areas(&on)), (1, vec![65]), "{conn:?}");
+            let off = split_rows(&rows, conn, false, 2.0);
+            let a = areas(&off);
+            assert_eq!((off.count, a.iter().sum::<u32>()), (2, 64), "{conn:?}");
+            assert!(a[0] >= 30 && a[1] >= 30, "{a:?}");
+            for r in off.runs.iter().zip(&off.component) {
+                let (run, &k) = r;
+                // Columns 1-6 are the first piece's, 8-13 the second's.
+                assert!(k == 0 || run.x0 >= 7, "{run:?}");
+                assert!(k == 1 || run.x1 <= 8, "{run:?}");
+            }
+        }
+    }
+
+    #[test]
+    fn pieces_and_other_objects_are_numbered_by_first_pixel() {
+        // A dot at (14,1) was numbered after the joined squares (first pixel
+        // (1,1)); the right piece's first pixel (8,1) comes before it.
+        let rows = [
+            "...............",
+            ".#####..#####.#",
+            ".#####..#####..",
+            ".############..",
+            ".#####..#####..",
+            ".#####..#####..",
+            "...............",
+        ];
+        let c = split_rows(&rows, Connectivity::Eight, true, 2.0);
+        assert_eq!(c.count, 3);
+        assert_eq!(areas(&c), vec![26, 26, 1]);
+        // Runs stay in raster order.
+        assert!(c
+            .runs
+            .windows(2)
+            .all(|w| (w[0].y, w[0].x0) < (w[1].y, w[1].x0)));
+    }
+
+    #[test]
+    fn whole_frame_and_per_object_agree() {
+        // The per-object crops give the same pieces as the whole frame's
+        // markers and flooding.
+        let (px, w, h) = image(&TWO_SQUARES);
+        let mask: Vec<bool> = px.iter().map(|&p| p > 0).collect();
+        let d = squared_edt(&mask, w, h);
+        let m = markers(&d, &mask, w, h, Connectivity::Eight, 2.0);
+        let l = watershed(&d, &mask, &m, w, h, Connectivity::Eight);
+        let c = split_rows(&TWO_SQUARES, Connectivity::Eight, true, 2.0);
+        for (r, &k) in c.runs.iter().zip(&c.component) {
+            for x in r.x0..r.x1 {
+                assert_eq!(l[r.y as usize * w + x as usize], k + 1);
+            }
+        }
+    }
+
+    #[test]
+    fn the_flood_does_not_climb_back() {
+        // One row, markers at both ends on squared distance 1, a ridge of 9
+        // between them. The left marker pops first (FIFO) and queues pixel 1
+        // at min(9, 1) = 1, behind the right marker already queued at 1; the
+        // right marker then queues pixel 2 at 1, and pixel 1's pop finds
+        // pixel 2 taken: [1, 1, 2, 2]. Queued at their own 9, pixel 1 would
+        // pop first and the left basin would take the whole ridge.
+        let labels = watershed(
+            &[1, 9, 9, 1],
+            &[true; 4],
+            &[1, 0, 0, 2],
+            4,
+            1,
+            Connectivity::Four,
+        );
+        assert_eq!(labels, vec![1, 1, 2, 2]);
+    }
+
+    #[test]
+    fn mismatched_inputs_give_nothing() {
+        assert!(markers(&[1, 2], &[true], 2, 1, Connectivity::Four, 1.0).is_empty());
+        assert!(watershed(&[1], &[true], &[1, 2], 1, 1, Connectivity::Four).is_empty());
+        let empty = split(Components::default(), 0, 0, Connectivity::Four, 1.0);
+        assert_eq!(empty.count, 0);
+    }
+}
