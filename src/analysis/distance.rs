@@ -17,6 +17,8 @@
 pub const NO_BACKGROUND: u32 = u32::MAX;
 
 const INF: u64 = u64::MAX;
+/// A column with no background pixel (saturating additions keep it).
+const COL_INF: u32 = u32::MAX;
 
 /// Squared Euclidean distance from each pixel of a `width × height` mask
 /// (row-major, `true` = object) to the nearest `false` pixel; 0 on background.
@@ -52,14 +54,14 @@ pub fn squared_edt(mask: &[bool], width: usize, height: usize) -> Vec<u32> {
 /// small crops allocates once.
 #[derive(Debug, Default)]
 pub struct Scratch {
-    /// Column distances (not squared), then their squares, per pixel.
-    column: Vec<u64>,
+    /// Column distances (not squared) per pixel, [`COL_INF`] for none.
+    column: Vec<u32>,
     /// One row of squared column distances.
     row: Vec<u64>,
     /// Sites of the lower envelope.
     sites: Vec<usize>,
-    /// First integer abscissa at which each envelope site is the lowest.
-    starts: Vec<i64>,
+    /// Where each envelope site starts being the lowest, as a fraction.
+    starts: Vec<(i64, i64)>,
 }
 
 /// [`squared_edt`] into `out` (of length `width × height`, like `mask`),
@@ -80,38 +82,32 @@ pub fn squared_edt_into(
     // memory is read in order.
     let col = &mut scratch.column;
     col.clear();
-    col.resize(n, INF);
-    for y in 0..height {
-        let row = y * width;
-        for x in 0..width {
-            let i = row + x;
-            col[i] = if !mask[i] {
-                0
-            } else if y == 0 || col[i - width] == INF {
-                INF
-            } else {
-                col[i - width] + 1
-            };
-        }
+    col.resize(n, COL_INF);
+    for (x, c) in col[..width].iter_mut().enumerate() {
+        *c = if mask[x] { COL_INF } else { 0 };
     }
-    for y in (0..height.saturating_sub(1)).rev() {
-        let row = y * width;
-        for x in 0..width {
-            let i = row + x;
-            let below = col[i + width];
-            if below != INF && below + 1 < col[i] {
-                col[i] = below + 1;
-            }
-        }
+    for i in width..n {
+        col[i] = if mask[i] {
+            col[i - width].saturating_add(1)
+        } else {
+            0
+        };
+    }
+    for i in (0..n - width).rev() {
+        col[i] = col[i].min(col[i + width].saturating_add(1));
     }
     // Pass 2, along the rows: d(x) = min over q of g(q)² + (x - q)².
     scratch.row.resize(width, INF);
     scratch.sites.resize(width, 0);
-    scratch.starts.resize(width, 0);
+    scratch.starts.resize(width, (0, 1));
     for y in 0..height {
         let cells = &col[y * width..(y + 1) * width];
         for (f, &g) in scratch.row.iter_mut().zip(cells) {
-            *f = if g == INF { INF } else { g * g };
+            *f = if g == COL_INF {
+                INF
+            } else {
+                u64::from(g) * u64::from(g)
+            };
         }
         lower_envelope(
             &scratch.row,
@@ -122,20 +118,28 @@ pub fn squared_edt_into(
     }
 }
 
-/// `ceil(num / den)` for `den > 0`.
-fn ceil_div(num: i64, den: i64) -> i64 {
-    -((-num).div_euclid(den))
+/// `a <= b` for fractions with positive denominators, by cross-multiplying
+/// (in 128 bits only when 64 would overflow).
+#[inline]
+fn at_or_below(a: (i64, i64), b: (i64, i64)) -> bool {
+    match (a.0.checked_mul(b.1), b.0.checked_mul(a.1)) {
+        (Some(l), Some(r)) => l <= r,
+        _ => i128::from(a.0) * i128::from(b.1) <= i128::from(b.0) * i128::from(a.1),
+    }
 }
 
 /// `out[x] = min over q of f[q] + (x - q)²` (INF entries are no sites),
 /// saturated to `u32`; [`NO_BACKGROUND`] everywhere when every `f` is INF.
 ///
-/// The envelope is kept as sites `v[0..=k]` with integer starts `z`: site
-/// `v[j]` is lowest on `z[j] <= x < z[j + 1]`. Two parabolas from sites
-/// `p < q` cross at `s = ((f[q] + q²) - (f[p] + p²)) / (2(q - p))`; q is at
-/// most p's value for every integer `x >= ceil(s)`. Everything is exact
-/// integer arithmetic, so ties cannot be misjudged.
-fn lower_envelope(f: &[u64], out: &mut [u32], v: &mut [usize], z: &mut [i64]) {
+/// The envelope is kept as sites `v[0..=k]`: site `v[j]` is lowest from the
+/// crossing `z[j]` with the site before it on. Two parabolas from sites
+/// `p < q` cross at `s = ((f[q] + q²) - (f[p] + p²)) / (2(q - p))`, kept as
+/// the fraction (numerator, denominator > 0) and compared by
+/// cross-multiplying: exact integer arithmetic, so ties cannot be misjudged,
+/// and no division.
+fn lower_envelope(f: &[u64], out: &mut [u32], v: &mut [usize], z: &mut [(i64, i64)]) {
+    // z[j] <= x, for the fraction z[j] = (num, den), den > 0.
+    let at_or_before = |z: (i64, i64), x: i64| z.0 <= x * z.1;
     let mut k: usize = 0; // number of sites in the envelope
     for (q, &fq) in f.iter().enumerate() {
         if fq == INF {
@@ -145,15 +149,16 @@ fn lower_envelope(f: &[u64], out: &mut [u32], v: &mut [usize], z: &mut [i64]) {
         loop {
             if k == 0 {
                 v[0] = q;
-                z[0] = i64::MIN;
+                z[0] = (i64::MIN, 1);
                 k = 1;
                 break;
             }
             let p = v[k - 1];
             let (pi, fpi) = (p as i64, f[p] as i64);
-            let s = ceil_div((fqi + qi * qi) - (fpi + pi * pi), 2 * (qi - pi));
-            if s <= z[k - 1] {
-                // q is as low as p wherever p was lowest: p leaves the envelope.
+            let s = ((fqi + qi * qi) - (fpi + pi * pi), 2 * (qi - pi));
+            let zk = z[k - 1];
+            // s <= z[k-1]: q is as low as p wherever p was lowest.
+            if k > 1 && at_or_below(s, zk) {
                 k -= 1;
                 continue;
             }
@@ -170,7 +175,7 @@ fn lower_envelope(f: &[u64], out: &mut [u32], v: &mut [usize], z: &mut [i64]) {
     let mut j = 0;
     for (x, o) in out.iter_mut().enumerate() {
         let xi = x as i64;
-        while j + 1 < k && z[j + 1] <= xi {
+        while j + 1 < k && at_or_before(z[j + 1], xi) {
             j += 1;
         }
         let dx = xi - v[j] as i64;

@@ -41,44 +41,35 @@ use crate::analysis::params::Connectivity;
 
 const UNSET: u32 = u32::MAX;
 
-/// Calls `f` with each in-frame neighbour index of pixel `i`.
-#[inline]
-fn for_neighbours(
-    i: usize,
-    width: usize,
-    height: usize,
-    connectivity: Connectivity,
-    mut f: impl FnMut(usize),
-) {
-    let (x, y) = (i % width, i / width);
-    let (left, right) = (x > 0, x + 1 < width);
-    let (up, down) = (y > 0, y + 1 < height);
-    if up {
-        f(i - width);
-    }
-    if left {
-        f(i - 1);
-    }
-    if right {
-        f(i + 1);
-    }
-    if down {
-        f(i + width);
-    }
+/// Index offsets of a pixel's neighbours in an image `stride` pixels wide:
+/// edge neighbours (up, left, right, down), then corners under 8-connectivity.
+/// Used on padded images, whose border is never mask, so a mask pixel's
+/// neighbours are always inside.
+fn offsets(stride: usize, connectivity: Connectivity) -> Vec<isize> {
+    let s = stride as isize;
+    let mut o = vec![-s, -1, 1, s];
     if connectivity == Connectivity::Eight {
-        if up && left {
-            f(i - width - 1);
-        }
-        if up && right {
-            f(i - width + 1);
-        }
-        if down && left {
-            f(i + width - 1);
-        }
-        if down && right {
-            f(i + width + 1);
-        }
+        o.extend([-s - 1, -s + 1, s - 1, s + 1]);
     }
+    o
+}
+
+/// `values` of a `width × height` image inside a border of `fill`, one pixel
+/// wide: `(width + 2) × (height + 2)`.
+fn padded<T: Copy>(values: &[T], width: usize, height: usize, fill: T) -> Vec<T> {
+    let pw = width + 2;
+    let mut out = vec![fill; pw * (height + 2)];
+    for y in 0..height {
+        out[(y + 1) * pw + 1..(y + 1) * pw + 1 + width]
+            .copy_from_slice(&values[y * width..(y + 1) * width]);
+    }
+    out
+}
+
+/// The unpadded index of padded index `i` (a pixel inside the border).
+fn unpadded(i: usize, width: usize) -> usize {
+    let pw = width + 2;
+    (i / pw - 1) * width + (i % pw - 1)
 }
 
 fn find(parent: &mut [u32], mut i: u32) -> u32 {
@@ -131,17 +122,14 @@ pub fn markers(
     }
     let mut out = vec![0u32; n];
     let mut work = Work::default();
-    let peaks = marker_pixels(
-        sq,
-        mask,
-        width,
-        height,
-        connectivity,
-        min_depth_px,
-        &mut work,
+    let (psq, pmask) = (
+        padded(sq, width, height, 0),
+        padded(mask, width, height, false),
     );
+    let offsets = offsets(width + 2, connectivity);
+    let peaks = marker_pixels(&psq, &pmask, &offsets, min_depth_px, false, &mut work);
     for (k, &p) in peaks.iter().enumerate() {
-        out[p as usize] = k as u32 + 1;
+        out[unpadded(p as usize, width)] = k as u32 + 1;
     }
     out
 }
@@ -149,33 +137,153 @@ pub fn markers(
 /// Buffers reused from one object to the next.
 #[derive(Default)]
 struct Work {
-    order: Vec<u64>,
+    order: Vec<u32>,
+    counts: Vec<u32>,
     parent: Vec<u32>,
     peak: Vec<u32>,
     peaks: Vec<u32>,
     heap: BinaryHeap<(u32, Reverse<u64>, u32)>,
 }
 
+/// The mask's pixels into `work.order` by decreasing distance, equal
+/// distances in raster order: a counting sort when the distances are small
+/// beside the pixel count (always, for objects), else a comparison sort.
+fn sort_by_decreasing_distance(sq: &[u32], mask: &[bool], work: &mut Work) {
+    work.order.clear();
+    let (mut count, mut max) = (0usize, 0u32);
+    for (&d, &m) in sq.iter().zip(mask) {
+        if m {
+            count += 1;
+            max = max.max(d);
+        }
+    }
+    if (max as usize) > 4 * count + 1024 {
+        let mut keys: Vec<u64> = (0..sq.len())
+            .filter(|&i| mask[i])
+            .map(|i| (u64::from(!sq[i]) << 32) | i as u64)
+            .collect();
+        keys.sort_unstable();
+        work.order
+            .extend(keys.iter().map(|&k| (k & 0xffff_ffff) as u32));
+        return;
+    }
+    // Bucket `max - d` holds distance d; starts are prefix sums.
+    let starts = &mut work.counts;
+    starts.clear();
+    starts.resize(max as usize + 2, 0);
+    for (&d, &m) in sq.iter().zip(mask) {
+        if m {
+            starts[(max - d) as usize + 1] += 1;
+        }
+    }
+    for b in 1..starts.len() {
+        starts[b] += starts[b - 1];
+    }
+    work.order.resize(count, 0);
+    for (i, (&d, &m)) in sq.iter().zip(mask).enumerate() {
+        if m {
+            let slot = &mut starts[(max - d) as usize];
+            work.order[*slot as usize] = i as u32;
+            *slot += 1;
+        }
+    }
+}
+
+/// The one marker of a connected mask when no second one can exist, found
+/// without sorting; `None` when there may be more (then the full search runs).
+///
+/// Every object pixel is at least 1 from the background, so a maximum below
+/// the global one with top `t` has dynamic at most `sqrt(t) - 1`: only tops
+/// `t >= (1 + min_depth_px)²` can be markers, and each such maximum has a
+/// pixel at least as high as all its neighbours. With no such pixel below
+/// the global top and the global top one connected plateau, the only marker
+/// is that plateau's first pixel, as the full search would find.
+fn single_marker(sq: &[u32], mask: &[bool], offsets: &[isize], min_depth_px: f64) -> Option<u32> {
+    let top = sq
+        .iter()
+        .zip(mask)
+        .filter(|(_, &m)| m)
+        .map(|(&d, _)| d)
+        .max()?;
+    // Rounded down (and a hair lower), so a top that might qualify is kept.
+    let need = ((1.0 + min_depth_px.max(0.0)).powi(2) * (1.0 - 1e-12)).floor();
+    let need = if need >= f64::from(u32::MAX) {
+        u32::MAX
+    } else {
+        need as u32
+    };
+    if has_high_local_maximum(sq, mask, offsets, need, top) {
+        return None;
+    }
+    let mut plateau: Vec<u32> = Vec::new();
+    for (i, (&d, &m)) in sq.iter().zip(mask).enumerate() {
+        if m && d == top {
+            if plateau.len() == 64 {
+                return None;
+            }
+            plateau.push(i as u32);
+        }
+    }
+    // The plateau is connected: grow it from its first pixel.
+    let mut reached = vec![false; plateau.len()];
+    reached[0] = true;
+    let mut stack = vec![0usize];
+    while let Some(j) = stack.pop() {
+        for &o in offsets {
+            let q = (plateau[j] as isize + o) as u32;
+            if let Ok(k) = plateau.binary_search(&q) {
+                if !reached[k] {
+                    reached[k] = true;
+                    stack.push(k);
+                }
+            }
+        }
+    }
+    reached.iter().all(|&r| r).then_some(plateau[0])
+}
+
+/// True when some mask pixel below the top but at least `need` is at least
+/// as high as all its mask neighbours (a possible second marker).
+fn has_high_local_maximum(
+    sq: &[u32],
+    mask: &[bool],
+    offsets: &[isize],
+    need: u32,
+    top: u32,
+) -> bool {
+    (0..sq.len()).any(|i| {
+        let d = sq[i];
+        mask[i]
+            && d >= need
+            && d < top
+            && offsets.iter().all(|&o| {
+                let q = (i as isize + o) as usize;
+                !mask[q] || sq[q] <= d
+            })
+    })
+}
+
 /// The marker pixels of [`markers`], in raster order.
+/// `sq` and `mask` are padded (the border is not mask); `offsets` from
+/// [`offsets`] for their stride. Indices returned are padded ones.
+///
+/// `connected` says the mask is one connected object, which allows the
+/// shortcut of [`single_marker`].
 fn marker_pixels(
     sq: &[u32],
     mask: &[bool],
-    width: usize,
-    height: usize,
-    connectivity: Connectivity,
+    offsets: &[isize],
     min_depth_px: f64,
+    connected: bool,
     work: &mut Work,
 ) -> Vec<u32> {
+    if connected {
+        if let Some(p) = single_marker(sq, mask, offsets, min_depth_px) {
+            return vec![p];
+        }
+    }
     let n = sq.len();
-    // Pixels by decreasing distance, then raster order: the key's high half is
-    // the complemented distance, the low half the index.
-    work.order.clear();
-    work.order.extend(
-        (0..n)
-            .filter(|&i| mask[i])
-            .map(|i| (u64::from(!sq[i]) << 32) | i as u64),
-    );
-    work.order.sort_unstable();
+    sort_by_decreasing_distance(sq, mask, work);
     work.parent.clear();
     work.parent.resize(n, UNSET);
     work.peak.clear();
@@ -183,34 +291,45 @@ fn marker_pixels(
     work.peaks.clear();
     let depth = |top: u32, level: u32| f64::from(top).sqrt() - f64::from(level).sqrt();
     for k in 0..work.order.len() {
-        let p = (work.order[k] & 0xffff_ffff) as u32;
+        let p = work.order[k];
         work.parent[p as usize] = p;
         work.peak[p as usize] = p;
         let level = sq[p as usize];
         let (parent, peak, peaks) = (&mut work.parent, &mut work.peak, &mut work.peaks);
-        for_neighbours(p as usize, width, height, connectivity, |q| {
+        // The root of p's basin; p alone until it meets a neighbour.
+        let mut rp = p;
+        for &o in offsets {
+            let q = (p as isize + o) as usize;
             if parent[q] == UNSET {
-                return;
+                continue;
             }
-            let (ra, rb) = (find(parent, p), find(parent, q as u32));
-            if ra == rb {
-                return;
+            let rq = find(parent, q as u32);
+            if rq == rp {
+                continue;
             }
-            let (ta, tb) = (peak[ra as usize], peak[rb as usize]);
+            if rp == p {
+                // p alone joins the basin: its own top is p, which the
+                // basin's top (reached earlier) beats; its dynamic is 0.
+                parent[p as usize] = rq;
+                rp = rq;
+                continue;
+            }
+            let (tp, tq) = (peak[rp as usize], peak[rq as usize]);
             // The higher top survives; on equal tops the one reached first
             // (earlier in the order: smaller index) does.
-            let a_wins = (Reverse(sq[ta as usize]), ta) < (Reverse(sq[tb as usize]), tb);
-            let (win, lose) = if a_wins { (ra, rb) } else { (rb, ra) };
+            let p_wins = (Reverse(sq[tp as usize]), tp) < (Reverse(sq[tq as usize]), tq);
+            let (win, lose) = if p_wins { (rp, rq) } else { (rq, rp) };
             let top = peak[lose as usize];
             if depth(sq[top as usize], level) >= min_depth_px {
                 peaks.push(top);
             }
             parent[lose as usize] = win;
-        });
+            rp = win;
+        }
     }
     // Each connected part's last basin has no higher maximum: always a marker.
     for k in 0..work.order.len() {
-        let p = (work.order[k] & 0xffff_ffff) as u32;
+        let p = work.order[k];
         if work.parent[p as usize] == p {
             work.peaks.push(work.peak[p as usize]);
         }
@@ -254,32 +373,36 @@ pub fn watershed(
     if sq.len() != n || mask.len() != n || markers.len() != n {
         return Vec::new();
     }
-    let mut labels: Vec<u32> = markers
+    let masked: Vec<u32> = markers
         .iter()
         .zip(mask)
         .map(|(&m, &inside)| if inside { m } else { 0 })
         .collect();
+    let mut labels = padded(&masked, width, height, 0);
+    let (psq, pmask) = (
+        padded(sq, width, height, 0),
+        padded(mask, width, height, false),
+    );
     let mut heap = BinaryHeap::new();
     flood(
-        sq,
-        mask,
+        &psq,
+        &pmask,
         &mut labels,
-        width,
-        height,
-        connectivity,
+        &offsets(width + 2, connectivity),
         &mut heap,
     );
-    labels
+    (0..n)
+        .map(|i| labels[(i / width + 1) * (width + 2) + i % width + 1])
+        .collect()
 }
 
 /// The flooding of [`watershed`] on `labels` (markers in, labels out).
+/// Padded inputs, as for [`marker_pixels`].
 fn flood(
     sq: &[u32],
     mask: &[bool],
     labels: &mut [u32],
-    width: usize,
-    height: usize,
-    connectivity: Connectivity,
+    offsets: &[isize],
     heap: &mut BinaryHeap<(u32, Reverse<u64>, u32)>,
 ) {
     heap.clear();
@@ -292,7 +415,8 @@ fn flood(
     }
     while let Some((level, _, p)) = heap.pop() {
         let label = labels[p as usize];
-        for_neighbours(p as usize, width, height, connectivity, |q| {
+        for &o in offsets {
+            let q = (p as isize + o) as usize;
             if mask[q] && labels[q] == 0 {
                 labels[q] = label;
                 // The flood does not climb back: a pixel above the current
@@ -300,7 +424,7 @@ fn flood(
                 heap.push((sq[q].min(level), Reverse(age), q as u32));
                 age += 1;
             }
-        });
+        }
     }
 }
 
@@ -310,8 +434,8 @@ fn flood(
 /// pixel. Objects with one marker keep their runs unchanged; when none splits
 /// the input comes back as it was.
 ///
-/// Each object is transformed on its bounding box widened by one pixel
-/// (inside the frame), where every pixel not in the object is background:
+/// Each object is transformed on its bounding box widened by one pixel,
+/// where every pixel inside the frame and not in the object is background:
 /// the same distances as the whole frame's mask would give (the nearest
 /// pixel outside the object is always background of the frame's mask, and
 /// never beyond the widened box).
@@ -344,7 +468,8 @@ pub fn split(
 
     let mut scratch = Scratch::default();
     let mut work = Work::default();
-    let (mut mask, mut sq, mut labels) = (Vec::new(), Vec::new(), Vec::new());
+    let (mut mask, mut edt_mask) = (Vec::new(), Vec::new());
+    let (mut sq, mut labels) = (Vec::new(), Vec::new());
     // The pieces of split objects: (object, piece runs with piece numbers).
     let mut pieces: Vec<(usize, Vec<(Run, u32)>)> = Vec::new();
     for k in 0..count {
@@ -357,28 +482,38 @@ pub fn split(
         }) else {
             continue;
         };
-        // The box widened by one pixel where the frame allows.
-        let bx0 = x0.saturating_sub(1) as usize;
-        let by0 = y0.saturating_sub(1) as usize;
-        let bx1 = (x1 as usize + 1).min(width);
-        let by1 = (y1 as usize + 1).min(height);
-        if bx1 <= bx0 || by1 <= by0 {
-            continue;
-        }
-        let (bw, bh) = (bx1 - bx0, by1 - by0);
+        // The box widened by one pixel on every side (`px = x - x0 + 1`);
+        // the widening is background inside the frame and, for the distance
+        // only, not background outside it. The flooding's mask is the
+        // object, never on the box's border.
+        let (bw, bh) = ((x1 - x0) as usize + 2, (y1 - y0) as usize + 2);
         mask.clear();
         mask.resize(bw * bh, false);
         for r in runs {
-            let row = (r.y as usize).saturating_sub(by0) * bw;
-            let (a, b) = (r.x0 as usize - bx0, (r.x1 as usize - bx0).min(bw));
-            if row < mask.len() && a < b {
-                mask[row + a..row + b].fill(true);
+            let row = (r.y - y0 + 1) as usize * bw;
+            mask[row + (r.x0 - x0 + 1) as usize..row + (r.x1 - x0 + 1) as usize].fill(true);
+        }
+        edt_mask.clear();
+        edt_mask.extend_from_slice(&mask);
+        for y in 0..bh {
+            if x0 == 0 {
+                edt_mask[y * bw] = true;
             }
+            if x1 as usize >= width {
+                edt_mask[y * bw + bw - 1] = true;
+            }
+        }
+        if y0 == 0 {
+            edt_mask[..bw].fill(true);
+        }
+        if y1 as usize >= height {
+            edt_mask[(bh - 1) * bw..].fill(true);
         }
         sq.clear();
         sq.resize(bw * bh, 0);
-        squared_edt_into(&mask, bw, bh, &mut sq, &mut scratch);
-        let peaks = marker_pixels(&sq, &mask, bw, bh, connectivity, min_depth_px, &mut work);
+        squared_edt_into(&edt_mask, bw, bh, &mut sq, &mut scratch);
+        let offsets = offsets(bw, connectivity);
+        let peaks = marker_pixels(&sq, &mask, &offsets, min_depth_px, true, &mut work);
         if peaks.len() < 2 {
             continue;
         }
@@ -387,31 +522,23 @@ pub fn split(
         for (j, &p) in peaks.iter().enumerate() {
             labels[p as usize] = j as u32 + 1;
         }
-        flood(
-            &sq,
-            &mask,
-            &mut labels,
-            bw,
-            bh,
-            connectivity,
-            &mut work.heap,
-        );
+        flood(&sq, &mask, &mut labels, &offsets, &mut work.heap);
         // The pieces' runs, row by row; a run ends where the label changes.
         let mut piece_runs = Vec::new();
-        for y in 0..bh {
+        for y in 1..bh - 1 {
             let row = &labels[y * bw..(y + 1) * bw];
-            let mut x = 0;
-            while x < bw {
+            let mut x = 1;
+            while x < bw - 1 {
                 let l = row[x];
                 let start = x;
-                while x < bw && row[x] == l {
+                while x < bw - 1 && row[x] == l {
                     x += 1;
                 }
                 if l != 0 {
                     let run = Run {
-                        y: (by0 + y) as u32,
-                        x0: (bx0 + start) as u32,
-                        x1: (bx0 + x) as u32,
+                        y: y0 + y as u32 - 1,
+                        x0: x0 + start as u32 - 1,
+                        x1: x0 + x as u32 - 1,
                     };
                     piece_runs.push((run, l - 1));
                 }
