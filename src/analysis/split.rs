@@ -352,14 +352,15 @@ fn marker_pixels(
 ///
 /// ```
 /// use framewarden::analysis::{split::watershed, Connectivity};
-/// // One row, markers at both ends (squared distances 1). On the tie the left
-/// // marker pops first (queued first) and labels pixel 1 (squared 2), which
-/// // pops next and labels pixel 2 (squared 3), which labels pixel 3: the
-/// // right marker only pops then, with nothing left to take.
+/// // One row, markers at both ends (squared distances 1). The flood does
+/// // not climb back: pixels 1 (squared 2) and 2 (squared 3) are queued at
+/// // level 1, the level of the pixel queueing them, so all pop in queue
+/// // order: the left marker (queues pixel 1), the right marker (queues
+/// // pixel 3), pixel 1 (queues pixel 2), pixel 3 (nothing left to take).
 /// let sq = [1, 2, 3, 1, 1];
 /// let mask = [true; 5];
 /// let labels = watershed(&sq, &mask, &[1, 0, 0, 0, 2], 5, 1, Connectivity::Four);
-/// assert_eq!(labels, vec![1, 1, 1, 1, 2]);
+/// assert_eq!(labels, vec![1, 1, 1, 2, 2]);
 /// ```
 pub fn watershed(
     sq: &[u32],
