@@ -111,10 +111,11 @@ impl Split {
     /// The depth used when none is given. Two discs of radius `r` whose
     /// centres are `D` apart meet in a neck of half-width `sqrt(r² - D²/4)`,
     /// so the smaller maximum's dynamic is about `r - sqrt(r² - D²/4)`:
-    /// overlapping by `r/2` (`D = 1.5 r`) it is `0.34 r`, 2 px or more for
-    /// nuclei of radius 6 px and up. A single disc has one maximum, and the
-    /// pixel grid puts bumps well under 1 px on the ridge of an ellipse, so
-    /// 2 px leaves single objects whole.
+    /// overlapping by `r/2` (`D = 1.5 r`) it is `0.34 r`: such pairs are
+    /// split from a radius of about 10 px (at 8 px the pixel grid lowers the
+    /// dip below 2 px). A single disc has one maximum, and the pixel grid's
+    /// bumps on the ridge of an ellipse (tested up to 2:1) stay below 2 px,
+    /// so single objects stay whole.
     pub const DEFAULT_MIN_DEPTH_PX: f64 = 2.0;
 
     /// The name written in the configuration.
