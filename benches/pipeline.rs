@@ -11,7 +11,9 @@ use std::process::Command;
 use std::sync::atomic::{AtomicUsize, Ordering};
 use std::time::Instant;
 
-use framewarden::analysis::{label, measure, quality, threshold, Connectivity, ObjectFilter};
+use framewarden::analysis::{
+    label, measure, quality, split, threshold, Connectivity, ObjectFilter, Split,
+};
 use framewarden::decode::{self, DecodeLimits};
 use framewarden::pipeline::analyze_file;
 use framewarden::pipeline::PipelineParams;
@@ -20,6 +22,8 @@ use framewarden::synth::{self, SceneSpec};
 /// Targets: our time at most 1/4 of OpenCV's and 1/25 of scikit-image's.
 const TARGET_VS_OPENCV: f64 = 4.0;
 const TARGET_VS_SKIMAGE: f64 = 25.0;
+/// Target: splitting touching objects at most doubles our pipeline's time.
+const TARGET_SPLIT_COST: f64 = 2.0;
 
 /// The system allocator, counting live and peak heap bytes so the bench can
 /// report how many frame-sized buffers one analysis holds at once.
@@ -171,10 +175,18 @@ fn ms(t: Instant) -> f64 {
     t.elapsed().as_secs_f64() * 1e3
 }
 
-fn time_ours(files: &[PathBuf], reps: usize) -> (f64, Vec<Summary>) {
-    let params = PipelineParams::default();
+/// The pipeline's parameters with splitting on at its default depth.
+fn split_params() -> PipelineParams {
+    let mut params = PipelineParams::default();
+    params.segment.split = Split::Distance {
+        min_depth_px: Split::DEFAULT_MIN_DEPTH_PX,
+    };
+    params
+}
+
+fn time_ours(files: &[PathBuf], reps: usize, params: &PipelineParams) -> (f64, Vec<Summary>) {
     let run =
-        |f: &Path| analyze_file(f, &params).unwrap_or_else(|e| panic!("bench frame failed: {e}"));
+        |f: &Path| analyze_file(f, params).unwrap_or_else(|e| panic!("bench frame failed: {e}"));
     run(&files[0]); // warm-up
     let mut times = Vec::new();
     let mut summaries = Vec::new();
@@ -197,21 +209,22 @@ fn time_ours(files: &[PathBuf], reps: usize) -> (f64, Vec<Summary>) {
     (median(times), summaries)
 }
 
-const STAGES: [&str; 6] = [
+const STAGES: [&str; 7] = [
     "decode",
     "histogram",
     "Otsu + separability",
     "label + fill",
     "measure",
     "frame QC",
+    "split (when on)",
 ];
 
 /// Median ms of each stage, called one by one through the public modules the
 /// pipeline is built from.
-fn time_stages(files: &[PathBuf], reps: usize) -> [f64; 6] {
+fn time_stages(files: &[PathBuf], reps: usize) -> [f64; 7] {
     let limits = DecodeLimits::default();
     let filter = ObjectFilter::default();
-    let mut times: [Vec<f64>; 6] = Default::default();
+    let mut times: [Vec<f64>; 7] = Default::default();
     for _ in 0..reps {
         for f in files {
             let t = Instant::now();
@@ -235,11 +248,23 @@ fn time_stages(files: &[PathBuf], reps: usize) -> [f64; 6] {
                 true,
             );
             times[3].push(ms(t));
+            let copy = comps.clone();
             let t = Instant::now();
-            std::hint::black_box(measure::measure(&frame, &[], &comps, &filter, None));
+            std::hint::black_box(split::split(
+                copy,
+                frame.width,
+                frame.height,
+                Connectivity::Eight,
+                Split::DEFAULT_MIN_DEPTH_PX,
+            ));
+            times[6].push(ms(t));
+            let t = Instant::now();
+            let measured =
+                std::hint::black_box(measure::measure(&frame, &[], &comps, &filter, None));
             times[4].push(ms(t));
+            let boundary: f64 = measured.objects.iter().map(|o| o.perimeter_px).sum();
             let t = Instant::now();
-            std::hint::black_box(quality::assess(&frame, &hist, None, level));
+            std::hint::black_box(quality::assess(&frame, &hist, None, level, boundary));
             times[5].push(ms(t));
         }
     }
@@ -327,7 +352,8 @@ fn main() {
         opts.reps
     );
 
-    let (ours_ms, ours) = time_ours(&files, opts.reps);
+    let (ours_ms, ours) = time_ours(&files, opts.reps, &PipelineParams::default());
+    let (split_ms, split_summaries) = time_ours(&files, opts.reps, &split_params());
     let params = PipelineParams::default();
     let (_, peak) = peak_heap_during(|| analyze_file(&files[0], &params));
     let frame_bytes = (opts.size * opts.size * 2) as f64;
@@ -342,7 +368,16 @@ fn main() {
         "\nmedian ms/frame (full pipeline: decode + Otsu + fill + label + measure + frame QC)"
     );
     println!("  framewarden   {ours_ms:9.1}");
-    let mut rows = vec![("framewarden", ours.clone())];
+    println!(
+        "  + split       {split_ms:9.1}   split on/off = {:.2}   target ≤ {TARGET_SPLIT_COST:.0}: {}",
+        split_ms / ours_ms,
+        if split_ms <= TARGET_SPLIT_COST * ours_ms {
+            "met"
+        } else {
+            "NOT met"
+        }
+    );
+    let mut rows = vec![("framewarden", ours.clone()), ("+ split", split_summaries)];
     if let Some(v) = &reference {
         for (name, key, target) in [
             ("OpenCV", "opencv", TARGET_VS_OPENCV),
@@ -356,6 +391,16 @@ fn main() {
             );
             rows.push((name, reference_summaries(&v[key])));
         }
+        let cv_ms = v["opencv"]["ms_per_frame"].as_f64().unwrap_or(f64::NAN);
+        let cv_split_ms = v["opencv_split"]["ms_per_frame"]
+            .as_f64()
+            .unwrap_or(f64::NAN);
+        println!(
+            "  OpenCV+split  {cv_split_ms:9.1}   split on/off = {:.2}   ours+split/OpenCV+split = 1/{:.1}",
+            cv_split_ms / cv_ms,
+            cv_split_ms / split_ms
+        );
+        rows.push(("OpenCV+split", reference_summaries(&v["opencv_split"])));
     }
 
     println!(

@@ -111,17 +111,29 @@ fn blur_is_flagged_and_a_dimmer_lamp_is_not_on_synthetic_scenes() {
         ("blurred σ = 3 px", 1.0, 3.0, true),
         ("blurred σ = 2 px, lamp at 50%", 0.5, 2.0, true),
     ] {
-        let m = focus(&frame(camera(&light(&spec, lamp, blur), 2.0, 100.0, 7), w, h));
-        eprintln!("{what}: focus {:.4} = {:.0}% of the baseline {base:.4}", m.focus, 100.0 * m.focus / base);
-        assert_eq!(out_of_focus(&m, base), flagged, "{what}: {} against {base}", m.focus);
+        let m = focus(&frame(
+            camera(&light(&spec, lamp, blur), 2.0, 100.0, 7),
+            w,
+            h,
+        ));
+        eprintln!(
+            "{what}: focus {:.4} = {:.0}% of the baseline {base:.4}",
+            m.focus,
+            100.0 * m.focus / base
+        );
+        assert_eq!(
+            out_of_focus(&m, base),
+            flagged,
+            "{what}: {} against {base}",
+            m.focus
+        );
     }
 }
 
 #[test]
 fn blur_is_flagged_and_a_dimmer_lamp_is_not_on_the_real_nuclei_image() {
-    let case = accuracy_support::nuclei_case().unwrap_or_else(|e| {
-        panic!("the real nuclei image is needed and could not be had: {e}")
-    });
+    let case = accuracy_support::nuclei_case()
+        .unwrap_or_else(|e| panic!("the real nuclei image is needed and could not be had: {e}"));
     let f = &case.frame;
     let base = focus(f).focus;
     assert!(base > 0.0);
@@ -132,9 +144,21 @@ fn blur_is_flagged_and_a_dimmer_lamp_is_not_on_the_real_nuclei_image() {
     let half: Vec<f64> = expected.iter().map(|v| v / 2.0).collect();
     let dim = frame(camera(&half, 0.5, 0.0, 3), f.width, f.height);
     let blurred = gaussian(f, 2.0);
-    for (what, g, flagged) in [("lamp at 50%", &dim, false), ("blurred σ = 2 px", &blurred, true)] {
+    for (what, g, flagged) in [
+        ("lamp at 50%", &dim, false),
+        ("blurred σ = 2 px", &blurred, true),
+    ] {
         let m = focus(g);
-        eprintln!("real image, {what}: focus {:.4} = {:.0}% of {base:.4}", m.focus, 100.0 * m.focus / base);
-        assert_eq!(out_of_focus(&m, base), flagged, "{what}: {} against {base}", m.focus);
+        eprintln!(
+            "real image, {what}: focus {:.4} = {:.0}% of {base:.4}",
+            m.focus,
+            100.0 * m.focus / base
+        );
+        assert_eq!(
+            out_of_focus(&m, base),
+            flagged,
+            "{what}: {} against {base}",
+            m.focus
+        );
     }
 }

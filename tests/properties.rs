@@ -1,9 +1,12 @@
 //! Property tests of the analysis core's invariants on random small masks:
 //! filling never removes foreground, counts do not change under transposition
-//! and flips, runs stay inside the frame, and the area measured equals the
-//! pixels labelled.
+//! and flips, runs stay inside the frame, the area measured equals the
+//! pixels labelled, and splitting touching objects keeps every object pixel
+//! while giving at most one piece per marker.
 
-use framewarden::analysis::label::label;
+use framewarden::analysis::distance::squared_edt;
+use framewarden::analysis::label::{label, Components};
+use framewarden::analysis::split::{markers, split};
 use framewarden::analysis::{analyze_frame, FrameResult};
 use framewarden::analysis::{Connectivity, Method, SegmentParams};
 use framewarden::frame::Frame;
@@ -22,6 +25,49 @@ fn frames() -> impl Strategy<Value = Frame> {
                 .collect(),
         })
     })
+}
+
+/// Unions of a few random discs: overlapping, touching and cut by the edge.
+fn disc_frames() -> impl Strategy<Value = Frame> {
+    (8usize..40, 8usize..40).prop_flat_map(|(w, h)| {
+        proptest::collection::vec((0..w as i64, 0..h as i64, 1i64..9), 1..7).prop_map(
+            move |discs| Frame {
+                width: w,
+                height: h,
+                bit_depth: 8,
+                pixels: (0..w * h)
+                    .map(|i| {
+                        let (x, y) = ((i % w) as i64, (i / w) as i64);
+                        let inside = discs
+                            .iter()
+                            .any(|&(cx, cy, r)| (x - cx).pow(2) + (y - cy).pow(2) <= r * r);
+                        if inside {
+                            200
+                        } else {
+                            0
+                        }
+                    })
+                    .collect(),
+            },
+        )
+    })
+}
+
+/// How many times each pixel is covered by the runs, and whether every
+/// component number below `count` is used.
+fn coverage(c: &Components, w: usize, h: usize) -> (Vec<u8>, bool) {
+    let mut seen = vec![0u8; w * h];
+    let mut used = vec![false; c.count];
+    for (r, &k) in c.runs.iter().zip(&c.component) {
+        for x in r.x0..r.x1 {
+            seen[r.y as usize * w + x as usize] += 1;
+        }
+        if let Some(u) = used.get_mut(k as usize) {
+            *u = true;
+        }
+    }
+    let all_used = used.iter().all(|&u| u) && c.component.iter().all(|&k| (k as usize) < c.count);
+    (seen, all_used)
 }
 
 fn transform(f: &Frame, map: impl Fn(usize, usize) -> (usize, usize), w: usize, h: usize) -> Frame {
@@ -139,5 +185,46 @@ proptest! {
         }
         let total: u64 = r.objects.iter().map(|o| o.area_px).sum();
         prop_assert!((r.foreground_fraction - total as f64 / f.len() as f64).abs() < 1e-12);
+    }
+}
+
+proptest! {
+    #![proptest_config(ProptestConfig { cases: 300, ..ProptestConfig::default() })]
+
+    #[test]
+    fn splitting_keeps_every_pixel_and_gives_at_most_one_piece_per_marker(
+        f in prop_oneof![frames(), disc_frames()],
+        conn in prop_oneof![Just(Connectivity::Four), Just(Connectivity::Eight)],
+        fill in any::<bool>(),
+        depth in prop_oneof![Just(0.5), Just(1.0), Just(2.0), Just(4.0)],
+    ) {
+        let (w, h) = (f.width, f.height);
+        let labelled = label(&f.pixels, w, h, 100, conn, fill);
+        let (before, _) = coverage(&labelled, w, h);
+        let mask: Vec<bool> = before.iter().map(|&n| n > 0).collect();
+        let d = squared_edt(&mask, w, h);
+        let n_markers = markers(&d, &mask, w, h, conn, depth).iter().filter(|&&m| m > 0).count();
+        let count_before = labelled.count;
+        let parts = split(labelled, w, h, conn, depth);
+        let (after, all_used) = coverage(&parts, w, h);
+        // The union of object pixels is unchanged, each pixel in one piece.
+        prop_assert_eq!(&after, &before);
+        prop_assert!(after.iter().all(|&n| n <= 1));
+        prop_assert!(all_used);
+        // Never fewer objects than labelled, never more than markers.
+        prop_assert!(parts.count >= count_before);
+        prop_assert!(parts.count <= n_markers);
+        // In fact equal: each object's markers on its own are the whole
+        // mask's markers inside it, and each marker grows one piece.
+        prop_assert_eq!(parts.count, n_markers);
+        // Runs in raster order, numbered by first pixel.
+        prop_assert!(parts.runs.windows(2).all(|r| (r[0].y, r[0].x0) < (r[1].y, r[1].x0)));
+        let mut next = 0;
+        for &k in &parts.component {
+            prop_assert!(k <= next);
+            if k == next {
+                next += 1;
+            }
+        }
     }
 }

@@ -119,7 +119,8 @@ fn corrections_and_quality_match_scipy_and_numpy() {
         if rel(bc, c.bimodality) > 1e-9 {
             failures.push(format!("{}: bimodality {bc} vs {}", c.name, c.bimodality));
         }
-        let q = assess(&frame, &hist, None, c.threshold);
+        // The boundary length make_quality_reference.py uses (BOUNDARY_PX).
+        let q = assess(&frame, &hist, None, c.threshold, 1000.0);
         // Integer sums here, float64 in numpy: agreement to 1e-9 relative.
         if rel(q.focus, c.focus) > 1e-9 {
             failures.push(format!("{}: focus {} vs {}", c.name, q.focus, c.focus));

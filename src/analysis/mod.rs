@@ -5,11 +5,13 @@
 //! all call [`analyze_frame`].
 //!
 //! Files from the bottom up: [`params`] (the core's own parameter types),
-//! [`result`], [`threshold`], [`correct`], [`label`], [`measure`], [`quality`],
-//! [`segment`] (the whole frame) and [`recount`] (the second segmentation of an
-//! unevenly lit frame). No file imports one above it.
+//! [`result`], [`threshold`], [`correct`], [`label`], [`distance`] (the
+//! Euclidean distance transform), [`split`] (touching objects cut apart),
+//! [`measure`], [`quality`], [`segment`] (the whole frame) and [`recount`]
+//! (the second segmentation of an unevenly lit frame). No file imports one above it.
 
 pub mod correct;
+pub mod distance;
 pub mod label;
 pub mod measure;
 pub mod params;
@@ -18,9 +20,10 @@ pub mod recount;
 pub mod result;
 pub mod segment;
 mod simd;
+pub mod split;
 pub mod threshold;
 
-pub use params::{Background, Connectivity, Method, ObjectFilter, SegmentParams};
+pub use params::{Background, Connectivity, Method, ObjectFilter, SegmentParams, Split};
 pub use recount::Recount;
 pub use result::{AnalysisError, ChannelIntensity, FrameResult, ObjectMeasures};
 pub use segment::{analyze_frame, segment_frame, Segmented};

@@ -1,16 +1,17 @@
 //! The pure per-frame analysis: `(frame pixels, parameters) -> FrameResult`.
 //!
-//! Correct, threshold, label (with hole filling), measure, and the frame's
-//! quality measures, in that order. No I/O, no clock, no global state;
+//! Correct, threshold, label (with hole filling), split touching objects when
+//! asked, measure, and the frame's quality measures, in that order. No I/O, no clock, no global state;
 //! decoding and the file are [`crate::pipeline`]'s.
 
-use crate::analysis::params::{Background, Method, SegmentParams};
+use crate::analysis::params::{Background, Method, SegmentParams, Split};
 use crate::analysis::result::{AnalysisError, FrameResult};
-use crate::analysis::{correct, label, measure, quality, threshold};
+use crate::analysis::{correct, label, measure, quality, split, threshold};
 use crate::frame::Frame;
 
-/// Runs the whole per-frame analysis: correct, threshold, fill, label, measure,
-/// and the frame's quality measures.
+/// Runs the whole per-frame analysis: correct, threshold, fill, label, split
+/// (when [`SegmentParams::split`] asks), measure, and the frame's quality
+/// measures.
 ///
 /// `extra_pages` are `(page number, frame)` pairs whose intensities are measured
 /// inside the objects; `pixel_size_um` enables µm² areas and filters.
@@ -120,6 +121,16 @@ fn run(
         params.connectivity,
         params.fill_holes,
     );
+    let components = match params.split {
+        Split::None => components,
+        Split::Distance { min_depth_px } => split::split(
+            components,
+            frame.width,
+            frame.height,
+            params.connectivity,
+            min_depth_px,
+        ),
+    };
     let measure::Measured {
         objects,
         size_filtered,

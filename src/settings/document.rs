@@ -10,7 +10,7 @@ use std::path::PathBuf;
 
 use serde::{Deserialize, Serialize};
 
-use crate::analysis::{Background, Method, SegmentParams};
+use crate::analysis::{Background, Method, SegmentParams, Split};
 use crate::decode::DecodeLimits;
 use crate::pipeline::{Calibration, CalibrationPreference};
 use crate::qc::params::{AlertSettings, CommandSink, QualitySettings, WebhookSink};
@@ -89,6 +89,8 @@ pub struct SegmentSection {
     pub dark_frame_hash: Option<String>,
     pub fill_holes: bool,
     pub connectivity: u8,
+    pub split: String,
+    pub split_min_depth_px: f64,
     pub min_area_px: u64,
     pub max_area_px: u64,
     pub min_area_um2: f64,
@@ -112,6 +114,10 @@ impl SegmentSection {
             Background::RollingBall { radius_px } => ("rolling-ball", *radius_px),
             Background::FlatField(_) => ("flat-field", DEFAULT_ROLLING_BALL_RADIUS_PX),
         };
+        let split_min_depth_px = match p.split {
+            Split::None => Split::DEFAULT_MIN_DEPTH_PX,
+            Split::Distance { min_depth_px } => min_depth_px,
+        };
         let flat = files.map(|f| &f.flat);
         let dark = files.and_then(|f| f.dark.as_ref());
         SegmentSection {
@@ -129,6 +135,8 @@ impl SegmentSection {
             dark_frame_hash: dark.and_then(|f| f.hash.clone()),
             fill_holes: p.fill_holes,
             connectivity: p.connectivity.neighbours(),
+            split: p.split.name().into(),
+            split_min_depth_px,
             min_area_px: p.filter.min_area_px,
             max_area_px: p.filter.max_area_px,
             min_area_um2: p.filter.min_area_um2,

@@ -367,6 +367,14 @@ exclude_border = true
             ("[segment]\nmethod = \"median\"", "expected otsu"),
             ("[segment]\nconnectivity = 6", "expected 4 or 8"),
             (
+                "[segment]\nsplit = \"watershed\"",
+                "expected none or distance",
+            ),
+            (
+                "[segment]\nsplit = \"distance\"\nsplit_min_depth_px = 0.0",
+                "segment.split_min_depth_px = 0",
+            ),
+            (
                 "[segment]\nmethod = \"multi-otsu\"\nclasses = 3\nboundary = 3",
                 "segment.boundary",
             ),
@@ -426,6 +434,8 @@ background = "rolling-ball"
 rolling_ball_radius_px = 35.0
 fill_holes = false
 connectivity = 4
+split = "distance"
+split_min_depth_px = 3.5
 min_area_px = 12
 max_area_px = 5000
 min_area_um2 = 3.5

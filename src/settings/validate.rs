@@ -7,7 +7,9 @@
 use std::path::Path;
 use std::time::Duration;
 
-use crate::analysis::{Background, Connectivity, Method, ObjectFilter, Recount, SegmentParams};
+use crate::analysis::{
+    Background, Connectivity, Method, ObjectFilter, Recount, SegmentParams, Split,
+};
 use crate::decode::DecodeLimits;
 use crate::naming::NamePattern;
 use crate::pipeline::{Calibration, CalibrationPreference};
@@ -178,6 +180,18 @@ pub fn segment(
         value: s.connectivity.to_string(),
         expected: "4 or 8".into(),
     })?;
+    let split = match s.split.as_str() {
+        "none" => Split::None,
+        "distance" => Split::Distance {
+            min_depth_px: check(
+                "segment.split_min_depth_px",
+                s.split_min_depth_px,
+                |v| v > 0.0 && v <= 1000.0,
+                "above 0, up to 1000",
+            )?,
+        },
+        other => return Err(choice("segment.split", other, "none or distance")),
+    };
     if s.max_area_px != 0 && s.max_area_px < s.min_area_px {
         return Err(ValueError::Combination(format!(
             "segment.max_area_px = {} is below min_area_px = {}",
@@ -212,6 +226,7 @@ pub fn segment(
         background,
         fill_holes: s.fill_holes,
         connectivity,
+        split,
         filter,
         measure_pages,
     };
