@@ -19,6 +19,11 @@ use framewarden::pipeline::analyze_file;
 use framewarden::pipeline::PipelineParams;
 use framewarden::synth::{self, SceneSpec};
 
+/// Where the reference tests keep their Python venv (they create it; this bench
+/// only uses it).
+#[path = "../tests/common/venv.rs"]
+mod venv;
+
 /// Targets: our time at most 1/4 of OpenCV's and 1/25 of scikit-image's.
 const TARGET_VS_OPENCV: f64 = 4.0;
 const TARGET_VS_SKIMAGE: f64 = 25.0;
@@ -271,11 +276,32 @@ fn time_stages(files: &[PathBuf], reps: usize) -> [f64; 7] {
     times.map(median)
 }
 
+/// The interpreter for the reference pipelines: `FRAMEWARDEN_PYTHON` when set,
+/// else the reference tests' venv when it exists, else `python3` from PATH
+/// (after saying how to get the venv).
+fn reference_python() -> PathBuf {
+    if let Some(python) = venv::python_override() {
+        return python;
+    }
+    let python = venv::venv_python(&venv::venv_dir());
+    if python.exists() {
+        return python;
+    }
+    eprintln!(
+        "no Python reference venv at {}: `cargo test --release --test reference` creates it \
+         (or set {} to an interpreter with the packages of tests/reference/requirements.txt); \
+         trying python3 from PATH",
+        venv::venv_dir().display(),
+        venv::PYTHON_OVERRIDE
+    );
+    PathBuf::from("python3")
+}
+
 /// Runs the Python reference pipelines; `None` (with the reason printed) when
 /// they cannot run here.
 fn time_reference(files: &[PathBuf], reps: usize) -> Option<serde_json::Value> {
     let script = Path::new(env!("CARGO_MANIFEST_DIR")).join("benches/reference_pipelines.py");
-    let python = std::env::var("FRAMEWARDEN_PYTHON").unwrap_or_else(|_| "python3".into());
+    let python = reference_python();
     let out = Command::new(&python)
         .arg(&script)
         .args(["--json", "--reps", &reps.to_string()])
@@ -291,13 +317,18 @@ fn time_reference(files: &[PathBuf], reps: usize) -> Option<serde_json::Value> {
         },
         Ok(out) => {
             eprintln!(
-                "reference pipelines failed:\n{}",
+                "reference pipelines failed under {}:\n{}",
+                python.display(),
                 String::from_utf8_lossy(&out.stderr)
             );
             None
         }
         Err(e) => {
-            eprintln!("cannot start {python}: {e} (set FRAMEWARDEN_PYTHON)");
+            eprintln!(
+                "cannot start {}: {e} (set {})",
+                python.display(),
+                venv::PYTHON_OVERRIDE
+            );
             None
         }
     }

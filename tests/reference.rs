@@ -5,8 +5,9 @@
 //! engine should find in them. This test decodes each file with our decoder,
 //! runs our thresholds and `analyze_frame`, and compares value by value. Every
 //! comparison names its outside source; `tests/reference/README.md` explains the
-//! tolerances. Python and the packages in `tests/reference/requirements.txt`
-//! are required: a missing one fails the test, it never skips.
+//! tolerances. The scripts run in the venv `tests/common` builds from
+//! `tests/reference/requirements.txt` (or under `FRAMEWARDEN_PYTHON`); when
+//! that cannot be set up the test fails, it never skips.
 
 use std::path::Path;
 use std::sync::OnceLock;

@@ -11,8 +11,9 @@
 //! - histogram cases: 16-bit images with wide dense or wide sparse histograms,
 //!   and the Otsu, triangle, Li and three-class multi-Otsu answers on them.
 //!
-//! Python and the packages in `tests/reference/requirements.txt` are required:
-//! a missing one fails these tests, it never skips them.
+//! The script runs in the venv `tests/common` builds from
+//! `tests/reference/requirements.txt` (or under `FRAMEWARDEN_PYTHON`); when
+//! that cannot be set up these tests fail, they never skip.
 
 use std::path::Path;
 use std::sync::OnceLock;
