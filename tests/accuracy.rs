@@ -15,6 +15,9 @@
 //!   (`pip download --no-deps`); the test fails when it cannot be fetched.
 
 mod accuracy_support;
+// Shared by the test binaries; each uses only part of it.
+#[allow(dead_code)]
+mod common;
 
 use accuracy_support::{
     crowds, label_frame, nuclei_case, our_labels, python, reference_script, render_crowd, score,
@@ -122,6 +125,7 @@ fn default_pipeline_f1_holds_on_synthetic_crowds() {
 
 #[test]
 fn default_pipeline_f1_holds_on_the_nuclei_image() {
+    common::reference_python();
     let case = nuclei_case().unwrap_or_else(|e| {
         panic!(
             "the real nuclei image is needed and could not be had: {e}\n\
@@ -140,6 +144,7 @@ fn default_pipeline_f1_holds_on_the_nuclei_image() {
 
 #[test]
 fn rust_and_python_matching_agree() {
+    common::reference_python();
     // Our two pipelines on one synthetic crowd and the real image, scored by
     // both implementations.
     let dir = tempfile::tempdir().unwrap();

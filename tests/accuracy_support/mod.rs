@@ -381,9 +381,21 @@ fn blur(img: &mut [f64], n: usize, sigma: f64) {
     }
 }
 
-/// The Python interpreter: `FRAMEWARDEN_PYTHON` or `python3`.
+#[path = "../common/venv.rs"]
+mod venv;
+
+/// The Python interpreter: `FRAMEWARDEN_PYTHON`, else the reference venv's
+/// (the tests create it first with `common::reference_python`), else
+/// `python3` (the bench, before any test made the venv).
 pub fn python() -> String {
-    std::env::var("FRAMEWARDEN_PYTHON").unwrap_or_else(|_| "python3".into())
+    venv::python_override()
+        .or_else(|| {
+            let p = venv::venv_python(&venv::venv_dir());
+            p.exists().then_some(p)
+        })
+        .unwrap_or_else(|| "python3".into())
+        .display()
+        .to_string()
 }
 
 pub fn reference_script() -> PathBuf {
