@@ -381,6 +381,9 @@ fn blur(img: &mut [f64], n: usize, sigma: f64) {
     }
 }
 
+// The bench includes this file without `tests/common`; a test binary has
+// both, so the venv's location is compiled twice there (same code).
+#[allow(clippy::duplicate_mod)]
 #[path = "../common/venv.rs"]
 mod venv;
 
