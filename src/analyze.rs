@@ -9,7 +9,8 @@ use std::sync::atomic::{AtomicUsize, Ordering};
 use serde::Serialize;
 
 use crate::analysis::FrameResult;
-use crate::pipeline::{analyze_file, FileAnalysis, FileError};
+use crate::encode::write_label_image;
+use crate::pipeline::{analyze_file, analyze_file_with_labels, FileAnalysis};
 use crate::qc::flags::{explain_recount, frame_flags, PositionContext};
 use crate::qc::metrics::FrameMetrics;
 use crate::qc::report::FlagRow;
@@ -69,6 +70,49 @@ struct JsonLine<'a> {
     #[serde(flatten)]
     result: &'a FrameResult,
     recount: Option<&'a FrameResult>,
+    /// The label image written for this frame (with `--labels`).
+    #[serde(skip_serializing_if = "Option::is_none")]
+    labels: Option<String>,
+}
+
+/// One file's outcome: its analysis and the label image written for it, or
+/// the error (naming the file) that stopped either.
+type Outcome = Result<(FileAnalysis, Option<PathBuf>), String>;
+
+/// Where each file's label image goes in `dir`: `<file stem>.labels.tif`,
+/// with `-2`, `-3`, … added when two inputs share a stem.
+pub fn label_paths(files: &[PathBuf], dir: &Path) -> Vec<PathBuf> {
+    let mut used: BTreeMap<String, usize> = BTreeMap::new();
+    files
+        .iter()
+        .map(|f| {
+            let stem = f
+                .file_stem()
+                .map_or_else(|| "frame".into(), |s| s.to_string_lossy().into_owned());
+            let n = used.entry(stem.clone()).or_insert(0);
+            *n += 1;
+            let name = if *n == 1 {
+                format!("{stem}.labels.tif")
+            } else {
+                format!("{stem}-{n}.labels.tif")
+            };
+            dir.join(name)
+        })
+        .collect()
+}
+
+/// Analyzes one file, writing its label image to `labels` when given.
+fn analyze_one(path: &Path, settings: &Settings, labels: Option<&Path>) -> Outcome {
+    let Some(out) = labels else {
+        return analyze_file(path, &settings.pipeline)
+            .map(|a| (a, None))
+            .map_err(|e| e.to_string());
+    };
+    let (analysis, image) =
+        analyze_file_with_labels(path, &settings.pipeline).map_err(|e| e.to_string())?;
+    let r = &analysis.result;
+    write_label_image(out, r.width, r.height, &image).map_err(|e| e.to_string())?;
+    Ok((analysis, Some(out.to_path_buf())))
 }
 
 #[derive(Serialize)]
@@ -77,8 +121,9 @@ struct JsonError {
     error: String,
 }
 
-/// Analyses `files` with `workers` threads and writes one line per file to
-/// `out`, in input order. Returns the number of files that failed.
+/// Analyzes `files` with `workers` threads and writes one line per file to
+/// `out`, in input order; with `labels`, each file's label image goes into
+/// that folder (see [`label_paths`]). Returns the number of files that failed.
 ///
 /// # Errors
 /// Only an error writing to `out`.
@@ -87,23 +132,23 @@ pub fn run(
     settings: &Settings,
     json: bool,
     workers: usize,
+    labels: Option<&Path>,
     out: &mut dyn Write,
 ) -> std::io::Result<usize> {
     let next = AtomicUsize::new(0);
-    let (tx, rx) =
-        std::sync::mpsc::sync_channel::<(usize, Result<FileAnalysis, FileError>)>(workers * 2);
+    let label_files = labels.map(|dir| label_paths(files, dir));
+    let (tx, rx) = std::sync::mpsc::sync_channel::<(usize, Outcome)>(workers * 2);
     let mut failed = 0;
     std::thread::scope(|scope| -> std::io::Result<()> {
         for _ in 0..workers.max(1) {
             let tx = tx.clone();
             let next = &next;
+            let label_files = label_files.as_deref();
             scope.spawn(move || loop {
                 let i = next.fetch_add(1, Ordering::Relaxed);
                 let Some(path) = files.get(i) else { break };
-                if tx
-                    .send((i, analyze_file(path, &settings.pipeline)))
-                    .is_err()
-                {
+                let labels = label_files.map(|l| l[i].as_path());
+                if tx.send((i, analyze_one(path, settings, labels))).is_err() {
                     break;
                 }
             });
@@ -123,7 +168,7 @@ pub fn run(
                 }
                 let flags = result
                     .as_ref()
-                    .map_or_else(|_| Vec::new(), |a| flags_of(a, settings));
+                    .map_or_else(|_| Vec::new(), |(a, _)| flags_of(a, settings));
                 let line = if json {
                     json_line(file, &result, flags)
                 } else {
@@ -154,23 +199,20 @@ fn flags_of(a: &FileAnalysis, settings: &Settings) -> Vec<FlagRow> {
     flags.into_iter().map(FlagRow::from).collect()
 }
 
-fn json_line(
-    file: String,
-    result: &Result<FileAnalysis, FileError>,
-    flags: Vec<FlagRow>,
-) -> String {
+fn json_line(file: String, result: &Outcome, flags: Vec<FlagRow>) -> String {
     // Serialising plain data with finite floats cannot fail.
     match result {
-        Ok(a) => serde_json::to_string(&JsonLine {
+        Ok((a, labels)) => serde_json::to_string(&JsonLine {
             file,
             pixel_size_source: a.pixel_size_source.map(|s| s.as_str()),
             flags,
             result: &a.result,
             recount: a.recount.as_ref(),
+            labels: labels.as_ref().map(|p| p.display().to_string()),
         }),
         Err(e) => serde_json::to_string(&JsonError {
             file,
-            error: e.to_string(),
+            error: e.clone(),
         }),
     }
     .unwrap_or_else(|e| format!("{{\"error\":\"cannot serialise result: {e}\"}}"))
@@ -183,7 +225,7 @@ fn table_header() -> String {
     )
 }
 
-fn table_line(file: &str, result: &Result<FileAnalysis, FileError>, flags: &[FlagRow]) -> String {
+fn table_line(file: &str, result: &Outcome, flags: &[FlagRow]) -> String {
     let name = if file.chars().count() > 40 {
         let tail: String = file
             .chars()
@@ -198,7 +240,7 @@ fn table_line(file: &str, result: &Result<FileAnalysis, FileError>, flags: &[Fla
         file.to_string()
     };
     match result {
-        Ok(a) => {
+        Ok((a, _)) => {
             let r = &a.result;
             // The count used: the recount's when there is one (marked *).
             let mark = if a.recount.is_some() { "*" } else { "" };

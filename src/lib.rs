@@ -8,7 +8,7 @@
 //! | layer | modules |
 //! |---|---|
 //! | pixels | [`frame`], [`synth`] |
-//! | reading and analysing one frame | [`decode`], [`analysis`] (pure) |
+//! | reading, writing and analysing one frame | [`decode`], [`encode`], [`analysis`] (pure) |
 //! | one file | [`naming`], [`pipeline`] |
 //! | recording | [`store`] (owns the observer trait quality control implements) |
 //! | judging | [`qc`] |
@@ -21,6 +21,7 @@ pub mod synth;
 
 pub mod analysis;
 pub mod decode;
+pub mod encode;
 
 pub mod naming;
 pub mod pipeline;

@@ -32,6 +32,11 @@ enum Command {
         /// Worker threads (default: one per core).
         #[arg(long)]
         workers: Option<usize>,
+        /// Write each frame's label image into this folder (created if needed):
+        /// <file stem>.labels.tif, 16-bit LZW TIFF (32-bit past 65,535 objects),
+        /// pixel value = the object's label as in the output, 0 = background.
+        #[arg(long, value_name = "DIR")]
+        labels: Option<PathBuf>,
         /// Files or folders (folders are searched recursively for .tif/.tiff/.png).
         #[arg(required = true)]
         paths: Vec<PathBuf>,
@@ -188,6 +193,7 @@ fn main() -> ExitCode {
             config,
             json,
             workers,
+            labels,
             paths,
         } => {
             let settings = match load_settings(config.as_deref()) {
@@ -204,8 +210,24 @@ fn main() -> ExitCode {
             let workers = workers
                 .unwrap_or_else(framewarden::watch::default_workers)
                 .max(1);
+            if let Some(dir) = &labels {
+                if let Err(e) = std::fs::create_dir_all(dir) {
+                    eprintln!(
+                        "framewarden analyze: cannot create the label folder {}: {e}",
+                        dir.display()
+                    );
+                    return ExitCode::from(FAILURE);
+                }
+            }
             let mut out = std::io::stdout().lock();
-            match framewarden::analyze::run(&files, &settings, json, workers, &mut out) {
+            match framewarden::analyze::run(
+                &files,
+                &settings,
+                json,
+                workers,
+                labels.as_deref(),
+                &mut out,
+            ) {
                 Ok(0) => ExitCode::SUCCESS,
                 Ok(_) => ExitCode::from(FAILURE),
                 Err(e) => {

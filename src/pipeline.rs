@@ -9,7 +9,7 @@ use std::path::Path;
 
 use serde::Deserialize;
 
-use crate::analysis::{analyze_frame, AnalysisError, FrameResult, Recount, SegmentParams};
+use crate::analysis::{segment_frame, AnalysisError, FrameResult, Recount, SegmentParams};
 use crate::decode::{self, DecodeError, DecodeLimits, PixelSizeSource};
 use crate::frame::Frame;
 
@@ -101,6 +101,27 @@ impl FileError {
 /// # Errors
 /// [`FileError`] naming the file and the cause.
 pub fn analyze_file(path: &Path, params: &PipelineParams) -> Result<FileAnalysis, FileError> {
+    run(path, params, false).map(|(analysis, _)| analysis)
+}
+
+/// [`analyze_file`], and the label image of the first result (one value per
+/// pixel, row by row: the object's label as in `result.objects`, 0 for
+/// background).
+///
+/// # Errors
+/// As [`analyze_file`].
+pub fn analyze_file_with_labels(
+    path: &Path,
+    params: &PipelineParams,
+) -> Result<(FileAnalysis, Vec<u32>), FileError> {
+    run(path, params, true).map(|(analysis, labels)| (analysis, labels.unwrap_or_default()))
+}
+
+fn run(
+    path: &Path,
+    params: &PipelineParams,
+    want_labels: bool,
+) -> Result<(FileAnalysis, Option<Vec<u32>>), FileError> {
     let seg = &params.segment;
     let pages: Vec<usize> = std::iter::once(seg.page)
         .chain(seg.measure_pages.iter().copied())
@@ -125,16 +146,22 @@ pub fn analyze_file(path: &Path, params: &PipelineParams) -> Result<FileAnalysis
     };
     let pixel_size_um = pixel_size.map(|p| p.0);
     let frame = &decoded.frames[0];
-    let result = analyze_frame(frame, &extra, seg, pixel_size_um).map_err(analysis_error)?;
+    let segmented = if want_labels {
+        segment_frame(frame, &extra, seg, pixel_size_um).map(|s| (s.result, Some(s.labels)))
+    } else {
+        crate::analysis::analyze_frame(frame, &extra, seg, pixel_size_um).map(|r| (r, None))
+    };
+    let (result, labels) = segmented.map_err(analysis_error)?;
     let recount = match &params.recount {
         Some(recount) => recount
             .run(frame, &extra, seg, &result, pixel_size_um)
             .map_err(analysis_error)?,
         None => None,
     };
-    Ok(FileAnalysis {
+    let analysis = FileAnalysis {
         result,
         recount,
         pixel_size_source: pixel_size.map(|p| p.1),
-    })
+    };
+    Ok((analysis, labels))
 }

@@ -279,3 +279,61 @@ fn a_recount_after_flattening_is_reported_beside_the_first_result() {
     let row = table.lines().nth(1).unwrap();
     assert!(row.contains(&format!(" {recount}* ")), "{table}");
 }
+
+#[test]
+fn label_images_are_written_and_match_the_objects() {
+    let dir = tempfile::tempdir().unwrap();
+    let a = scene(dir.path(), "A01_t0001_nuclei.tif", 9, 21);
+    // Two inputs with one stem (in different folders) get distinct images.
+    std::fs::create_dir(dir.path().join("again")).unwrap();
+    let b = scene(&dir.path().join("again"), "A01_t0001_nuclei.tif", 5, 22);
+    let labels = dir.path().join("labels");
+    let out = binary()
+        .args(["analyze", "--json", "--labels"])
+        .arg(&labels)
+        .arg(&a)
+        .arg(&b)
+        .output()
+        .unwrap();
+    assert!(out.status.success(), "{out:?}");
+    let lines: Vec<serde_json::Value> = String::from_utf8(out.stdout)
+        .unwrap()
+        .lines()
+        .map(|l| serde_json::from_str(l).unwrap())
+        .collect();
+    let names: Vec<&str> = lines
+        .iter()
+        .map(|l| l["labels"].as_str().unwrap())
+        .collect();
+    assert!(
+        names[0].ends_with("labels/A01_t0001_nuclei.labels.tif"),
+        "{names:?}"
+    );
+    assert!(
+        names[1].ends_with("labels/A01_t0001_nuclei-2.labels.tif"),
+        "{names:?}"
+    );
+    for line in &lines {
+        // Read back with our own decoder (16-bit, LZW): each label's pixel
+        // count is its object's area, and the background is 0.
+        let image = framewarden::decode::read_page(
+            Path::new(line["labels"].as_str().unwrap()),
+            0,
+            &framewarden::decode::DecodeLimits::default(),
+        )
+        .unwrap();
+        let objects = line["objects"].as_array().unwrap();
+        assert!(!objects.is_empty());
+        let mut area = vec![0u64; objects.len() + 1];
+        for &v in &image.pixels {
+            area[usize::from(v)] += 1;
+        }
+        for o in objects {
+            let label = o["label"].as_u64().unwrap() as usize;
+            assert_eq!(area[label], o["area_px"].as_u64().unwrap(), "label {label}");
+        }
+        let kept: u64 = area[1..].iter().sum();
+        let fraction = line["foreground_fraction"].as_f64().unwrap();
+        assert!((kept as f64 / image.len() as f64 - fraction).abs() < 1e-12);
+    }
+}

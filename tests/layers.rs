@@ -12,7 +12,7 @@ use std::path::{Path, PathBuf};
 
 /// Top-level modules from the bottom up.
 const LAYERS: &[&str] = &[
-    "frame", "synth", "decode", "analysis", "naming", "pipeline", "store", "qc", "watch",
+    "frame", "synth", "decode", "encode", "analysis", "naming", "pipeline", "store", "qc", "watch",
     "settings", "daemon", "analyze", "status", "demo",
 ];
 
