@@ -25,6 +25,7 @@ use accuracy_support::{
     crowds, label_frame, nuclei_case, our_labels, python, reference_script, render_crowd, score,
     Case, Scores,
 };
+use framewarden::analysis::{SegmentParams, Split};
 use framewarden::decode::{self, DecodeLimits};
 use framewarden::settings::Settings;
 use framewarden::synth::write_tiff;
@@ -100,11 +101,20 @@ fn main() {
     let root: PathBuf = o.keep.clone().unwrap_or_else(|| tmp.path().to_path_buf());
 
     let defaults = Settings::default().pipeline.segment;
-    let mut sized = defaults.clone();
-    sized.filter.min_area_px = o.min_area;
+    let mut unfiltered = defaults.clone();
+    unfiltered.filter.min_area_px = 0;
+    let split = |depth: f64| SegmentParams {
+        split: Split::Distance {
+            min_depth_px: depth,
+        },
+        ..defaults.clone()
+    };
     let ours = [
-        ("ours, defaults".to_string(), defaults),
-        (format!("ours, min area {} px", o.min_area), sized),
+        ("ours, defaults".to_string(), defaults.clone()),
+        ("ours, no size filter".to_string(), unfiltered),
+        ("ours, split depth 1 px".to_string(), split(1.0)),
+        ("ours, split depth 2 px".to_string(), split(2.0)),
+        ("ours, split depth 3 px".to_string(), split(3.0)),
     ];
 
     let mut cases: Vec<Case> = crowds().iter().map(render_crowd).collect();

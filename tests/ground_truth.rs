@@ -9,7 +9,7 @@
 use std::sync::Arc;
 
 use framewarden::analysis::{analyze_frame, correct::FlatField, FrameResult};
-use framewarden::analysis::{Background, ObjectFilter, SegmentParams};
+use framewarden::analysis::{Background, ObjectFilter, SegmentParams, Split};
 use framewarden::frame::Frame;
 use framewarden::synth::{generate, render, Scene, SceneSpec, TruthObject};
 
@@ -376,7 +376,12 @@ fn touching_pairs_are_reported_as_merged_and_separate_discs_are_not() {
         }
     }
     let all: Vec<(f64, f64)> = pairs.iter().chain(&singles).copied().collect();
-    let mixed = otsu(&discs(240, 240, 8.0, &all));
+    // With split = "none": the merge this flag is there to report.
+    let unsplit = SegmentParams {
+        split: Split::None,
+        ..SegmentParams::default()
+    };
+    let mixed = analyze(&discs(240, 240, 8.0, &all), &unsplit);
     assert_eq!(mixed.object_count, 36);
     assert!(
         (mixed.merged_fraction - 6.0 / 36.0).abs() < 1e-9,

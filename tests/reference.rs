@@ -18,7 +18,7 @@ use common::check;
 
 use framewarden::analysis::threshold::{li, multi_otsu, otsu, separability, triangle, Histogram};
 use framewarden::analysis::{analyze_frame, FrameResult};
-use framewarden::analysis::{Connectivity, SegmentParams};
+use framewarden::analysis::{Connectivity, ObjectFilter, SegmentParams, Split};
 use framewarden::decode::{read_page, DecodeLimits};
 use framewarden::frame::Frame;
 use serde::Deserialize;
@@ -336,7 +336,12 @@ fn separability_matches_exact_value() {
 
 #[test]
 fn segmentation_8_connected_matches_scipy_and_skimage() {
-    let settings = SegmentParams::default();
+    // Every component, as skimage labels them (no size filter, no split).
+    let settings = SegmentParams {
+        filter: ObjectFilter::KEEP_ALL,
+        split: Split::None,
+        ..SegmentParams::default()
+    };
     assert_eq!(
         settings.connectivity,
         Connectivity::Eight,
@@ -349,6 +354,8 @@ fn segmentation_8_connected_matches_scipy_and_skimage() {
 fn segmentation_4_connected_matches_scipy_and_skimage() {
     let settings = SegmentParams {
         connectivity: Connectivity::Four,
+        filter: ObjectFilter::KEEP_ALL,
+        split: Split::None,
         ..SegmentParams::default()
     };
     compare_segmentation(&settings, |s| &s.connectivity4);

@@ -22,8 +22,8 @@ mod common;
 
 use common::check;
 
-use framewarden::analysis::SegmentParams;
 use framewarden::analysis::{analyze_frame, FrameResult};
+use framewarden::analysis::{SegmentParams, Split};
 use framewarden::decode::{read_page, DecodeLimits};
 use framewarden::frame::Frame;
 use framewarden::settings;
@@ -128,7 +128,12 @@ fn fixture() -> &'static Fixture {
                 let parsed = settings::from_text(&case.config, &path).unwrap_or_else(|e| {
                     panic!("case {i}: our config parser refused the fragment: {e}")
                 });
-                let segment = parsed.pipeline.segment;
+                // The references label without splitting touching objects
+                // (the split has its own reference check, reference_split.rs).
+                let segment = SegmentParams {
+                    split: Split::None,
+                    ..parsed.pipeline.segment
+                };
                 let frame = decode(&case.file, segment.page);
                 let extra = segment
                     .measure_pages

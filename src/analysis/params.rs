@@ -203,7 +203,9 @@ impl Default for SegmentParams {
             background: Background::None,
             fill_holes: true,
             connectivity: Connectivity::Eight,
-            split: Split::None,
+            split: Split::Distance {
+                min_depth_px: Split::DEFAULT_MIN_DEPTH_PX,
+            },
             filter: ObjectFilter::default(),
             measure_pages: Vec::new(),
         }

@@ -17,15 +17,17 @@ use crate::frame::Frame;
 /// inside the objects; `pixel_size_um` enables µm² areas and filters.
 ///
 /// ```
-/// use framewarden::{frame::Frame, analysis::analyze_frame, analysis::SegmentParams};
-/// // Two bright squares on a dark background (x = column, y = row, 0-based).
+/// use framewarden::{frame::Frame, analysis::{analyze_frame, ObjectFilter, SegmentParams}};
+/// // Two bright squares on a dark background (x = column, y = row, 0-based),
+/// // too small for the default size filter, so it is off here.
+/// let keep_all = SegmentParams { filter: ObjectFilter::KEEP_ALL, ..SegmentParams::default() };
 /// let f = Frame::from_rows_u8(&[
 ///     &[10, 10, 10, 10, 10, 10],
 ///     &[10, 200, 200, 10, 10, 10],
 ///     &[10, 200, 200, 10, 150, 10],
 ///     &[10, 10, 10, 10, 10, 10],
 /// ]);
-/// let r = analyze_frame(&f, &[], &SegmentParams::default(), None).unwrap();
+/// let r = analyze_frame(&f, &[], &keep_all, None).unwrap();
 /// assert_eq!(r.threshold, 10.0); // Otsu; foreground is pixel > 10
 /// assert_eq!(r.object_count, 2);
 /// assert_eq!((r.objects[0].centroid_x, r.objects[0].centroid_y), (1.5, 1.5));
@@ -56,9 +58,10 @@ pub struct Segmented {
 /// [`analyze_frame`], and the label image of the objects it kept.
 ///
 /// ```
-/// use framewarden::{frame::Frame, analysis::{segment_frame, SegmentParams}};
+/// use framewarden::{frame::Frame, analysis::{segment_frame, ObjectFilter, SegmentParams}};
 /// let f = Frame::from_rows_u8(&[&[0, 9, 0, 9], &[0, 9, 0, 0]]);
-/// let s = segment_frame(&f, &[], &SegmentParams::default(), None).unwrap();
+/// let keep_all = SegmentParams { filter: ObjectFilter::KEEP_ALL, ..SegmentParams::default() };
+/// let s = segment_frame(&f, &[], &keep_all, None).unwrap();
 /// assert_eq!(s.labels, vec![0, 1, 0, 2, 0, 1, 0, 0]);
 /// ```
 ///
