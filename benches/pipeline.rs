@@ -180,6 +180,14 @@ fn ms(t: Instant) -> f64 {
     t.elapsed().as_secs_f64() * 1e3
 }
 
+/// The pipeline's defaults without the split: the same steps as the
+/// reference pipelines (which do not split).
+fn unsplit_params() -> PipelineParams {
+    let mut params = PipelineParams::default();
+    params.segment.split = Split::None;
+    params
+}
+
 /// The pipeline's parameters with splitting on at its default depth.
 fn split_params() -> PipelineParams {
     let mut params = PipelineParams::default();
@@ -383,7 +391,7 @@ fn main() {
         opts.reps
     );
 
-    let (ours_ms, ours) = time_ours(&files, opts.reps, &PipelineParams::default());
+    let (ours_ms, ours) = time_ours(&files, opts.reps, &unsplit_params());
     let (split_ms, split_summaries) = time_ours(&files, opts.reps, &split_params());
     let params = PipelineParams::default();
     let (_, peak) = peak_heap_during(|| analyze_file(&files[0], &params));
