@@ -479,6 +479,48 @@ fn a_second_service_on_the_same_database_is_refused() {
             && !stderr.contains("panicked"),
         "{stderr}"
     );
+    // The same file by another name (a symbolic link, a path through a
+    // linked folder) is the same database: refused too.
+    let link = bench.dir.path().join("link.db");
+    std::os::unix::fs::symlink(&bench.db, &link).unwrap();
+    let linked_folder = bench.dir.path().join("linked");
+    std::os::unix::fs::symlink(bench.dir.path(), &linked_folder).unwrap();
+    for other in [link, linked_folder.join("fw.db")] {
+        let mut child = Command::new(BIN)
+            .args(["watch", "--config"])
+            .arg(&bench.config)
+            .arg("--db")
+            .arg(&other)
+            .stderr(std::process::Stdio::piped())
+            .spawn()
+            .unwrap();
+        // A service that was not refused keeps running: stop it and fail.
+        let deadline = std::time::Instant::now() + Duration::from_secs(20);
+        while child.try_wait().unwrap().is_none() {
+            if std::time::Instant::now() > deadline {
+                child.kill().unwrap();
+                child.wait().unwrap();
+                panic!(
+                    "{}: a second service started on the same database",
+                    other.display()
+                );
+            }
+            std::thread::sleep(Duration::from_millis(50));
+        }
+        let by_link = child.wait_with_output().unwrap();
+        let stderr = String::from_utf8_lossy(&by_link.stderr);
+        assert_eq!(
+            by_link.status.code(),
+            Some(1),
+            "{}: {stderr}",
+            other.display()
+        );
+        assert!(
+            stderr.contains("another framewarden watch is recording into"),
+            "{}: {stderr}",
+            other.display()
+        );
+    }
     // The first one is undisturbed and, once stopped, frees the database.
     let (bytes, truth) = tiff_bytes(33, 96, 3);
     bench.write("P01_t0000.tif", &bytes);

@@ -244,7 +244,10 @@ pub struct WriterClaim {
 /// made.
 pub fn claim_writer(db: &Path) -> Result<WriterClaim, StoreError> {
     create_folder_of(db)?;
-    let mut name = db.as_os_str().to_owned();
+    // One lock per database file, whatever path names it: `link.db -> fw.db`
+    // and `./fw.db` take the lock of the same file.
+    let real = real_file(db);
+    let mut name = real.as_os_str().to_owned();
     name.push(".lock");
     let lock = PathBuf::from(name);
     let file = std::fs::OpenOptions::new()
@@ -263,6 +266,32 @@ pub fn claim_writer(db: &Path) -> Result<WriterClaim, StoreError> {
             lock,
         }),
         Err(std::fs::TryLockError::Error(source)) => Err(StoreError::Lock { lock, source }),
+    }
+}
+
+/// The file `path` names once symbolic links are followed (also to a file
+/// that does not exist yet) and its folder is made canonical; `path` itself
+/// when that cannot be worked out.
+fn real_file(path: &Path) -> PathBuf {
+    let mut p = path.to_path_buf();
+    // A chain of links longer than the system's own limit (40 on Linux) is
+    // left as it is.
+    for _ in 0..40 {
+        match std::fs::symlink_metadata(&p) {
+            Ok(m) if m.file_type().is_symlink() => match std::fs::read_link(&p) {
+                Ok(target) => p = p.parent().unwrap_or(Path::new("")).join(target),
+                Err(_) => break,
+            },
+            _ => break,
+        }
+    }
+    let folder = p.parent().filter(|f| !f.as_os_str().is_empty());
+    match (
+        folder.map_or_else(|| dunce::canonicalize("."), dunce::canonicalize),
+        p.file_name(),
+    ) {
+        (Ok(folder), Some(name)) => folder.join(name),
+        _ => path.to_path_buf(),
     }
 }
 
