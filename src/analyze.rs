@@ -15,6 +15,7 @@ use crate::qc::flags::{explain_recount, frame_flags, PositionContext};
 use crate::qc::metrics::FrameMetrics;
 use crate::qc::report::FlagRow;
 use crate::settings::Settings;
+use crate::text::shown;
 
 /// File name endings taken from folders (explicit file arguments are always tried).
 pub const IMAGE_EXTENSIONS: [&str; 3] = ["tif", "tiff", "png"];
@@ -226,6 +227,7 @@ fn table_header() -> String {
 }
 
 fn table_line(file: &str, result: &Outcome, flags: &[FlagRow]) -> String {
+    let file = shown(file);
     let name = if file.chars().count() > 40 {
         let tail: String = file
             .chars()
@@ -263,6 +265,6 @@ fn table_line(file: &str, result: &Outcome, flags: &[FlagRow]) -> String {
                     .join(",")
             )
         }
-        Err(e) => format!("{name:<40} error: {e}"),
+        Err(e) => format!("{name:<40} error: {}", shown(e)),
     }
 }

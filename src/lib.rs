@@ -7,6 +7,7 @@
 //!
 //! | layer | modules |
 //! |---|---|
+//! | text from outside, made safe to show | [`text`] |
 //! | pixels | [`frame`], [`synth`] |
 //! | reading, writing and analysing one frame | [`decode`], [`encode`], [`analysis`] (pure) |
 //! | one file | [`naming`], [`pipeline`] |
@@ -15,6 +16,8 @@
 //! | watching | [`watch`] |
 //! | configuration | [`settings`] (builds every layer's parameters) |
 //! | commands | [`daemon`], [`analyze`], [`status`], [`demo`] |
+
+pub mod text;
 
 pub mod frame;
 pub mod synth;

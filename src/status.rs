@@ -11,6 +11,7 @@ use rusqlite::{params, Connection, OptionalExtension};
 use serde::Serialize;
 
 use crate::store::{self, iso_time_sql, now_ms, StoreError, COUNT_USED_SQL, POSITION_SQL};
+use crate::text::shown;
 
 /// Everything `status` shows; `--json` prints it as one document.
 #[derive(Debug, Clone, Serialize, PartialEq)]
@@ -344,7 +345,8 @@ pub fn render(report: &StatusReport) -> String {
             let _ = writeln!(
                 out,
                 "  {:<8} {count:>7} {threshold:>10}  {}",
-                f.status, f.file
+                f.status,
+                shown(&f.file)
             );
         }
     }
@@ -354,8 +356,8 @@ pub fn render(report: &StatusReport) -> String {
             let _ = writeln!(
                 out,
                 "  {}: {}",
-                f.file,
-                f.error.as_deref().unwrap_or("(no reason recorded)")
+                shown(&f.file),
+                shown(f.error.as_deref().unwrap_or("(no reason recorded)"))
             );
         }
     }

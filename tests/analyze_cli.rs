@@ -337,3 +337,18 @@ fn label_images_are_written_and_match_the_objects() {
         assert!((kept as f64 / image.len() as f64 - fraction).abs() < 1e-12);
     }
 }
+
+#[test]
+fn control_characters_in_file_names_are_escaped_in_the_table() {
+    let dir = tempfile::tempdir().unwrap();
+    // A newline and a terminal escape sequence (red text) in the name.
+    let hostile = scene(dir.path(), "A01\n\u{1b}[31mred.tif", 4, 5);
+    let out = binary().arg("analyze").arg(&hostile).output().unwrap();
+    assert!(out.status.success(), "{out:?}");
+    let stdout = String::from_utf8(out.stdout).unwrap();
+    // The header and one line: the newline did not split the frame's line,
+    // and no escape character reached the output.
+    assert_eq!(stdout.lines().count(), 2, "{stdout}");
+    assert!(!stdout.contains('\u{1b}'), "{stdout:?}");
+    assert!(stdout.contains("A01\\n\\u{1b}[31mred.tif"), "{stdout}");
+}

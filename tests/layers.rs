@@ -12,8 +12,8 @@ use std::path::{Path, PathBuf};
 
 /// Top-level modules from the bottom up.
 const LAYERS: &[&str] = &[
-    "frame", "synth", "decode", "encode", "analysis", "naming", "pipeline", "store", "qc", "watch",
-    "settings", "daemon", "analyze", "status", "demo",
+    "text", "frame", "synth", "decode", "encode", "analysis", "naming", "pipeline", "store", "qc",
+    "watch", "settings", "daemon", "analyze", "status", "demo",
 ];
 
 /// The non-test code of a file with comments removed, one entry per line.

@@ -583,3 +583,22 @@ fn poll_mode_records_files_like_native_mode() {
         bench.logs()
     );
 }
+
+#[test]
+fn control_characters_in_file_names_are_escaped_in_the_log() {
+    let mut bench = Bench::new("");
+    bench.start();
+    let (bytes, _) = tiff_bytes(34, 96, 3);
+    bench.write("P02\n\u{1b}[31mred.tif", &bytes);
+    bench.wait_finished(1, LONG);
+    bench.signal("TERM");
+    assert_eq!(bench.wait_exit(Duration::from_secs(60)), Some(0));
+    let logs = bench.logs();
+    assert!(!logs.contains('\u{1b}'), "{logs:?}");
+    // The frame's log line names the file, escaped, on one line.
+    assert!(
+        logs.lines()
+            .any(|l| l.contains("P02\\n\\u{1b}[31mred.tif") && l.contains("frame")),
+        "{logs}"
+    );
+}

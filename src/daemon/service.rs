@@ -22,6 +22,7 @@ use crate::qc::recorder::{QcError, QcRecorder, QcSetup};
 use crate::settings::Settings;
 use crate::store::writer::{open_run, RunPolicy, StoreOp, Writer, WriterError, WriterSetup};
 use crate::store::{self, FrameKey, StoreError};
+use crate::text::shown;
 use crate::watch::scheduler::{scan_loop, SchedMsg, Scheduler};
 use crate::watch::watcher::{start_watcher, WatcherError};
 use crate::watch::{Job, Progress};
@@ -146,7 +147,7 @@ impl Service {
         };
         for key in store::settle_interrupted(&mut conn).map_err(sqlite)? {
             tracing::warn!(
-                file = %key.path,
+                file = %shown(&key.path),
                 "failed: interrupted {} times in hand; left out so the run goes on",
                 store::MAX_INTERRUPTIONS
             );

@@ -12,6 +12,7 @@ use crossbeam_channel::{Receiver, Sender};
 use crate::pipeline::{analyze_file, PipelineParams};
 use crate::store::writer::StoreOp;
 use crate::store::FrameKey;
+use crate::text::{shown, shown_path};
 use crate::watch::scheduler::SchedMsg;
 use crate::watch::{Job, Progress};
 
@@ -97,18 +98,21 @@ impl Worker {
             };
             match next {
                 Next::Retry(retry) => {
-                    tracing::debug!("{} not complete yet; will look again", job.path.display());
+                    tracing::debug!(
+                        "{} not complete yet; will look again",
+                        shown_path(&job.path)
+                    );
                     let _ = self.sched_tx.send(retry);
                 }
                 Next::Record(op) => {
                     if let StoreOp::Failed { reason, .. } = &op {
-                        tracing::warn!(file = %job.path.display(), "failed: {reason}");
+                        tracing::warn!(file = %shown_path(&job.path), "failed: {}", shown(reason));
                         self.progress.failed.fetch_add(1, Ordering::Relaxed);
                     }
                     if self.store_tx.send(op).is_err() {
                         tracing::error!(
                             "the store writer has stopped; {} not recorded",
-                            job.path.display()
+                            shown_path(&job.path)
                         );
                     }
                 }

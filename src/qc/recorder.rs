@@ -21,6 +21,7 @@ use crate::qc::params::{AlertSettings, QualitySettings};
 use crate::qc::sinks::{AlertDispatcher, SinkError};
 use crate::store::writer::FrameObserver;
 use crate::store::{now_ms, FrameKey, FRAME_KEY_SQL, POSITION_SQL};
+use crate::text::shown;
 
 /// Why quality control could not start.
 #[derive(Debug, thiserror::Error)]
@@ -231,7 +232,7 @@ impl QcRecorder {
     fn announce_pending(&mut self) {
         for line in self.pending_lines.drain(..) {
             tracing::info!(
-                file = %line.file,
+                file = %shown(&line.file),
                 objects = line.objects,
                 threshold = line.threshold,
                 flags = %line.flags,
@@ -296,20 +297,20 @@ impl QcRecorder {
     fn announce(&self, event: &AlertEvent) {
         match event.state {
             AlertState::Opened => tracing::warn!(
-                condition = %event.condition,
-                file = event.file.as_deref().unwrap_or(""),
+                condition = %shown(&event.condition),
+                file = %shown(event.file.as_deref().unwrap_or("")),
                 "alert: {}",
-                event.message
+                shown(&event.message)
             ),
             AlertState::Recovered => tracing::info!(
-                condition = %event.condition,
+                condition = %shown(&event.condition),
                 "recovered: {}",
-                event.message
+                shown(&event.message)
             ),
             AlertState::Notice => tracing::info!(
-                condition = %event.condition,
+                condition = %shown(&event.condition),
                 "notice: {}",
-                event.message
+                shown(&event.message)
             ),
         }
         self.dispatcher.send(event);

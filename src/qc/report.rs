@@ -11,6 +11,7 @@ use serde::Serialize;
 
 use crate::qc::flags::{failure_flag, FrameFlag};
 use crate::store::iso_time_sql;
+use crate::text::shown;
 
 /// One alert episode.
 #[derive(Debug, Clone, Serialize, PartialEq)]
@@ -182,10 +183,12 @@ pub fn render(
             let _ = writeln!(
                 out,
                 "  [{state}] {} since {}: {}",
-                a.condition, a.opened_at, a.message
+                shown(&a.condition),
+                a.opened_at,
+                shown(&a.message)
             );
             if let Some(m) = &a.closed_message {
-                let _ = writeln!(out, "      recovered: {m}");
+                let _ = writeln!(out, "      recovered: {}", shown(m));
             }
         }
     }
@@ -198,9 +201,9 @@ pub fn render(
     if !flagged.is_empty() {
         let _ = writeln!(out, "\nflagged frames (newest {}):", flagged.len());
         for f in flagged {
-            let _ = writeln!(out, "  {}", f.file);
+            let _ = writeln!(out, "  {}", shown(&f.file));
             for flag in &f.flags {
-                let _ = writeln!(out, "    {}: {}", flag.flag, flag.message);
+                let _ = writeln!(out, "    {}: {}", flag.flag, shown(&flag.message));
             }
         }
     }

@@ -18,6 +18,7 @@ use crate::analysis::ObjectMeasures;
 use crate::naming::NameParts;
 use crate::pipeline::FileAnalysis;
 use crate::store::{now_ms, FrameKey, FRAME_KEY_SQL};
+use crate::text::shown;
 
 /// Why the writer could not start.
 #[derive(Debug, thiserror::Error)]
@@ -511,7 +512,10 @@ fn record_done(
         )
         .optional()?;
     let Some(frame_id) = frame_id else {
-        tracing::warn!("store: {} has no queued row to complete; skipped", key.path);
+        tracing::warn!(
+            "store: {} has no queued row to complete; skipped",
+            shown(&key.path)
+        );
         return Ok(None);
     };
     tx.prepare_cached("DELETE FROM objects WHERE frame_id = ?1")?

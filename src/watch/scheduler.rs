@@ -18,6 +18,7 @@ use rusqlite::Connection;
 
 use crate::store::writer::StoreOp;
 use crate::store::{lookup, now_ms, FrameKey, FrameStatus};
+use crate::text::shown_path;
 use crate::watch::params::WatchSettings;
 use crate::watch::queue::{Job, Progress};
 
@@ -249,7 +250,7 @@ impl Scheduler {
             Err(e) => {
                 tracing::warn!(
                     "store look-up for {} failed ({e}); trying again",
-                    path.display()
+                    shown_path(path)
                 );
                 c.due = now + Duration::from_millis(500);
                 return Look::Again;
@@ -400,7 +401,7 @@ pub fn scan_loop(
         }
         tracing::debug!(
             "scanned {}: {listed} frame files, {} to look at",
-            root.display(),
+            shown_path(&root),
             found.len()
         );
         if !found.is_empty() && sched_tx.send(SchedMsg::Found(found)).is_err() {

@@ -1,0 +1,51 @@
+//! Text from outside (file names above all) made safe to log and print: a
+//! control character in a name must not split a log line or reach a terminal
+//! as an escape sequence.
+//!
+//! The bottom of the crate: anything that writes a name uses [`shown`].
+//! JSON output needs none of it (serde escapes control characters).
+
+use std::borrow::Cow;
+
+/// `text` with every control character (newline, tab, escape, DEL, C1
+/// controls …) written as a Rust-style escape, `\n`, `\t` or `\u{1b}`;
+/// borrowed when there is none.
+///
+/// ```
+/// use framewarden::text::shown;
+/// assert_eq!(shown("A01_t0001.tif"), "A01_t0001.tif");
+/// assert_eq!(shown("a\nb\u{1b}[31m.tif"), "a\\nb\\u{1b}[31m.tif");
+/// ```
+pub fn shown(text: &str) -> Cow<'_, str> {
+    if !text.chars().any(char::is_control) {
+        return Cow::Borrowed(text);
+    }
+    let mut out = String::with_capacity(text.len() + 8);
+    for c in text.chars() {
+        if c.is_control() {
+            out.extend(c.escape_debug());
+        } else {
+            out.push(c);
+        }
+    }
+    Cow::Owned(out)
+}
+
+/// A path as [`shown`] text (lossy for names that are not UTF-8).
+pub fn shown_path(path: &std::path::Path) -> String {
+    shown(&path.to_string_lossy()).into_owned()
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn only_control_characters_change() {
+        // Quotes, backslashes and non-ASCII letters stay as they are; C0, DEL
+        // and C1 controls are escaped.
+        assert_eq!(shown("«été» 'q' \\ \"x\""), "«été» 'q' \\ \"x\"");
+        assert_eq!(shown("\r\t\u{7f}\u{85}"), "\\r\\t\\u{7f}\\u{85}");
+        assert!(matches!(shown("plain"), Cow::Borrowed(_)));
+    }
+}
