@@ -2,15 +2,14 @@
 //! the true and found object counts, precision, recall and F1 at IoU ≥ 0.5,
 //! and F1 averaged over IoU 0.5, 0.55, …, 0.95, for
 //!
-//! - ours with the shipped defaults (`Settings::default()`);
-//! - ours with a size filter (`--min-area`, default 20 px);
+//! - ours with the shipped defaults (`Settings::default()`), without the size
+//!   filter, and with the split at 1, 2 and 3 px depth;
 //! - scikit-image + SciPy: Otsu, fill holes, the same size filter; and the
 //!   same followed by the usual split (distance transform, peak_local_max
 //!   markers, watershed), from `benches/accuracy_reference.py`.
 //!
 //! The images are synthetic crowds with exact truth
-//! (`tests/accuracy_support`) and stardist 0.9.2's nuclei test image with its
-//! instance annotation, fetched from PyPI on first use. All pipelines are
+//! (`tests/accuracy_support`). All pipelines are
 //! scored by the Python script's one implementation of the matching; the
 //! Rust implementation scores the same label images and the bench fails if
 //! the two disagree. See `benches/README.md`.
@@ -22,8 +21,7 @@ use std::path::{Path, PathBuf};
 use std::process::Command;
 
 use accuracy_support::{
-    crowds, label_frame, nuclei_case, our_labels, python, reference_script, render_crowd, score,
-    Case, Scores,
+    crowds, label_frame, our_labels, python, reference_script, render_crowd, score, Case, Scores,
 };
 use framewarden::analysis::{SegmentParams, Split};
 use framewarden::decode::{self, DecodeLimits};
@@ -117,8 +115,7 @@ fn main() {
         ("ours, split depth 3 px".to_string(), split(3.0)),
     ];
 
-    let mut cases: Vec<Case> = crowds().iter().map(render_crowd).collect();
-    cases.push(nuclei_case().unwrap_or_else(|e| fail(e)));
+    let cases: Vec<Case> = crowds().iter().map(render_crowd).collect();
 
     // Write every image, truth and our label images; score ours in Rust.
     let mut manifest = Vec::new();

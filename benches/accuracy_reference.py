@@ -1,13 +1,7 @@
 #!/usr/bin/env python3
 """The accuracy benchmark's Python side (see benches/README.md).
 
-Two commands:
-
-  accuracy_reference.py fetch DIR
-      Downloads the stardist wheel (pinned below) from PyPI with
-      `pip download --no-deps`, unzips the 2-D nuclei image and its instance
-      mask into DIR, checks their SHA-256 and prints the two paths as JSON.
-      Standard library only.
+Usage:
 
   accuracy_reference.py run MANIFEST.json
       For every case of the manifest (an image, its truth label image and the
@@ -35,68 +29,12 @@ The reference pipelines:
                           the negated distance inside the mask.
 """
 
-import hashlib
 import json
 import os
-import subprocess
 import sys
-import zipfile
 
-# The package that ships the real image, and what is taken from it.
-PACKAGE = "stardist"
-VERSION = "0.9.2"
-# One fixed wheel whatever the local Python: the data files are the same in
-# every wheel of a version, and a fixed file keeps the download reproducible.
-WHEEL_ARGS = [
-    "--only-binary", ":all:",
-    "--platform", "manylinux_2_28_x86_64",
-    "--python-version", "3.11",
-    "--implementation", "cp",
-    "--abi", "cp311",
-]
-FILES = {
-    "image": ("stardist/data/images/img2d.tif",
-              "f9ccc1571b92c861ff87e28463068b43f61bd47357ed0503f711e5cd1eb97750"),
-    "truth": ("stardist/data/images/mask2d.tif",
-              "59ad5e820b7982ca9d13e946fa6e7f64e2714899e00a2ae6c69aa79aad53d46f"),
-    "license": ("stardist-0.9.2.dist-info/licenses/LICENSE.txt", None),
-}
-
+# IoU thresholds 0.50, 0.55, ..., 0.95 (as tests/accuracy_support THRESHOLDS).
 THRESHOLDS = [0.5, 0.55, 0.6, 0.65, 0.7, 0.75, 0.8, 0.85, 0.9, 0.95]
-
-
-def sha256(path):
-    with open(path, "rb") as f:
-        return hashlib.sha256(f.read()).hexdigest()
-
-
-def fetch(out_dir):
-    os.makedirs(out_dir, exist_ok=True)
-    paths = {k: os.path.join(out_dir, os.path.basename(v[0])) for k, v in FILES.items()}
-    ok = all(os.path.exists(paths[k]) and (h is None or sha256(paths[k]) == h)
-             for k, (_, h) in FILES.items())
-    if not ok:
-        wheel_dir = os.path.join(out_dir, "wheel")
-        cmd = [sys.executable, "-m", "pip", "download", "--no-deps", "--quiet",
-               "--disable-pip-version-check", *WHEEL_ARGS,
-               f"{PACKAGE}=={VERSION}", "-d", wheel_dir]
-        done = subprocess.run(cmd, capture_output=True, text=True)
-        if done.returncode != 0:
-            sys.exit(f"cannot download {PACKAGE}=={VERSION} from PyPI "
-                     f"({' '.join(cmd)}):\n{done.stderr}")
-        wheels = [w for w in os.listdir(wheel_dir)
-                  if w.startswith(f"{PACKAGE}-{VERSION}-") and w.endswith(".whl")]
-        if not wheels:
-            sys.exit(f"no {PACKAGE} {VERSION} wheel in {wheel_dir}")
-        with zipfile.ZipFile(os.path.join(wheel_dir, wheels[0])) as z:
-            for key, (member, digest) in FILES.items():
-                data = z.read(member)
-                if digest is not None and hashlib.sha256(data).hexdigest() != digest:
-                    sys.exit(f"{member} in {wheels[0]} is not the file this "
-                             f"benchmark was recorded on (SHA-256 differs)")
-                with open(paths[key], "wb") as f:
-                    f.write(data)
-    print(json.dumps(paths))
 
 
 def score(truth, pred):
@@ -182,9 +120,7 @@ def run(manifest_path):
 
 
 def main():
-    if len(sys.argv) == 3 and sys.argv[1] == "fetch":
-        fetch(sys.argv[2])
-    elif len(sys.argv) == 3 and sys.argv[1] == "run":
+    if len(sys.argv) == 3 and sys.argv[1] == "run":
         run(sys.argv[2])
     else:
         sys.exit(__doc__)

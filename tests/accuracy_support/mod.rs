@@ -1,6 +1,6 @@
 //! Shared by `tests/accuracy.rs` and `benches/accuracy.rs`: object matching
-//! at IoU thresholds, synthetic crowded scenes with exact truth, our pipeline
-//! as a label image, and the real nuclei image fetched from its PyPI package.
+//! at IoU thresholds, synthetic crowded scenes with exact truth, and our
+//! pipeline as a label image.
 //!
 //! Matching follows the nucleus-segmentation literature (e.g. Caicedo et al.
 //! 2019, Nature Methods 16:1247): a predicted and a true object match at
@@ -15,10 +15,8 @@
 #![allow(dead_code)] // each of the test and the bench uses a part
 
 use std::path::{Path, PathBuf};
-use std::process::Command;
 
 use framewarden::analysis::{segment_frame, SegmentParams};
-use framewarden::decode::{self, DecodeLimits};
 use framewarden::frame::Frame;
 
 /// IoU thresholds 0.50, 0.55, …, 0.95.
@@ -403,45 +401,6 @@ pub fn python() -> String {
 
 pub fn reference_script() -> PathBuf {
     Path::new(env!("CARGO_MANIFEST_DIR")).join("benches/accuracy_reference.py")
-}
-
-/// Where the real image is kept between runs (under `target/`).
-pub fn data_dir() -> PathBuf {
-    Path::new(env!("CARGO_TARGET_TMPDIR")).join("accuracy-data")
-}
-
-/// The real image: stardist 0.9.2's 2-D fluorescence nuclei test image and
-/// its instance mask (`stardist/data/images/img2d.tif`, `mask2d.tif`; from
-/// the 2018 Data Science Bowl training data, Caicedo et al. 2019), fetched
-/// from PyPI by `benches/accuracy_reference.py fetch` on first use. Errors
-/// name what failed and how to fix it.
-pub fn nuclei_case() -> Result<Case, String> {
-    let dir = data_dir();
-    let out = Command::new(python())
-        .arg(reference_script())
-        .arg("fetch")
-        .arg(&dir)
-        .output()
-        .map_err(|e| format!("cannot run {} ({e}); set FRAMEWARDEN_PYTHON", python()))?;
-    if !out.status.success() {
-        return Err(format!(
-            "fetching the nuclei image (stardist==0.9.2 from PyPI) failed: {}",
-            String::from_utf8_lossy(&out.stderr)
-        ));
-    }
-    let paths: serde_json::Value = serde_json::from_slice(&out.stdout)
-        .map_err(|e| format!("the fetch printed no JSON: {e}"))?;
-    let read = |key: &str| -> Result<Frame, String> {
-        let p = paths[key].as_str().ok_or("no path in the fetch's answer")?;
-        decode::read_page(Path::new(p), 0, &DecodeLimits::default()).map_err(|e| e.to_string())
-    };
-    let frame = read("image")?;
-    let mask = read("truth")?;
-    Ok(Case {
-        name: "stardist img2d (DSB 2018)".into(),
-        frame,
-        truth: mask.pixels.iter().map(|&v| u32::from(v)).collect(),
-    })
 }
 
 /// A label image as a 16-bit frame, for writing as TIFF.
