@@ -77,3 +77,37 @@ fn every_format_decodes_to_the_writers_pixels_and_pixel_size() {
     }
     common::check(failures, "decoding against tifffile and Pillow");
 }
+
+/// A page whose last strip or tile is missing its final bytes is incomplete
+/// (worth retrying), never analysed early: tifffile writes each file with its
+/// compressed data at the end (the script checks that), and cutting 1 or 2
+/// bytes leaves what a reader sees while the writer pauses before the end.
+#[test]
+fn a_page_missing_its_last_compressed_bytes_is_incomplete() {
+    let dir = tempfile::tempdir().unwrap();
+    common::run_reference_script("make_short_streams.py", dir.path());
+    let names: Vec<String> =
+        serde_json::from_str(&std::fs::read_to_string(dir.path().join("names.json")).unwrap())
+            .unwrap();
+    assert_eq!(names.len(), 4, "LZW and Deflate, strips and tiles");
+    let mut failures = Vec::new();
+    for name in &names {
+        let whole = std::fs::read(dir.path().join(format!("{name}.tif"))).unwrap();
+        let path = dir.path().join(format!("{name}.tif"));
+        if let Err(e) = read_pages(&path, &[0], &DecodeLimits::default()) {
+            failures.push(format!("{name}: whole file: {e}"));
+        }
+        for cut in [1, 2] {
+            let short = dir.path().join(format!("{name}_short{cut}.tif"));
+            std::fs::write(&short, &whole[..whole.len() - cut]).unwrap();
+            match read_pages(&short, &[0], &DecodeLimits::default()) {
+                Ok(_) => failures.push(format!("{name} without its last {cut} bytes decoded")),
+                Err(e) if !e.is_incomplete() => {
+                    failures.push(format!("{name} short by {cut}: not incomplete: {e}"))
+                }
+                Err(_) => {}
+            }
+        }
+    }
+    common::check(failures, "pages missing their last bytes");
+}

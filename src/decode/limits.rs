@@ -226,6 +226,48 @@ pub(super) fn check_tile_size(
     Ok(())
 }
 
+/// Refuses a page whose compressed or raw data, as its directory declares it
+/// (`offsets` and `counts`, one pair per strip or tile), does not lie wholly
+/// inside the file's `len` bytes. A writer that has not yet written a stream's
+/// last bytes leaves exactly this: a page that may decode (a decoder can stop
+/// before the end-of-stream code) but is not complete, so it is reported as
+/// [`DecodeError::Truncated`], worth retrying.
+pub(super) fn check_streams_inside(
+    path: &Path,
+    what: &str,
+    offsets: &[u64],
+    counts: &[u64],
+    len: u64,
+) -> Result<(), DecodeError> {
+    if offsets.len() != counts.len() {
+        return Err(DecodeError::Corrupt {
+            path: path.into(),
+            detail: format!(
+                "{} {what} offsets but {} byte counts",
+                offsets.len(),
+                counts.len()
+            ),
+        });
+    }
+    for (i, (&offset, &count)) in offsets.iter().zip(counts).enumerate() {
+        let Some(end) = offset.checked_add(count) else {
+            return Err(DecodeError::Corrupt {
+                path: path.into(),
+                detail: format!(
+                    "{what} {i} starts at byte {offset} with {count} bytes, past any file size"
+                ),
+            });
+        };
+        if end > len {
+            return Err(DecodeError::Truncated {
+                path: path.into(),
+                detail: format!("{what} {i} ends at byte {end} but the file has {len} bytes"),
+            });
+        }
+    }
+    Ok(())
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;
@@ -264,6 +306,26 @@ mod tests {
         assert!(matches!(
             check_tile_size(p, 1 << 16, 1 << 16, 100, 100, 16),
             Err(DecodeError::TooLarge { .. })
+        ));
+    }
+
+    #[test]
+    fn streams_must_lie_inside_the_file() {
+        let p = Path::new("t.tif");
+        // Two strips: bytes 8..108 and 108..208 (hand-derived ends 108 and 208).
+        assert!(check_streams_inside(p, "strip", &[8, 108], &[100, 100], 208).is_ok());
+        // One byte short: the second strip's last byte is missing.
+        assert!(matches!(
+            check_streams_inside(p, "strip", &[8, 108], &[100, 100], 207),
+            Err(DecodeError::Truncated { .. })
+        ));
+        assert!(matches!(
+            check_streams_inside(p, "tile", &[u64::MAX], &[2], 10),
+            Err(DecodeError::Corrupt { .. })
+        ));
+        assert!(matches!(
+            check_streams_inside(p, "tile", &[8], &[], 10),
+            Err(DecodeError::Corrupt { .. })
         ));
     }
 }

@@ -108,7 +108,7 @@ pub fn read_pages(
         _ => return Err(DecodeError::UnknownFormat { path: path.into() }),
     };
     let result = std::panic::catch_unwind(std::panic::AssertUnwindSafe(|| match kind {
-        Kind::Tiff => read_tiff(reader, path, pages, limits)
+        Kind::Tiff => read_tiff(reader, len, path, pages, limits)
             .map(|(frames, pixel_size)| Decoded { frames, pixel_size }),
         Kind::Png => read_png(reader, path, pages, limits).map(|frames| Decoded {
             frames,

@@ -13,9 +13,12 @@ use std::io::{Read, Seek};
 use std::path::Path;
 
 use tiff::decoder::{Decoder, DecodingResult};
+use tiff::tags::Tag;
 use tiff::ColorType;
 
-use super::limits::{check_page, check_size, tiff_error, DecodeError, DecodeLimits};
+use super::limits::{
+    check_page, check_size, check_streams_inside, tiff_error, DecodeError, DecodeLimits,
+};
 use super::metadata::{tiff_pixel_size, PixelSizeSource};
 use super::tiled_lzw::read_tiled_lzw;
 use crate::frame::Frame;
@@ -24,9 +27,11 @@ use crate::frame::Frame;
 /// the file's first page states.
 pub(super) type TiffPages = (Vec<Frame>, Option<(f64, PixelSizeSource)>);
 
-/// Reads the listed pages of a TIFF or BigTIFF file, each within `limits`.
+/// Reads the listed pages of a TIFF or BigTIFF file of `len` bytes, each
+/// within `limits`.
 pub(super) fn read_tiff<R: Read + Seek>(
     reader: R,
+    len: u64,
     path: &Path,
     pages: &[usize],
     limits: &DecodeLimits,
@@ -52,7 +57,7 @@ pub(super) fn read_tiff<R: Read + Seek>(
                 other => err(other),
             });
         }
-        frames.push(read_tiff_page(&mut decoder, path, limits)?);
+        frames.push(read_tiff_page(&mut decoder, len, path, limits)?);
     }
     Ok((frames, pixel_size))
 }
@@ -66,9 +71,11 @@ fn count_pages<R: Read + Seek>(decoder: &mut Decoder<R>, limits: &DecodeLimits) 
     n
 }
 
-/// Reads the page the decoder is on as a greyscale frame.
+/// Reads the page the decoder is on as a greyscale frame, once every strip or
+/// tile it declares lies inside the file's `len` bytes.
 fn read_tiff_page<R: Read + Seek>(
     decoder: &mut Decoder<R>,
+    len: u64,
     path: &Path,
     limits: &DecodeLimits,
 ) -> Result<Frame, DecodeError> {
@@ -98,7 +105,16 @@ fn read_tiff_page<R: Read + Seek>(
         u64::from(bits / 8),
         limits,
     )?;
-    let data = match read_tiled_lzw(decoder, path, w, h, bits)? {
+    let tiled = decoder.find_tag(Tag::TileOffsets).map_err(err)?.is_some();
+    let (what, offsets, counts) = if tiled {
+        ("tile", Tag::TileOffsets, Tag::TileByteCounts)
+    } else {
+        ("strip", Tag::StripOffsets, Tag::StripByteCounts)
+    };
+    let offsets = decoder.get_tag_u64_vec(offsets).map_err(err)?;
+    let counts = decoder.get_tag_u64_vec(counts).map_err(err)?;
+    check_streams_inside(path, what, &offsets, &counts, len)?;
+    let data = match read_tiled_lzw(decoder, (&offsets, &counts), path, w, h, bits)? {
         Some(data) => data,
         None => decoder.read_image().map_err(err)?,
     };

@@ -12,14 +12,16 @@ use std::path::Path;
 use tiff::decoder::{Decoder, DecodingResult};
 use tiff::tags::Tag;
 
-use super::limits::{check_tile_size, tiff_error, DecodeError};
+use super::limits::{check_tile_size, DecodeError};
 
 /// Tiled LZW pages are decoded here rather than by the `tiff` crate, whose LZW
 /// reader rejects tiles that common writers end without an end-of-information
 /// code (an open upstream issue). Returns `None` for every other layout.
 /// Handles unsigned 8/16-bit grey, one sample per pixel, predictor 1 or 2.
+/// `offsets` and `counts` are the page's tile offsets and byte counts.
 pub(super) fn read_tiled_lzw<R: Read + Seek>(
     decoder: &mut Decoder<R>,
+    (offsets, counts): (&[u64], &[u64]),
     path: &Path,
     width: u32,
     height: u32,
@@ -50,12 +52,6 @@ pub(super) fn read_tiled_lzw<R: Read + Seek>(
         });
     }
     check_tile_size(path, tile_w, tile_h, width, height, bits)?;
-    let offsets = decoder
-        .get_tag_u64_vec(Tag::TileOffsets)
-        .map_err(|e| tiff_error(path, e))?;
-    let counts = decoder
-        .get_tag_u64_vec(Tag::TileByteCounts)
-        .map_err(|e| tiff_error(path, e))?;
     let (across, down) = (
         width.div_ceil(tile_w) as usize,
         height.div_ceil(tile_h) as usize,
@@ -73,7 +69,7 @@ pub(super) fn read_tiled_lzw<R: Read + Seek>(
     let mut out = vec![0u16; w * height as usize];
     let mut raw = Vec::new();
     let mut plain = vec![0u8; tile_bytes];
-    for (i, (&offset, &count)) in offsets.iter().zip(&counts).enumerate() {
+    for (i, (&offset, &count)) in offsets.iter().zip(counts).enumerate() {
         // LZW never expands data by more than ~1.4x; a larger count is damage.
         if count > (tile_bytes as u64) * 2 + 1024 {
             return Err(corrupt(format!(
