@@ -81,11 +81,16 @@ fn positive_f64(key: &'static str, v: f64) -> Result<f64, ValueError> {
     check(key, v, |v| v > 0.0 && v.is_finite(), "a positive number")
 }
 
-fn positive<T: std::fmt::Display + Copy + PartialOrd + Default>(
+/// `Ok(v)` when `lo <= v <= hi`: a count or a duration with a range the
+/// service can honour (a value past it would overflow a clock or an
+/// allocation), with the range in the message.
+fn within<T: std::fmt::Display + Copy + PartialOrd>(
     key: &'static str,
     v: T,
+    lo: T,
+    hi: T,
 ) -> Result<T, ValueError> {
-    check(key, v, |v| v > T::default(), "a positive number")
+    check(key, v, |v| v >= lo && v <= hi, &format!("{lo} to {hi}"))
 }
 
 /// `[segment]` and `[measure]`, with the flat-field frames' files (read later).
@@ -255,10 +260,9 @@ pub fn calibration(c: CalibrationSection) -> Result<Calibration, ValueError> {
 /// `[limits]`
 pub fn limits(l: LimitsSection) -> Result<DecodeLimits, ValueError> {
     Ok(DecodeLimits {
-        max_pixels: positive("limits.max_pixels", l.max_pixels)?,
-        max_decoded_bytes: positive("limits.max_decoded_mib", l.max_decoded_mib)?
-            .saturating_mul(1 << 20),
-        max_pages: positive("limits.max_pages", l.max_pages)?,
+        max_pixels: within("limits.max_pixels", l.max_pixels, 1, 1 << 32)?,
+        max_decoded_bytes: within("limits.max_decoded_mib", l.max_decoded_mib, 1, 1 << 16)? << 20,
+        max_pages: within("limits.max_pages", l.max_pages, 1, 1_000_000)?,
     })
 }
 
@@ -284,31 +288,43 @@ pub fn watch(w: WatchSection, base: &Path) -> Result<WatchSettings, ValueError> 
             "at most 600000",
         )?),
         mode,
-        poll_interval: Duration::from_millis(positive(
+        poll_interval: Duration::from_millis(within(
             "watch.poll_interval_ms",
             w.poll_interval_ms,
+            1,
+            3_600_000,
         )?),
-        rescan_interval: Duration::from_secs(positive(
+        rescan_interval: Duration::from_secs(within(
             "watch.rescan_interval_s",
             w.rescan_interval_s,
+            1,
+            86_400,
         )?),
-        workers: if w.workers == 0 {
-            default_workers()
-        } else {
-            w.workers
+        workers: match within("watch.workers", w.workers, 0, 256)? {
+            0 => default_workers(),
+            n => n,
         },
-        queue_capacity: positive("watch.queue_capacity", w.queue_capacity)?,
+        queue_capacity: within("watch.queue_capacity", w.queue_capacity, 1, 1_000_000)?,
         retry_limit: check("watch.retry_limit", w.retry_limit, |v| v <= 30, "0 to 30")?,
-        retry_backoff: Duration::from_millis(positive(
+        retry_backoff: Duration::from_millis(within(
             "watch.retry_backoff_ms",
             w.retry_backoff_ms,
+            1,
+            600_000,
         )?),
-        shutdown_timeout: Duration::from_secs(positive(
+        shutdown_timeout: Duration::from_secs(within(
             "watch.shutdown_timeout_s",
             w.shutdown_timeout_s,
+            1,
+            3_600,
         )?),
         new_run_after_idle: Duration::from_secs(
-            positive("watch.new_run_after_idle_min", w.new_run_after_idle_min)?.saturating_mul(60),
+            within(
+                "watch.new_run_after_idle_min",
+                w.new_run_after_idle_min,
+                1,
+                10_080,
+            )? * 60,
         ),
         name_pattern,
     })
@@ -318,7 +334,7 @@ pub fn watch(w: WatchSection, base: &Path) -> Result<WatchSettings, ValueError> 
 pub fn store(s: StoreSection, base: &Path) -> Result<StoreSettings, ValueError> {
     Ok(StoreSettings {
         database: base.join(s.database),
-        batch_max: positive("store.batch_max", s.batch_max)?,
+        batch_max: within("store.batch_max", s.batch_max, 1, 100_000)?,
     })
 }
 
@@ -346,7 +362,7 @@ pub fn quality(q: QualitySection) -> Result<(QualitySettings, Option<Recount>), 
             |v| v >= 0.0 && v.is_finite(),
             "0 or more",
         )?,
-        count_window: positive("quality.count_window", q.count_window)?,
+        count_window: within("quality.count_window", q.count_window, 1, 100_000)?,
         max_count_jump: positive_f64("quality.max_count_jump", q.max_count_jump)?,
         max_merged_fraction: fraction("quality.max_merged_fraction", q.max_merged_fraction)?,
         min_objects_for_merged: q.min_objects_for_merged,
@@ -371,8 +387,8 @@ pub fn quality(q: QualitySection) -> Result<(QualitySettings, Option<Recount>), 
         baseline_frames: check(
             "quality.baseline_frames",
             q.baseline_frames,
-            |v| v >= 2,
-            "at least 2 (a spread needs two frames)",
+            |v| (2..=100_000).contains(&v),
+            "2 to 100000 (a spread needs two frames)",
         )?,
         ewma_lambda: check(
             "quality.ewma_lambda",
@@ -389,7 +405,7 @@ pub fn quality(q: QualitySection) -> Result<(QualitySettings, Option<Recount>), 
         )?,
         cusum_h: positive_f64("quality.cusum_h", q.cusum_h)?,
         outlier_clip: positive_f64("quality.outlier_clip", q.outlier_clip)?,
-        recover_frames: positive("quality.recover_frames", q.recover_frames)?,
+        recover_frames: within("quality.recover_frames", q.recover_frames, 1, 100_000)?,
         charted,
     };
     let recount = match q.on_uneven_illumination.as_str() {
@@ -414,10 +430,10 @@ pub fn quality(q: QualitySection) -> Result<(QualitySettings, Option<Recount>), 
     let quality = QualitySettings {
         flags,
         charts,
-        stall_after: Duration::from_secs(positive("quality.stall_after_s", q.stall_after_s)?),
+        stall_after: Duration::from_secs(within("quality.stall_after_s", q.stall_after_s, 1, 604_800)?),
         expected_frames: (q.expected_frames > 0).then_some(q.expected_frames),
-        min_free_space_bytes: q.min_free_space_mib.saturating_mul(1 << 20),
-        failure_window: positive("quality.failure_window", q.failure_window)?,
+        min_free_space_bytes: within("quality.min_free_space_mib", q.min_free_space_mib, 0, 1 << 30)? << 20,
+        failure_window: within("quality.failure_window", q.failure_window, 1, 100_000)?,
         max_failure_fraction: fraction("quality.max_failure_fraction", q.max_failure_fraction)?,
     };
     Ok((quality, recount))
@@ -435,7 +451,12 @@ pub fn alerts(a: AlertsSection, base: &Path) -> Result<AlertSettings, ValueError
         Some((program, args)) => Some(CommandSink {
             program: program.clone(),
             args: args.to_vec(),
-            timeout: Duration::from_secs(a.command_timeout_s.max(1)),
+            timeout: Duration::from_secs(within(
+                "alerts.command_timeout_s",
+                a.command_timeout_s,
+                1,
+                3_600,
+            )?),
         }),
     };
     let webhook = if a.webhook_url.is_empty() {
@@ -447,9 +468,11 @@ pub fn alerts(a: AlertsSection, base: &Path) -> Result<AlertSettings, ValueError
             .map_err(|e| ValueError::Combination(format!("alerts.webhook_url = {e}")))?;
         Some(WebhookSink {
             url,
-            timeout: Duration::from_secs(positive(
+            timeout: Duration::from_secs(within(
                 "alerts.webhook_timeout_s",
                 a.webhook_timeout_s,
+                1,
+                600,
             )?),
             retries: check(
                 "alerts.webhook_retries",
@@ -457,7 +480,12 @@ pub fn alerts(a: AlertsSection, base: &Path) -> Result<AlertSettings, ValueError
                 |r| r <= 10,
                 "0 to 10",
             )?,
-            backoff: Duration::from_secs(a.webhook_backoff_s),
+            backoff: Duration::from_secs(within(
+                "alerts.webhook_backoff_s",
+                a.webhook_backoff_s,
+                0,
+                3_600,
+            )?),
             ca_file: a.webhook_ca_file.map(|f| base.join(f)),
         })
     };
