@@ -114,9 +114,22 @@ async fn watch_with_systemd(
             }
         }
     };
+    let ended = async {
+        loop {
+            tokio::time::sleep(THREAD_CHECK).await;
+            if let Some(name) = service.ended_thread() {
+                return name;
+            }
+        }
+    };
+    let mut ended_thread = None;
     tokio::select! {
         () = shutdown => {}
         () = watchdog => {}
+        name = ended => {
+            tracing::error!("the {name} thread ended unexpectedly; stopping the service");
+            ended_thread = Some(name);
+        }
     }
     tell_systemd(Note::Stopping);
     tracing::info!("stopping: finishing frames in hand");
@@ -132,8 +145,14 @@ async fn watch_with_systemd(
             " (time bound hit)"
         }
     );
-    Ok(summary)
+    match ended_thread {
+        Some(name) => Err(WatchError::ThreadEnded(name)),
+        None => Ok(summary),
+    }
 }
+
+/// How often the service's threads are checked for one that ended.
+const THREAD_CHECK: std::time::Duration = std::time::Duration::from_secs(1);
 
 /// What the service tells systemd.
 #[derive(Debug, Clone, Copy)]

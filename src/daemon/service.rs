@@ -79,6 +79,10 @@ pub enum WatchError {
     /// Watching could not start.
     #[error(transparent)]
     Watcher(#[from] WatcherError),
+    /// One of the service's threads ended while it ran (a panic); the service
+    /// stopped so that its supervisor can start it again.
+    #[error("the {0} thread ended unexpectedly; the service stopped (frames in hand stay queued and are redone at the next start)")]
+    ThreadEnded(&'static str),
     /// A thread or the signal handling could not start.
     #[error("cannot start {what}: {source}")]
     Start {
@@ -267,6 +271,25 @@ impl Service {
     /// The shared counters (for the watchdog and summaries).
     pub fn progress(&self) -> Arc<Progress> {
         Arc::clone(&self.progress)
+    }
+
+    /// The first of the service's threads found ended while the service runs
+    /// (each ends only when told to stop, so an ended one has panicked): the
+    /// service cannot go on without it and must stop with an error, so that a
+    /// supervisor (systemd) starts it again rather than leaving a process that
+    /// records nothing.
+    pub fn ended_thread(&self) -> Option<&'static str> {
+        if self.scheduler.is_finished() {
+            Some("scheduler")
+        } else if self.scanner.is_finished() {
+            Some("scanner")
+        } else if self.workers.iter().any(JoinHandle::is_finished) {
+            Some("worker")
+        } else if self.writer.is_finished() {
+            Some("store writer")
+        } else {
+            None
+        }
     }
 
     /// The run being recorded into.

@@ -409,15 +409,42 @@ exclude_border = true
             // Values that once overflowed an allocation, a clock or a shift in
             // a thread of the running service (each refused at load now).
             ("[watch]\nworkers = 100000", "watch.workers"),
-            ("[watch]\nqueue_capacity = 4611686018427387904", "watch.queue_capacity"),
-            ("[watch]\nrescan_interval_s = 9223372036854775807", "watch.rescan_interval_s"),
-            ("[watch]\npoll_interval_ms = 9223372036854775807", "watch.poll_interval_ms"),
-            ("[watch]\nnew_run_after_idle_min = 9223372036854775807", "watch.new_run_after_idle_min"),
-            ("[alerts]\ncommand = [\"true\"]\ncommand_timeout_s = 9223372036854775807", "alerts.command_timeout_s"),
-            ("[alerts]\ncommand = [\"true\"]\ncommand_timeout_s = 0", "alerts.command_timeout_s"),
-            ("[limits]\nmax_decoded_mib = 17592186044416", "limits.max_decoded_mib"),
-            ("[quality]\nmin_free_space_mib = 9223372036854775807", "quality.min_free_space_mib"),
-            ("[quality]\nbaseline_frames = 1000000000", "quality.baseline_frames"),
+            (
+                "[watch]\nqueue_capacity = 4611686018427387904",
+                "watch.queue_capacity",
+            ),
+            (
+                "[watch]\nrescan_interval_s = 9223372036854775807",
+                "watch.rescan_interval_s",
+            ),
+            (
+                "[watch]\npoll_interval_ms = 9223372036854775807",
+                "watch.poll_interval_ms",
+            ),
+            (
+                "[watch]\nnew_run_after_idle_min = 9223372036854775807",
+                "watch.new_run_after_idle_min",
+            ),
+            (
+                "[alerts]\ncommand = [\"true\"]\ncommand_timeout_s = 9223372036854775807",
+                "alerts.command_timeout_s",
+            ),
+            (
+                "[alerts]\ncommand = [\"true\"]\ncommand_timeout_s = 0",
+                "alerts.command_timeout_s",
+            ),
+            (
+                "[limits]\nmax_decoded_mib = 17592186044416",
+                "limits.max_decoded_mib",
+            ),
+            (
+                "[quality]\nmin_free_space_mib = 9223372036854775807",
+                "quality.min_free_space_mib",
+            ),
+            (
+                "[quality]\nbaseline_frames = 1000000000",
+                "quality.baseline_frames",
+            ),
         ] {
             let err = parse(text, Path::new("c.toml")).unwrap_err().to_string();
             assert!(err.contains(needle), "{text}: {err}");

@@ -430,9 +430,19 @@ pub fn quality(q: QualitySection) -> Result<(QualitySettings, Option<Recount>), 
     let quality = QualitySettings {
         flags,
         charts,
-        stall_after: Duration::from_secs(within("quality.stall_after_s", q.stall_after_s, 1, 604_800)?),
+        stall_after: Duration::from_secs(within(
+            "quality.stall_after_s",
+            q.stall_after_s,
+            1,
+            604_800,
+        )?),
         expected_frames: (q.expected_frames > 0).then_some(q.expected_frames),
-        min_free_space_bytes: within("quality.min_free_space_mib", q.min_free_space_mib, 0, 1 << 30)? << 20,
+        min_free_space_bytes: within(
+            "quality.min_free_space_mib",
+            q.min_free_space_mib,
+            0,
+            1 << 30,
+        )? << 20,
         failure_window: within("quality.failure_window", q.failure_window, 1, 100_000)?,
         max_failure_fraction: fraction("quality.max_failure_fraction", q.max_failure_fraction)?,
     };

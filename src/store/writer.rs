@@ -194,6 +194,12 @@ impl Writer {
         Ok((Writer { thread, run_id }, ops_tx))
     }
 
+    /// True once the thread has ended: before every sender is dropped, only
+    /// by a panic.
+    pub fn is_finished(&self) -> bool {
+        self.thread.is_finished()
+    }
+
     /// Waits for the thread to flush and end (after all senders are dropped).
     pub fn join(self) {
         if self.thread.join().is_err() {
