@@ -192,6 +192,19 @@ pub struct SegmentParams {
     pub filter: ObjectFilter,
     /// Other pages whose intensities are measured inside the objects.
     pub measure_pages: Vec<usize>,
+    /// Most components one frame may hold before measuring: above it the frame
+    /// is refused ([`crate::analysis::AnalysisError::TooManyObjects`]), since a
+    /// threshold on noise or on a fine pattern gives millions of "objects" whose
+    /// measures would take gigabytes and whose rows would swamp the database.
+    pub max_objects: usize,
+}
+
+impl SegmentParams {
+    /// The default for [`SegmentParams::max_objects`]: far above any countable
+    /// scene (a 2048² frame packed with the smallest objects counted by default,
+    /// 20 px, holds about 200,000 at most; a crowded field of cells, a few
+    /// thousand).
+    pub const DEFAULT_MAX_OBJECTS: usize = 250_000;
 }
 
 impl Default for SegmentParams {
@@ -208,6 +221,7 @@ impl Default for SegmentParams {
             },
             filter: ObjectFilter::default(),
             measure_pages: Vec::new(),
+            max_objects: SegmentParams::DEFAULT_MAX_OBJECTS,
         }
     }
 }

@@ -133,4 +133,13 @@ pub enum AnalysisError {
     /// from the flat frame's); the message says how.
     #[error("flat-field correction: {0}")]
     FlatField(String),
+    /// More components than [`crate::analysis::SegmentParams::max_objects`]:
+    /// the threshold found noise or a pattern, not countable objects.
+    #[error("{found} components above the threshold, more than the limit of {limit} ([limits] max_objects): the threshold separates noise or a fine pattern, not countable objects; no objects are recorded for this frame")]
+    TooManyObjects {
+        /// Components found (at least; counting may stop early).
+        found: usize,
+        /// The limit.
+        limit: usize,
+    },
 }

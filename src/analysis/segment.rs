@@ -124,6 +124,13 @@ fn run(
         params.connectivity,
         params.fill_holes,
     );
+    let too_many = |found: usize| AnalysisError::TooManyObjects {
+        found,
+        limit: params.max_objects,
+    };
+    if components.count > params.max_objects {
+        return Err(too_many(components.count));
+    }
     let components = match params.split {
         Split::None => components,
         Split::Distance { min_depth_px } => split::split(
@@ -134,6 +141,9 @@ fn run(
             min_depth_px,
         ),
     };
+    if components.count > params.max_objects {
+        return Err(too_many(components.count));
+    }
     let measure::Measured {
         objects,
         size_filtered,

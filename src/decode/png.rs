@@ -12,6 +12,11 @@ use std::path::Path;
 use super::limits::{check_size, DecodeError, DecodeLimits};
 use crate::frame::Frame;
 
+/// Most bytes the PNG decoder may allocate for itself (not counting the frame):
+/// ample for row buffers of any frame within the pixel limits and for real
+/// metadata chunks (ICC profiles are kilobytes to a few megabytes).
+const PNG_DECODER_BUDGET: u64 = 16 << 20;
+
 /// Reads a PNG file, which has only page 0, once for each page asked (each must
 /// be 0), after checking that it is complete.
 pub(super) fn read_png<R: Read + Seek + BufRead>(
@@ -66,7 +71,14 @@ pub(super) fn read_png<R: Read + Seek + BufRead>(
             detail: other.to_string(),
         },
     };
-    let decoder = image::codecs::png::PngDecoder::new(reader).map_err(image_err)?;
+    // The decoder's own allocations (row buffers, and chunks it inflates such as
+    // an ICC profile) are capped: a few kilobytes of compressed chunk can
+    // otherwise inflate to gigabytes. The frame's buffer is ours, sized by
+    // `check_size` below.
+    let mut decoder_limits = image::Limits::default();
+    decoder_limits.max_alloc = Some(PNG_DECODER_BUDGET);
+    let decoder =
+        image::codecs::png::PngDecoder::with_limits(reader, decoder_limits).map_err(image_err)?;
     let (w, h) = decoder.dimensions();
     let colour = decoder.color_type();
     let bits = match colour {

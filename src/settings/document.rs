@@ -192,21 +192,24 @@ pub struct LimitsSection {
     pub max_pixels: u64,
     pub max_decoded_mib: u64,
     pub max_pages: usize,
+    pub max_objects: usize,
 }
 
-impl From<&DecodeLimits> for LimitsSection {
-    fn from(l: &DecodeLimits) -> Self {
+impl LimitsSection {
+    /// The section for the decoder's limits and the per-frame object limit.
+    pub fn of(l: &DecodeLimits, max_objects: usize) -> Self {
         LimitsSection {
             max_pixels: l.max_pixels,
             max_decoded_mib: l.max_decoded_bytes >> 20,
             max_pages: l.max_pages,
+            max_objects,
         }
     }
 }
 
 impl Default for LimitsSection {
     fn default() -> Self {
-        LimitsSection::from(&DecodeLimits::default())
+        LimitsSection::of(&DecodeLimits::default(), SegmentParams::DEFAULT_MAX_OBJECTS)
     }
 }
 

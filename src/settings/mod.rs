@@ -206,7 +206,7 @@ impl Settings {
                 pages: p.segment.measure_pages.clone(),
             },
             calibration: CalibrationSection::from(&p.calibration),
-            limits: LimitsSection::from(&p.limits),
+            limits: LimitsSection::of(&p.limits, p.segment.max_objects),
             watch: WatchSection::from(&self.watch),
             store: StoreSection::from(&self.store),
             quality: QualitySection::from_settings(&self.quality, p.recount.map(|r| r.radius_px)),
@@ -269,14 +269,16 @@ fn parse_anchored(text: &str, path: &Path, base: &Path) -> Result<Parsed, Config
         path: path.to_path_buf(),
         source,
     };
+    let (limits, max_objects) = validate::limits(document.limits).map_err(invalid)?;
     let (segment, flat_field) =
-        validate::segment(document.segment, document.measure.pages, base).map_err(invalid)?;
+        validate::segment(document.segment, document.measure.pages, max_objects, base)
+            .map_err(invalid)?;
     let (quality, recount) = validate::quality(document.quality).map_err(invalid)?;
     let settings = Settings {
         pipeline: PipelineParams {
             segment,
             calibration: validate::calibration(document.calibration).map_err(invalid)?,
-            limits: validate::limits(document.limits).map_err(invalid)?,
+            limits,
             recount,
         },
         watch: validate::watch(document.watch, base).map_err(invalid)?,

@@ -93,10 +93,12 @@ fn within<T: std::fmt::Display + Copy + PartialOrd>(
     check(key, v, |v| v >= lo && v <= hi, &format!("{lo} to {hi}"))
 }
 
-/// `[segment]` and `[measure]`, with the flat-field frames' files (read later).
+/// `[segment]` and `[measure]`, with the flat-field frames' files (read later);
+/// `max_objects` comes from `[limits]` (see [`limits`]).
 pub fn segment(
     s: SegmentSection,
     measure_pages: Vec<usize>,
+    max_objects: usize,
     base: &Path,
 ) -> Result<(SegmentParams, Option<FlatFieldFiles>), ValueError> {
     let method = match s.method.as_str() {
@@ -234,6 +236,7 @@ pub fn segment(
         split,
         filter,
         measure_pages,
+        max_objects,
     };
     Ok((params, files))
 }
@@ -257,13 +260,17 @@ pub fn calibration(c: CalibrationSection) -> Result<Calibration, ValueError> {
     })
 }
 
-/// `[limits]`
-pub fn limits(l: LimitsSection) -> Result<DecodeLimits, ValueError> {
-    Ok(DecodeLimits {
+/// `[limits]`: the decoder's limits and the most objects one frame may hold.
+pub fn limits(l: LimitsSection) -> Result<(DecodeLimits, usize), ValueError> {
+    let decode = DecodeLimits {
         max_pixels: within("limits.max_pixels", l.max_pixels, 1, 1 << 32)?,
         max_decoded_bytes: within("limits.max_decoded_mib", l.max_decoded_mib, 1, 1 << 16)? << 20,
         max_pages: within("limits.max_pages", l.max_pages, 1, 1_000_000)?,
-    })
+    };
+    Ok((
+        decode,
+        within("limits.max_objects", l.max_objects, 1, 10_000_000)?,
+    ))
 }
 
 /// `[watch]`; relative folders are anchored at `base`.
