@@ -227,6 +227,11 @@ fn the_recount_of_unevenly_lit_frames_changes_the_count_towards_the_truth() {
     let u = s.uneven.clone().unwrap();
     let rows = frames();
     let recounted: Vec<&Row> = rows.iter().filter(|r| r.recount.is_some()).collect();
+    let changed: Vec<&&Row> = recounted
+        .iter()
+        .filter(|r| r.used == r.recount && r.recount != r.raw)
+        .collect();
+    assert!(!changed.is_empty(), "{recounted:?}");
     let stretch: BTreeSet<(String, usize)> = rows
         .iter()
         .filter(|r| r.status == "done" && (u.from..=u.to).contains(&r.time_point))
@@ -237,11 +242,6 @@ fn the_recount_of_unevenly_lit_frames_changes_the_count_towards_the_truth() {
         .map(|r| (r.well.clone(), r.time_point))
         .collect();
     assert_eq!(got, stretch, "recounted exactly the unevenly lit frames");
-    let changed: Vec<&&Row> = recounted
-        .iter()
-        .filter(|r| r.used == r.recount && r.recount != r.raw)
-        .collect();
-    assert!(!changed.is_empty(), "{recounted:?}");
     // Flattening finds the faint nuclei on the dim side: over the stretch the
     // recount is nearer the drawn counts than the first segmentation.
     let miss = |count: fn(&Row) -> Option<i64>| -> i64 {
