@@ -273,7 +273,8 @@ impl Scenario {
 }
 
 /// Where a demo keeps everything: the folder and what the demo writes in it.
-/// The folder is kept after the demo, so every path stays valid.
+/// The folder is kept after the demo, so every path stays valid; the summary
+/// ends by listing them ([`run`]).
 #[derive(Debug, Clone, PartialEq)]
 pub struct DemoPaths {
     /// The demo's own folder.
@@ -503,7 +504,7 @@ impl Night {
             out.push_str(&format!(
                 "  {flag:<20} {:>3}  {}\n",
                 frames.len(),
-                where_(frames, &all_wells)
+                places(frames, &all_wells)
             ));
         }
         let recounted: Vec<&FrameRow> =
@@ -582,7 +583,7 @@ const MAX_ALERTS_SHOWN: usize = 6;
 /// Where frames lie, compactly: wells sharing the same time points are listed
 /// together (`every well` when all share them), each time point run as a
 /// range: `A02 t6-t8`, `every well t9-t10`.
-fn where_(frames: &[&FrameRow], all_wells: &[&str]) -> String {
+fn places(frames: &[&FrameRow], all_wells: &[&str]) -> String {
     let mut times: BTreeMap<&str, Vec<usize>> = BTreeMap::new();
     for f in frames {
         times.entry(&f.well).or_default().push(f.time_point);
@@ -760,11 +761,19 @@ mod tests {
 
     #[test]
     fn scenarios_that_do_not_fit_together_are_refused() {
-        let swap = |from: &str, to: &str| Scenario::parse(&DEFAULT_SCENARIO.replace(from, to));
-        assert!(swap("well = \"A02\"", "well = \"H12\"").is_err());
-        assert!(swap("to = 10", "to = 99").is_err());
-        assert!(swap("wells = [\"A02\", \"B02\"]", "wells = [\"A01\"]").is_err());
-        assert!(swap("end = 0.5", "end = 0").is_err());
+        let refused = |from: &str, to: &str| {
+            assert!(DEFAULT_SCENARIO.contains(from), "{from}");
+            match Scenario::parse(&DEFAULT_SCENARIO.replace(from, to)) {
+                Err(DemoError::Scenario(m)) => m,
+                other => panic!("{to}: {other:?}"),
+            }
+        };
+        assert!(refused("well = \"A02\"", "well = \"H12\"").starts_with("defocus: well H12"));
+        assert!(refused("to = 10", "to = 99").starts_with("defocus:"));
+        assert!(refused("to = 6", "to = 4").starts_with("uneven: 5..=4"));
+        assert!(refused("[\"A02\", \"B02\"]", "[\"A01\"]").contains("more than one treatment"));
+        assert!(refused("end = 0.5", "end = 0.0").starts_with("lamp:"));
+        assert!(refused("time_point = 7", "time_point = 16").starts_with("corrupt: B03 t16"));
     }
 
     #[test]
@@ -781,7 +790,7 @@ mod tests {
         };
         let rows = [row("A02", 6), row("A02", 7), row("A02", 8), row("A02", 11)];
         let refs: Vec<&FrameRow> = rows.iter().collect();
-        assert_eq!(where_(&refs, &["A01", "A02"]), "A02 t6-t8 t11");
+        assert_eq!(places(&refs, &["A01", "A02"]), "A02 t6-t8 t11");
         let rows = [
             row("A01", 9),
             row("A02", 9),
@@ -790,7 +799,7 @@ mod tests {
             row("B01", 3),
         ];
         let refs: Vec<&FrameRow> = rows.iter().collect();
-        assert_eq!(where_(&refs, &["A01", "A02"]), "every well t9-t10; B01 t3");
-        assert_eq!(where_(&refs[..4], &["A01", "A02", "B01"]), "A01 A02 t9-t10");
+        assert_eq!(places(&refs, &["A01", "A02"]), "every well t9-t10; B01 t3");
+        assert_eq!(places(&refs[..4], &["A01", "A02", "B01"]), "A01 A02 t9-t10");
     }
 }
