@@ -1,10 +1,14 @@
-//! `framewarden demo`: replays an invented overnight acquisition into a temporary
-//! folder while the real watch service records it, then prints the status.
+//! `framewarden demo`: replays an invented overnight acquisition into a folder
+//! of its own while the real watch service records it, then tells what the
+//! night held and what framewarden caught, in a few lines.
 //!
-//! The scenario (wells, time points, dimming lamp, the botched file) is data in
-//! `demo-data/plate-timelapse.toml`; frames come from [`crate::synth`]. Watching,
-//! analysis and storage are the ordinary service's: nothing is special-cased here.
+//! The scenario (a dose series of an invented compound, a well that loses
+//! focus, a stretch of uneven illumination, a dimming lamp, a botched file) is
+//! data in `demo-data/plate-timelapse.toml`; frames come from [`crate::synth`].
+//! Watching, analysis and storage are the ordinary service's: nothing is
+//! special-cased here. The folder is kept: [`DemoPaths`] says what is in it.
 
+use std::collections::BTreeMap;
 use std::io::Write;
 use std::path::{Path, PathBuf};
 use std::time::{Duration, Instant};
@@ -12,8 +16,10 @@ use std::time::{Duration, Instant};
 use serde::Deserialize;
 
 use crate::daemon::{Service, WatchError, WatchOptions};
+use crate::qc::report::AlertRow;
 use crate::settings::Settings;
-use crate::status::{self, StatusReport};
+use crate::status;
+use crate::store::{self, StoreError, COUNT_USED_SQL};
 use crate::synth::{self, SceneSpec};
 
 /// The built-in scenario.
@@ -23,8 +29,8 @@ pub const DEFAULT_SCENARIO: &str = include_str!("../demo-data/plate-timelapse.to
 #[derive(Debug, Clone, Deserialize)]
 #[serde(deny_unknown_fields)]
 pub struct Scenario {
-    /// Wells imaged at every time point (e.g. `A01`); must not be empty.
-    pub wells: Vec<String>,
+    /// Name of the invented compound of the dose series.
+    pub compound: String,
     /// Channel name written into every file name.
     pub channel: String,
     /// Number of time points (at least 1).
@@ -37,16 +43,20 @@ pub struct Scenario {
     pub bit_depth: u8,
     /// Objects per well at time point 0.
     pub start_objects: usize,
-    /// Factor by which each well's object count grows per time point.
-    pub growth_per_step: f64,
-    /// Time point from which the lamp dims and the illumination gradient grows,
-    /// reaching `lamp_end` and `gradient_end` at the last time point.
-    pub decline_from: usize,
-    /// Lamp brightness at the last time point (1 = nominal).
-    pub lamp_end: f64,
-    /// Illumination gradient at the last time point: (max − min) / mean across the
-    /// frame.
-    pub gradient_end: f64,
+    /// Mean brightness of the objects, fraction of full scale.
+    pub object_level: f64,
+    /// Relative spread of object brightness: each object gets
+    /// `object_level * (1 ± object_level_spread)`, uniformly.
+    pub object_level_spread: f64,
+    /// The dose series: which wells got which dose, and how their counts change.
+    #[serde(rename = "treatment")]
+    pub treatments: Vec<Treatment>,
+    /// One well out of focus for a stretch of time points; `None` = always sharp.
+    pub defocus: Option<Defocus>,
+    /// Every well unevenly lit for a stretch; `None` = always even.
+    pub uneven: Option<Uneven>,
+    /// The lamp dimming late in the run; `None` = steady.
+    pub lamp: Option<LampDimming>,
     /// Pieces each file is written in, with pauses between them (at least 1).
     pub chunks: usize,
     /// Pause after each piece, in ms.
@@ -58,6 +68,55 @@ pub struct Scenario {
     pub temp_suffix: String,
     /// One file cut off half-way, never finished; `None` = every file is whole.
     pub corrupt: Option<CorruptFile>,
+}
+
+/// One dose of the series and the wells that received it.
+#[derive(Debug, Clone, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct Treatment {
+    /// The dose as shown (e.g. `vehicle`, `3 uM`).
+    pub dose: String,
+    /// Wells with this dose (e.g. `A01`).
+    pub wells: Vec<String>,
+    /// Factor by which the wells' object count changes per time point (above 1
+    /// the cells multiply, below 1 they die).
+    pub growth_per_step: f64,
+}
+
+/// A well whose frames are blurred for time points `from..=to`.
+#[derive(Debug, Clone, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct Defocus {
+    /// The well.
+    pub well: String,
+    /// First blurred time point.
+    pub from: usize,
+    /// Last blurred time point.
+    pub to: usize,
+    /// Sigma of the Gaussian blur, in pixels.
+    pub blur_sigma_px: f64,
+}
+
+/// An illumination gradient over every well for time points `from..=to`.
+#[derive(Debug, Clone, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct Uneven {
+    /// First unevenly lit time point.
+    pub from: usize,
+    /// Last unevenly lit time point.
+    pub to: usize,
+    /// (max − min) / mean of the illumination across the frame.
+    pub gradient: f64,
+}
+
+/// The lamp dims from time point `from`, reaching `end` at the last one.
+#[derive(Debug, Clone, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct LampDimming {
+    /// First dimmer time point.
+    pub from: usize,
+    /// Brightness at the last time point (1 = nominal).
+    pub end: f64,
 }
 
 /// The file of a scenario that is written truncated.
@@ -88,24 +147,81 @@ pub enum DemoError {
     /// The watch service did not start.
     #[error(transparent)]
     Watch(#[from] WatchError),
-    /// The database could not be read for the status.
+    /// The database could not be read for the summary.
     #[error(transparent)]
-    Store(#[from] crate::store::StoreError),
+    Store(#[from] StoreError),
 }
 
 impl Scenario {
-    /// Parses a scenario description.
+    /// Parses a scenario description and checks that its parts fit together.
     ///
     /// # Errors
     /// [`DemoError::Scenario`] for bad TOML or values.
     pub fn parse(text: &str) -> Result<Scenario, DemoError> {
         let s: Scenario = toml::from_str(text).map_err(|e| DemoError::Scenario(e.to_string()))?;
-        if s.wells.is_empty() || s.time_points == 0 || s.chunks == 0 {
-            return Err(DemoError::Scenario(
-                "wells, time_points and chunks must not be empty or 0".into(),
+        let bad = |m: String| Err(DemoError::Scenario(m));
+        let wells = s.wells();
+        if wells.is_empty() || s.time_points == 0 || s.chunks == 0 {
+            return bad("treatment wells, time_points and chunks must not be empty or 0".into());
+        }
+        if wells.windows(2).any(|p| p[0].0 == p[1].0) {
+            return bad("a well is listed under more than one treatment".into());
+        }
+        if let Some(t) = s
+            .treatments
+            .iter()
+            .find(|t| !(t.growth_per_step > 0.0 && t.growth_per_step.is_finite()))
+        {
+            return bad(format!(
+                "treatment {}: growth_per_step must be above 0",
+                t.dose
             ));
         }
+        let last = s.time_points - 1;
+        let stretch_ok = |from: usize, to: usize| from <= to && to <= last;
+        let known = |well: &str| wells.iter().any(|w| w.0 == well);
+        if let Some(d) = &s.defocus {
+            if !known(&d.well) || !stretch_ok(d.from, d.to) {
+                return bad(format!(
+                    "defocus: well {} must be a treated well and {}..={} within the time points",
+                    d.well, d.from, d.to
+                ));
+            }
+        }
+        if let Some(u) = &s.uneven {
+            if !stretch_ok(u.from, u.to) {
+                return bad(format!(
+                    "uneven: {}..={} is not within the time points",
+                    u.from, u.to
+                ));
+            }
+        }
+        if let Some(l) = &s.lamp {
+            if l.from > last || !(l.end > 0.0 && l.end <= 1.0) {
+                return bad("lamp: from must be a time point and end in (0, 1]".into());
+            }
+        }
+        if let Some(c) = &s.corrupt {
+            if !known(&c.well) || c.time_point > last {
+                return bad(format!(
+                    "corrupt: {} t{} is not a frame of the run",
+                    c.well, c.time_point
+                ));
+            }
+        }
         Ok(s)
+    }
+
+    /// Every well with its treatment, in plate order (`A01`, `A02`, … `B01`):
+    /// the order the instrument visits them at each time point.
+    pub fn wells(&self) -> Vec<(&str, &Treatment)> {
+        let mut wells: Vec<(&str, &Treatment)> = self
+            .treatments
+            .iter()
+            .flat_map(|t| t.wells.iter().map(move |w| (w.as_str(), t)))
+            .collect();
+        wells.sort_by_key(|w| w.0);
+        wells
     }
 
     /// File name of one well's frame at time point `t`:
@@ -114,72 +230,119 @@ impl Scenario {
         format!("{well}_t{t:04}_{}.tif", self.channel)
     }
 
-    /// The synthetic scene of one well at one time point: cells multiply; late
-    /// in the run the lamp dims and a gradient grows.
+    /// The synthetic scene of the `well_index`-th well of [`Scenario::wells`] at
+    /// time point `t`: its cells multiply or die by its dose; the defocus, the
+    /// uneven illumination and the dimming lamp apply within their stretches.
     pub fn scene(&self, well_index: usize, t: usize) -> SceneSpec {
-        let late = if t >= self.decline_from && self.time_points > self.decline_from + 1 {
-            (t - self.decline_from) as f64 / (self.time_points - 1 - self.decline_from) as f64
-        } else {
-            0.0
-        };
+        let (well, treatment) = self.wells()[well_index];
         let objects =
-            (self.start_objects as f64 * self.growth_per_step.powi(t as i32)).round() as usize;
+            (self.start_objects as f64 * treatment.growth_per_step.powi(t as i32)).round() as usize;
+        let blur = self
+            .defocus
+            .as_ref()
+            .filter(|d| d.well == well && (d.from..=d.to).contains(&t))
+            .map_or(0.0, |d| d.blur_sigma_px);
+        let gradient = self
+            .uneven
+            .as_ref()
+            .filter(|u| (u.from..=u.to).contains(&t))
+            .map_or(0.0, |u| u.gradient);
+        // Dimmer at every time point from `from` on, down to `end` at the last.
+        let lamp = self.lamp.as_ref().filter(|l| t >= l.from).map_or(1.0, |l| {
+            let late = (t + 1 - l.from) as f64 / (self.time_points - l.from) as f64;
+            1.0 - late * (1.0 - l.end)
+        });
         SceneSpec {
             width: self.size_px,
             height: self.size_px,
             bit_depth: self.bit_depth,
             object_count: objects,
             radius_px: (4.0, 8.0),
-            lamp: 1.0 - late * (1.0 - self.lamp_end),
-            gradient: late * self.gradient_end,
+            object_level: self.object_level,
+            object_level_spread: self.object_level_spread,
+            lamp,
+            gradient,
             gradient_angle_rad: 0.6,
-            // One seed per well: the same cells all night, more of them as they divide.
+            blur_sigma_px: blur,
+            // One seed per well: the same cells all night, more or fewer of
+            // them as they divide or die (layouts are prefix-stable).
             seed: well_index as u64 + 1,
             ..SceneSpec::default()
         }
     }
 }
 
-/// Replays `scenario` into `workdir/acquisition` while the watch service records
-/// it into `workdir/framewarden.db`; returns the final status.
+/// Where a demo keeps everything: the folder and what the demo writes in it.
+/// The folder is kept after the demo, so every path stays valid; the summary
+/// ends by listing them ([`run`]).
+#[derive(Debug, Clone, PartialEq)]
+pub struct DemoPaths {
+    /// The demo's own folder.
+    pub folder: PathBuf,
+    /// The watched folder the frames are written into.
+    pub acquisition: PathBuf,
+    /// The run's database.
+    pub database: PathBuf,
+    /// The service's log, one line per frame.
+    pub log: PathBuf,
+    /// The alerts, one JSON document per line.
+    pub alerts: PathBuf,
+}
+
+impl DemoPaths {
+    /// The paths inside `folder`.
+    pub fn new(folder: &Path) -> DemoPaths {
+        DemoPaths {
+            folder: folder.to_path_buf(),
+            acquisition: folder.join("acquisition"),
+            database: folder.join("framewarden.db"),
+            log: folder.join("framewarden.log"),
+            alerts: folder.join("alerts.jsonl"),
+        }
+    }
+}
+
+/// Replays `scenario` into `paths.acquisition` while the watch service records
+/// it into `paths.database`, then writes the short summary to `out`: the
+/// counts per dose, the flags and alerts with the wells and time points they
+/// concern, and where everything is.
 ///
 /// # Errors
-/// [`DemoError`] for folder, scenario or service start-up problems.
-pub fn run(
-    scenario: &Scenario,
-    workdir: &Path,
-    out: &mut dyn Write,
-) -> Result<StatusReport, DemoError> {
+/// [`DemoError`] for folder, scenario, service start-up or database problems.
+pub fn run(scenario: &Scenario, paths: &DemoPaths, out: &mut dyn Write) -> Result<(), DemoError> {
     let io = |path: &Path| {
         let path = path.to_path_buf();
         move |source| DemoError::Io { path, source }
     };
-    let acq = workdir.join("acquisition");
-    let staging = workdir.join("instrument-buffer");
-    std::fs::create_dir_all(&acq).map_err(io(&acq))?;
+    let acq = &paths.acquisition;
+    let staging = paths.folder.join("instrument-buffer");
+    std::fs::create_dir_all(acq).map_err(io(acq))?;
     std::fs::create_dir_all(&staging).map_err(io(&staging))?;
-    let db = workdir.join("framewarden.db");
-    // Twelve time points per well: the first four make each well's baseline, so
-    // the late-run dimming and gradient are charted (and alerted) against them.
-    // The cells divide through the run, which raises counts and image detail on
-    // purpose: like a user of a growing culture, the demo leaves object_count and
-    // focus out of the alerting charts.
-    let config = demo_config(&acq, &db, &workdir.join("alerts.jsonl"));
-    let settings: Settings = crate::settings::from_text(&config, &workdir.join("demo.toml"))
+    // The first four time points make each well's baseline. Two metrics are
+    // charted, each the sign of one trouble of the night: the background level
+    // (the lamp) and the illumination change (the lid). The counts change on
+    // purpose (that is the experiment) and a blurred frame is judged against its
+    // well's baseline focus by the out_of_focus flag, so counts, focus, threshold
+    // and separability (which blur and dimming move too) stay off the charts.
+    let config = demo_config(acq, &paths.database, &paths.alerts);
+    let settings: Settings = crate::settings::from_text(&config, &paths.folder.join("demo.toml"))
         .map_err(|e| DemoError::Scenario(format!("demo settings: {e}")))?;
     let service = Service::start(&settings, &WatchOptions { new_run: true })?;
+    let wells = scenario.wells();
     let _ = writeln!(
         out,
-        "demo: replaying {} wells x {} time points into {}",
-        scenario.wells.len(),
+        "framewarden demo: an invented night, {} wells x {} time points, {} in a dose series\n  \
+         (compound invented, frames drawn from fixed seeds) written into {}",
+        wells.len(),
         scenario.time_points,
+        scenario.compound,
         acq.display()
     );
     let started = Instant::now();
     let mut written = 0usize;
     for t in 0..scenario.time_points {
         let step_start = Instant::now();
-        for (w, well) in scenario.wells.iter().enumerate() {
+        for (w, (well, _)) in wells.iter().enumerate() {
             let name = scenario.file_name(well, t);
             let scene = synth::generate(&scenario.scene(w, t))
                 .map_err(|e| DemoError::Scenario(e.to_string()))?;
@@ -197,41 +360,274 @@ pub fn run(
             let through_temp =
                 scenario.temp_name_every > 0 && written.is_multiple_of(scenario.temp_name_every);
             write_like_an_instrument(scenario, &acq.join(&name), &bytes, through_temp)
-                .map_err(io(&acq))?;
+                .map_err(io(acq))?;
             written += 1;
         }
-        let _ = writeln!(
-            out,
-            "  time point {t:>2}: {} frames written",
-            scenario.wells.len()
-        );
         let interval = Duration::from_millis(scenario.interval_ms);
         std::thread::sleep(interval.saturating_sub(step_start.elapsed()));
     }
+    std::fs::remove_dir(&staging).map_err(io(&staging))?;
     // Wait until every written file has its row (done or failed).
     let deadline = Instant::now() + Duration::from_secs(120);
     loop {
-        let report = status::read(&db, 0, None)?;
+        let report = status::read(&paths.database, 0, None)?;
         if report.frames_seen as usize >= written && report.frames_queued == 0
             || Instant::now() > deadline
         {
             break;
         }
-        std::thread::sleep(Duration::from_millis(200));
+        std::thread::sleep(Duration::from_millis(100));
     }
     let summary = service.stop();
     let _ = writeln!(
         out,
-        "demo: {} frames recorded ({} done, {} failed) in {:.0} s\n",
+        "recorded {} frames ({} done, {} failed) in {:.0} s\n",
         summary.done + summary.failed,
         summary.done,
         summary.failed,
         started.elapsed().as_secs_f64()
     );
-    let report = status::read(&db, 8, None)?;
-    let _ = write!(out, "{}", status::render(&report));
-    let _ = writeln!(out, "\nevery result is in {}", db.display());
-    Ok(report)
+    let night = Night::read(&paths.database, summary.run_id)?;
+    let _ = write!(out, "{}", night.render(scenario));
+    let _ = write!(out, "{}", where_things_are(paths));
+    Ok(())
+}
+
+/// What the demo's folder holds, for the end of the summary.
+fn where_things_are(paths: &DemoPaths) -> String {
+    let db = paths.database.display();
+    format!(
+        "\nkept (delete it when done): {}\n  \
+         frames    {}\n  \
+         database  {db}   (framewarden status --db {db})\n  \
+         log       {}   (one line per frame)\n  \
+         alerts    {}\n",
+        paths.folder.display(),
+        paths.acquisition.display(),
+        paths.log.display(),
+        paths.alerts.display()
+    )
+}
+
+/// One recorded frame of the demo, as the summary needs it.
+struct FrameRow {
+    file: String,
+    well: String,
+    time_point: usize,
+    /// The first segmentation's count; `None` for a failed file.
+    raw: Option<i64>,
+    /// The count used (the recount where it ran).
+    used: Option<i64>,
+    /// The recount's count, where the remedy ran.
+    recount: Option<i64>,
+    flags: Vec<String>,
+    error: Option<String>,
+}
+
+/// The recorded night: every frame and alert episode of the run.
+struct Night {
+    frames: Vec<FrameRow>,
+    alerts: Vec<AlertRow>,
+}
+
+impl Night {
+    fn read(db: &Path, run_id: i64) -> Result<Night, StoreError> {
+        let conn = store::open_read_only(db)?;
+        let sqlite = |source| StoreError::Sqlite {
+            path: db.to_path_buf(),
+            source,
+        };
+        let mut stmt = conn
+            .prepare(&format!(
+                "SELECT file, well, CAST(time_point AS INTEGER), object_count, {COUNT_USED_SQL},
+                        recount_object_count,
+                        (SELECT group_concat(flag, ' ') FROM flags WHERE frame_id = frames.id),
+                        error
+                 FROM frames WHERE run_id = ?1 AND well IS NOT NULL AND time_point IS NOT NULL
+                 ORDER BY well, CAST(time_point AS INTEGER)"
+            ))
+            .map_err(sqlite)?;
+        let frames = stmt
+            .query_map([run_id], |r| {
+                let flags: Option<String> = r.get(6)?;
+                Ok(FrameRow {
+                    file: r.get(0)?,
+                    well: r.get(1)?,
+                    time_point: r.get::<_, i64>(2)?.max(0) as usize,
+                    raw: r.get(3)?,
+                    used: r.get(4)?,
+                    recount: r.get(5)?,
+                    flags: flags
+                        .map(|f| f.split(' ').map(str::to_string).collect())
+                        .unwrap_or_default(),
+                    error: r.get(7)?,
+                })
+            })
+            .and_then(|rows| rows.collect::<Result<Vec<_>, _>>())
+            .map_err(sqlite)?;
+        let alerts = crate::qc::report::alerts(&conn, run_id).map_err(sqlite)?;
+        Ok(Night { frames, alerts })
+    }
+
+    /// The summary: counts per dose, then each flag, the recounts, the
+    /// failures and the alerts with the wells and time points they concern.
+    fn render(&self, s: &Scenario) -> String {
+        let mut out = String::from("count used per well, first -> last time point:\n");
+        for t in &s.treatments {
+            let mut line = format!("  {:<10}", t.dose);
+            for well in &t.wells {
+                let counts: Vec<i64> = self
+                    .frames
+                    .iter()
+                    .filter(|f| f.well == *well)
+                    .filter_map(|f| f.used)
+                    .collect();
+                if let (Some(first), Some(last)) = (counts.first(), counts.last()) {
+                    line.push_str(&format!("  {well} {first:>3} -> {last:<3}"));
+                }
+            }
+            out.push_str(line.trim_end());
+            out.push('\n');
+        }
+        let all_wells: Vec<&str> = s.wells().iter().map(|w| w.0).collect();
+        let mut by_flag: BTreeMap<&str, Vec<&FrameRow>> = BTreeMap::new();
+        for f in &self.frames {
+            for flag in &f.flags {
+                by_flag.entry(flag).or_default().push(f);
+            }
+        }
+        out.push_str("\nflagged frames:\n");
+        if by_flag.is_empty() {
+            out.push_str("  none\n");
+        }
+        for (flag, frames) in &by_flag {
+            out.push_str(&format!(
+                "  {flag:<20} {:>3}  {}\n",
+                frames.len(),
+                places(frames, &all_wells)
+            ));
+        }
+        let recounted: Vec<&FrameRow> =
+            self.frames.iter().filter(|f| f.recount.is_some()).collect();
+        let changed: Vec<&FrameRow> = recounted
+            .iter()
+            .copied()
+            .filter(|f| f.recount != f.raw)
+            .collect();
+        if !recounted.is_empty() {
+            let examples: Vec<String> = changed
+                .iter()
+                .take(3)
+                .map(|f| {
+                    format!(
+                        "{} t{}: {} -> {} ({} drawn)",
+                        f.well,
+                        f.time_point,
+                        f.raw.unwrap_or(0),
+                        f.used.unwrap_or(0),
+                        s.wells()
+                            .iter()
+                            .position(|w| w.0 == f.well)
+                            .map_or(0, |w| s.scene(w, f.time_point).object_count)
+                    )
+                })
+                .collect();
+            out.push_str(&format!(
+                "  recounted after flattening: {} frames, {} with another count{}{}\n",
+                recounted.len(),
+                changed.len(),
+                if examples.is_empty() { "" } else { ", e.g. " },
+                examples.join(", ")
+            ));
+        }
+        for f in self.frames.iter().filter(|f| f.error.is_some()) {
+            out.push_str(&format!(
+                "  failed               {} t{}: {}\n",
+                f.well,
+                f.time_point,
+                f.error.as_deref().unwrap_or_default()
+            ));
+        }
+        out.push_str("\nalerts:\n");
+        if self.alerts.is_empty() {
+            out.push_str("  none\n");
+        }
+        for a in self.alerts.iter().take(MAX_ALERTS_SHOWN) {
+            let at = a
+                .frame
+                .as_deref()
+                .and_then(|file| self.frames.iter().find(|f| f.file == file))
+                .map_or(String::new(), |f| {
+                    format!(" at {} t{}", f.well, f.time_point)
+                });
+            let state = if a.closed_at.is_some() {
+                "closed"
+            } else {
+                "OPEN"
+            };
+            out.push_str(&format!("  [{state}] {}{at}: {}\n", a.condition, a.message));
+        }
+        if self.alerts.len() > MAX_ALERTS_SHOWN {
+            out.push_str(&format!(
+                "  … and {} more (framewarden status)\n",
+                self.alerts.len() - MAX_ALERTS_SHOWN
+            ));
+        }
+        out
+    }
+}
+
+/// Alert episodes listed in the summary; `status` shows them all.
+const MAX_ALERTS_SHOWN: usize = 6;
+
+/// Where frames lie, compactly: wells sharing the same time points are listed
+/// together (`every well` when all share them), each time point run as a
+/// range: `A02 t6-t8`, `every well t9-t10`.
+fn places(frames: &[&FrameRow], all_wells: &[&str]) -> String {
+    let mut times: BTreeMap<&str, Vec<usize>> = BTreeMap::new();
+    for f in frames {
+        times.entry(&f.well).or_default().push(f.time_point);
+    }
+    let mut groups: Vec<(Vec<&str>, Vec<usize>)> = Vec::new();
+    for (well, tps) in times {
+        match groups.iter_mut().find(|g| g.1 == tps) {
+            Some(g) => g.0.push(well),
+            None => groups.push((vec![well], tps)),
+        }
+    }
+    groups
+        .iter()
+        .map(|(wells, tps)| {
+            let who = if wells.len() == all_wells.len() && all_wells.len() > 1 {
+                "every well".to_string()
+            } else {
+                wells.join(" ")
+            };
+            format!("{who} {}", ranges(tps))
+        })
+        .collect::<Vec<_>>()
+        .join("; ")
+}
+
+/// Sorted time points as runs: `[6, 7, 8, 11]` -> `t6-t8 t11`.
+fn ranges(tps: &[usize]) -> String {
+    let mut runs: Vec<(usize, usize)> = Vec::new();
+    for &t in tps {
+        match runs.last_mut() {
+            Some(run) if run.1 + 1 == t => run.1 = t,
+            _ => runs.push((t, t)),
+        }
+    }
+    runs.iter()
+        .map(|&(a, b)| {
+            if a == b {
+                format!("t{a}")
+            } else {
+                format!("t{a}-t{b}")
+            }
+        })
+        .collect::<Vec<_>>()
+        .join(" ")
 }
 
 /// Chunks with pauses, optionally under a temporary name renamed at the end.
@@ -298,7 +694,7 @@ fn demo_config(acq: &Path, db: &Path, alerts: &Path) -> String {
          name_pattern = '^(?P<well>[A-P]\\d{{2}})_t(?P<time_point>\\d+)_(?P<channel>[^.]+)\\.tif$'\n\
          [store]\ndatabase = {}\n\
          [quality]\nbaseline_frames = 4\non_uneven_illumination = \"flatten\"\n\
-         charted_metrics = [\"background_level\", \"illumination_change\", \"threshold\", \"separability\"]\n\
+         charted_metrics = [\"background_level\", \"illumination_change\"]\n\
          [alerts]\nfile = {}\n",
         quoted(acq),
         quoted(db),
@@ -335,15 +731,75 @@ mod tests {
     }
 
     #[test]
-    fn the_built_in_scenario_parses_and_declines_late() {
+    fn the_built_in_scenario_tells_its_story_frame_by_frame() {
         let s = Scenario::parse(DEFAULT_SCENARIO).unwrap();
-        let early = s.scene(0, 0);
-        let last = s.scene(0, s.time_points - 1);
-        assert_eq!((early.lamp, early.gradient), (1.0, 0.0));
-        assert!(
-            (last.lamp - s.lamp_end).abs() < 1e-9 && (last.gradient - s.gradient_end).abs() < 1e-9
-        );
-        assert!(last.object_count > early.object_count, "cells multiply");
+        let wells = s.wells();
+        let index = |name: &str| wells.iter().position(|w| w.0 == name).unwrap();
+        let last = s.time_points - 1;
+        // The vehicle grows, the highest dose dies back.
+        let (vehicle, high) = (index("A01"), index("A04"));
+        assert!(s.scene(vehicle, last).object_count > s.scene(vehicle, 0).object_count);
+        assert!(s.scene(high, last).object_count < s.scene(high, 0).object_count);
+        // Blur only in the defocused well's stretch.
+        let d = s.defocus.clone().unwrap();
+        for (w, (name, _)) in wells.iter().enumerate() {
+            for t in 0..s.time_points {
+                let blurred = *name == d.well && (d.from..=d.to).contains(&t);
+                assert_eq!(s.scene(w, t).blur_sigma_px > 0.0, blurred, "{name} t{t}");
+            }
+        }
+        // Uneven light only in its stretch; the lamp dims from its first time
+        // point on, to its end value at the last one.
+        let (u, l) = (s.uneven.clone().unwrap(), s.lamp.clone().unwrap());
+        assert_eq!(s.scene(0, u.from).gradient, u.gradient);
+        assert_eq!(s.scene(0, u.to + 1).gradient, 0.0);
+        assert_eq!(s.scene(0, l.from - 1).lamp, 1.0);
+        assert!(s.scene(0, l.from).lamp < 1.0);
+        assert!((s.scene(0, last).lamp - l.end).abs() < 1e-12);
         assert_eq!(s.file_name("B03", 6), "B03_t0006_nuclei.tif");
+    }
+
+    #[test]
+    fn scenarios_that_do_not_fit_together_are_refused() {
+        let refused = |from: &str, to: &str| {
+            assert!(DEFAULT_SCENARIO.contains(from), "{from}");
+            match Scenario::parse(&DEFAULT_SCENARIO.replace(from, to)) {
+                Err(DemoError::Scenario(m)) => m,
+                other => panic!("{to}: {other:?}"),
+            }
+        };
+        assert!(refused("well = \"A02\"", "well = \"H12\"").starts_with("defocus: well H12"));
+        assert!(refused("to = 10", "to = 99").starts_with("defocus:"));
+        assert!(refused("to = 6", "to = 4").starts_with("uneven: 5..=4"));
+        assert!(refused("[\"A02\", \"B02\"]", "[\"A01\"]").contains("more than one treatment"));
+        assert!(refused("end = 0.5", "end = 0.0").starts_with("lamp:"));
+        assert!(refused("time_point = 7", "time_point = 16").starts_with("corrupt: B03 t16"));
+    }
+
+    #[test]
+    fn flagged_frames_are_told_by_well_and_time_point_runs() {
+        let row = |well: &str, time_point: usize| FrameRow {
+            file: String::new(),
+            well: well.into(),
+            time_point,
+            raw: None,
+            used: None,
+            recount: None,
+            flags: Vec::new(),
+            error: None,
+        };
+        let rows = [row("A02", 6), row("A02", 7), row("A02", 8), row("A02", 11)];
+        let refs: Vec<&FrameRow> = rows.iter().collect();
+        assert_eq!(places(&refs, &["A01", "A02"]), "A02 t6-t8 t11");
+        let rows = [
+            row("A01", 9),
+            row("A02", 9),
+            row("A01", 10),
+            row("A02", 10),
+            row("B01", 3),
+        ];
+        let refs: Vec<&FrameRow> = rows.iter().collect();
+        assert_eq!(places(&refs, &["A01", "A02"]), "every well t9-t10; B01 t3");
+        assert_eq!(places(&refs[..4], &["A01", "A02", "B01"]), "A01 A02 t9-t10");
     }
 }

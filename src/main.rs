@@ -74,15 +74,13 @@ enum Command {
         #[arg(long)]
         run: Option<i64>,
     },
-    /// Replay an invented overnight plate time-lapse into a temporary folder while
-    /// the watch service records it, then print the status (about a minute).
+    /// Replay an invented overnight plate time-lapse into a new folder while the
+    /// watch service records it, then tell what happened (a few seconds). The
+    /// folder (frames, database, log) is kept; the summary names it.
     Demo {
         /// Scenario file (default: the built-in demo-data/plate-timelapse.toml).
         #[arg(long)]
         scenario: Option<PathBuf>,
-        /// Keep the temporary folder (acquisition and database) afterwards.
-        #[arg(long)]
-        keep: bool,
     },
 }
 
@@ -93,13 +91,10 @@ const FAILURE: u8 = 1;
 
 fn main() -> ExitCode {
     let cli = Cli::parse();
-    tracing_subscriber::fmt()
-        .with_env_filter(
-            tracing_subscriber::EnvFilter::try_from_default_env().unwrap_or_else(|_| "info".into()),
-        )
-        .with_writer(std::io::stderr)
-        .with_ansi(std::io::stderr().is_terminal())
-        .init();
+    if !matches!(cli.command, Command::Demo { .. }) {
+        // The demo logs into the folder it creates first.
+        init_logging(std::io::stderr, std::io::stderr().is_terminal());
+    }
     match cli.command {
         Command::Watch {
             config,
@@ -126,39 +121,7 @@ fn main() -> ExitCode {
                 }
             }
         }
-        Command::Demo { scenario, keep } => {
-            let text = match scenario {
-                None => framewarden::demo::DEFAULT_SCENARIO.to_string(),
-                Some(p) => match std::fs::read_to_string(&p) {
-                    Ok(t) => t,
-                    Err(e) => {
-                        eprintln!("framewarden demo: cannot read {}: {e}", p.display());
-                        return ExitCode::from(USAGE);
-                    }
-                },
-            };
-            let workdir = match framewarden::demo::fresh_folder(&std::env::temp_dir()) {
-                Ok(dir) => dir,
-                Err(e) => {
-                    eprintln!("framewarden demo: {e}");
-                    return ExitCode::from(FAILURE);
-                }
-            };
-            let result = framewarden::demo::Scenario::parse(&text)
-                .and_then(|s| framewarden::demo::run(&s, &workdir, &mut std::io::stdout().lock()));
-            if keep {
-                println!("\nkept {}", workdir.display());
-            } else {
-                let _ = std::fs::remove_dir_all(&workdir);
-            }
-            match result {
-                Ok(_) => ExitCode::SUCCESS,
-                Err(e) => {
-                    eprintln!("framewarden demo: {e}");
-                    ExitCode::from(FAILURE)
-                }
-            }
-        }
+        Command::Demo { scenario } => demo(scenario.as_deref()),
         Command::Status {
             config,
             db,
@@ -246,5 +209,65 @@ fn load_settings(path: Option<&std::path::Path>) -> Result<Settings, ExitCode> {
             eprintln!("framewarden: {e}");
             ExitCode::from(USAGE)
         }),
+    }
+}
+
+/// Log lines (level from `RUST_LOG`, default `info`) to `writer`.
+fn init_logging<W>(writer: W, ansi: bool)
+where
+    W: for<'w> tracing_subscriber::fmt::MakeWriter<'w> + Send + Sync + 'static,
+{
+    tracing_subscriber::fmt()
+        .with_env_filter(
+            tracing_subscriber::EnvFilter::try_from_default_env().unwrap_or_else(|_| "info".into()),
+        )
+        .with_writer(writer)
+        .with_ansi(ansi)
+        .init();
+}
+
+/// `demo`: a new folder, the service's log in it, the replay, the summary.
+fn demo(scenario: Option<&std::path::Path>) -> ExitCode {
+    use framewarden::demo::{self, DemoPaths, Scenario};
+    let text = match scenario {
+        None => demo::DEFAULT_SCENARIO.to_string(),
+        Some(p) => match std::fs::read_to_string(p) {
+            Ok(t) => t,
+            Err(e) => {
+                eprintln!("framewarden demo: cannot read {}: {e}", p.display());
+                return ExitCode::from(USAGE);
+            }
+        },
+    };
+    let scenario = match Scenario::parse(&text) {
+        Ok(s) => s,
+        Err(e) => {
+            eprintln!("framewarden demo: {e}");
+            return ExitCode::from(USAGE);
+        }
+    };
+    let paths = match demo::fresh_folder(&std::env::temp_dir()) {
+        Ok(dir) => DemoPaths::new(&dir),
+        Err(e) => {
+            eprintln!("framewarden demo: {e}");
+            return ExitCode::from(FAILURE);
+        }
+    };
+    match std::fs::File::create(&paths.log) {
+        Ok(file) => init_logging(std::sync::Mutex::new(file), false),
+        Err(e) => {
+            eprintln!("framewarden demo: {}: {e}", paths.log.display());
+            return ExitCode::from(FAILURE);
+        }
+    }
+    match demo::run(&scenario, &paths, &mut std::io::stdout().lock()) {
+        Ok(()) => ExitCode::SUCCESS,
+        Err(e) => {
+            eprintln!(
+                "framewarden demo: {e} (the folder is kept: {})",
+                paths.folder.display()
+            );
+            ExitCode::from(FAILURE)
+        }
     }
 }
