@@ -5,10 +5,8 @@
 //! targets and a per-stage breakdown of ours. Timings are reported, never
 //! asserted; see `benches/README.md`.
 
-use std::alloc::{GlobalAlloc, Layout, System};
 use std::path::{Path, PathBuf};
 use std::process::Command;
-use std::sync::atomic::{AtomicUsize, Ordering};
 use std::time::Instant;
 
 use framewarden::analysis::{
@@ -30,56 +28,14 @@ const TARGET_VS_SKIMAGE: f64 = 25.0;
 /// Target: splitting touching objects at most doubles our pipeline's time.
 const TARGET_SPLIT_COST: f64 = 2.0;
 
-/// The system allocator, counting live and peak heap bytes so the bench can
+/// The system allocator counting live and peak heap bytes, so the bench can
 /// report how many frame-sized buffers one analysis holds at once.
-struct CountingAlloc;
-
-static LIVE: AtomicUsize = AtomicUsize::new(0);
-static PEAK: AtomicUsize = AtomicUsize::new(0);
-
-// SAFETY: every call is forwarded unchanged to `System`; only counters are added.
-// A global allocator cannot be written without `unsafe`: allowed for this bench only.
-#[allow(unsafe_code)]
-unsafe impl GlobalAlloc for CountingAlloc {
-    unsafe fn alloc(&self, layout: Layout) -> *mut u8 {
-        let p = System.alloc(layout);
-        if !p.is_null() {
-            let live = LIVE.fetch_add(layout.size(), Ordering::Relaxed) + layout.size();
-            PEAK.fetch_max(live, Ordering::Relaxed);
-        }
-        p
-    }
-
-    unsafe fn dealloc(&self, ptr: *mut u8, layout: Layout) {
-        System.dealloc(ptr, layout);
-        LIVE.fetch_sub(layout.size(), Ordering::Relaxed);
-    }
-
-    unsafe fn realloc(&self, ptr: *mut u8, layout: Layout, new_size: usize) -> *mut u8 {
-        let p = System.realloc(ptr, layout, new_size);
-        if !p.is_null() {
-            if new_size >= layout.size() {
-                let live = LIVE.fetch_add(new_size - layout.size(), Ordering::Relaxed) + new_size
-                    - layout.size();
-                PEAK.fetch_max(live, Ordering::Relaxed);
-            } else {
-                LIVE.fetch_sub(layout.size() - new_size, Ordering::Relaxed);
-            }
-        }
-        p
-    }
-}
+#[path = "../tests/common/counting_alloc.rs"]
+mod counting_alloc;
+use counting_alloc::{peak_heap_during, CountingAlloc};
 
 #[global_allocator]
 static ALLOC: CountingAlloc = CountingAlloc;
-
-/// Peak heap bytes allocated beyond what was live before, during `f`.
-fn peak_heap_during<T>(f: impl FnOnce() -> T) -> (T, usize) {
-    let before = LIVE.load(Ordering::Relaxed);
-    PEAK.store(before, Ordering::Relaxed);
-    let out = f();
-    (out, PEAK.load(Ordering::Relaxed) - before)
-}
 
 const USAGE: &str = "cargo bench --bench pipeline -- [--frames N] [--reps N] [--size PX] [--no-reference] [--keep DIR]";
 

@@ -6,6 +6,7 @@
 //! What this file leaves to others: opening and reading files, and deciding
 //! when each check applies (the readers above it).
 
+use std::io::Read;
 use std::path::{Path, PathBuf};
 
 /// Caps applied before any pixel buffer is allocated.
@@ -266,6 +267,18 @@ pub(super) fn check_streams_inside(
         }
     }
     Ok(())
+}
+
+/// Reads until `buf` is full or the input ends; returns the bytes read.
+pub(super) fn read_up_to(r: &mut impl Read, buf: &mut [u8]) -> std::io::Result<usize> {
+    let mut filled = 0;
+    while filled < buf.len() {
+        match r.read(&mut buf[filled..])? {
+            0 => break,
+            k => filled += k,
+        }
+    }
+    Ok(filled)
 }
 
 #[cfg(test)]

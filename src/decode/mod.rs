@@ -29,9 +29,10 @@ mod tiff;
 mod tiled_lzw;
 
 use std::fs::File;
-use std::io::{BufReader, Read, Seek};
+use std::io::{BufReader, Seek};
 use std::path::Path;
 
+use self::limits::read_up_to;
 pub use self::limits::{DecodeError, DecodeLimits};
 pub use self::metadata::PixelSizeSource;
 use self::png::read_png;
@@ -127,16 +128,4 @@ pub fn read_pages(
 enum Kind {
     Tiff,
     Png,
-}
-
-/// Reads until `buf` is full or the input ends; returns the bytes read.
-fn read_up_to(r: &mut impl Read, buf: &mut [u8]) -> std::io::Result<usize> {
-    let mut filled = 0;
-    while filled < buf.len() {
-        match r.read(&mut buf[filled..])? {
-            0 => break,
-            k => filled += k,
-        }
-    }
-    Ok(filled)
 }

@@ -17,7 +17,7 @@ use tiff::tags::Tag;
 use tiff::ColorType;
 
 use super::limits::{
-    check_page, check_size, check_streams_inside, tiff_error, DecodeError, DecodeLimits,
+    check_page, check_size, check_streams_inside, read_up_to, tiff_error, DecodeError, DecodeLimits,
 };
 use super::metadata::{tiff_pixel_size, PixelSizeSource};
 use super::tiled_lzw::read_tiled_lzw;
@@ -27,21 +27,44 @@ use crate::frame::Frame;
 /// the file's first page states.
 pub(super) type TiffPages = (Vec<Frame>, Option<(f64, PixelSizeSource)>);
 
+/// Most bytes a metadata value (the OME-XML description) may take: real
+/// descriptions of large plates are a few megabytes.
+const METADATA_BUDGET: u64 = 16 << 20;
+
 /// Reads the listed pages of a TIFF or BigTIFF file of `len` bytes, each
 /// within `limits`.
 pub(super) fn read_tiff<R: Read + Seek>(
-    reader: R,
+    mut reader: R,
     len: u64,
     path: &Path,
     pages: &[usize],
     limits: &DecodeLimits,
 ) -> Result<TiffPages, DecodeError> {
     let err = |e| tiff_error(path, e);
+    let io = |source| DecodeError::Open {
+        path: path.into(),
+        source,
+    };
+    check_first_directory(&mut reader, len, path)?;
+    reader.rewind().map_err(io)?;
+    // The `tiff` crate allocates a text value (the OME-XML description) at its
+    // declared length, bounded only by its decoding-buffer limit: a damaged
+    // count in a small file would take up to `max_decoded_bytes`. Metadata is
+    // therefore read by a decoder whose buffers are capped by the file's size
+    // (a value cannot be longer than the file) and `METADATA_BUDGET`.
+    let pixel_size = {
+        let mut meta_limits = tiff::decoder::Limits::default();
+        meta_limits.decoding_buffer_size = usize::try_from(len.min(METADATA_BUDGET)).unwrap_or(0);
+        let mut meta = Decoder::new(&mut reader)
+            .map_err(err)?
+            .with_limits(meta_limits);
+        tiff_pixel_size(&mut meta)
+    };
+    reader.rewind().map_err(io)?;
     let mut tiff_limits = tiff::decoder::Limits::default();
     tiff_limits.decoding_buffer_size =
         usize::try_from(limits.max_decoded_bytes).unwrap_or(usize::MAX);
     let mut decoder = Decoder::new(reader).map_err(err)?.with_limits(tiff_limits);
-    let pixel_size = tiff_pixel_size(&mut decoder);
     let mut frames = Vec::with_capacity(pages.len());
     for &page in pages {
         check_page(path, page, limits)?;
@@ -60,6 +83,101 @@ pub(super) fn read_tiff<R: Read + Seek>(
         frames.push(read_tiff_page(&mut decoder, len, path, limits)?);
     }
     Ok((frames, pixel_size))
+}
+
+/// Refuses a first directory that declares a value longer than the file.
+///
+/// The `tiff` crate reads the first directory when its decoder is made, before
+/// limits can be given, and reserves room for each value at its declared count
+/// (up to 256 MiB): a damaged count in a small file would take that much. A
+/// value of `count` items of `size` bytes must fit in the file, so this checks
+/// `count × size ≤ len` for every entry first (leaving the reader anywhere) (layout: TIFF 6.0 section 2;
+/// BigTIFF: 8-byte counts and offsets, 20-byte entries).
+fn check_first_directory<R: Read + Seek>(
+    reader: &mut R,
+    len: u64,
+    path: &Path,
+) -> Result<(), DecodeError> {
+    let corrupt = |detail: String| DecodeError::Corrupt {
+        path: path.into(),
+        detail,
+    };
+    let mut head = [0u8; 16];
+    let n = read_up_to(reader, &mut head).map_err(|source| DecodeError::Open {
+        path: path.into(),
+        source,
+    })?;
+    let little = head[0] == b'I';
+    let u16_at = |b: &[u8]| {
+        let a = [b[0], b[1]];
+        u64::from(if little {
+            u16::from_le_bytes(a)
+        } else {
+            u16::from_be_bytes(a)
+        })
+    };
+    let u32_at = |b: &[u8]| {
+        let a = [b[0], b[1], b[2], b[3]];
+        u64::from(if little {
+            u32::from_le_bytes(a)
+        } else {
+            u32::from_be_bytes(a)
+        })
+    };
+    let u64_at = |b: &[u8]| {
+        let a: [u8; 8] = b[..8].try_into().unwrap_or_default();
+        if little {
+            u64::from_le_bytes(a)
+        } else {
+            u64::from_be_bytes(a)
+        }
+    };
+    let big = u16_at(&head[2..4]) == 43;
+    // Too short to hold a header: the crate reports it (truncated).
+    if n < if big { 16 } else { 8 } {
+        return Ok(());
+    }
+    let (offset, count_len, entry_len) = if big {
+        (u64_at(&head[8..16]), 8usize, 20usize)
+    } else {
+        (u32_at(&head[4..8]), 2, 12)
+    };
+    let io = |source| DecodeError::Open {
+        path: path.into(),
+        source,
+    };
+    reader.seek(std::io::SeekFrom::Start(offset)).map_err(io)?;
+    let mut count = [0u8; 8];
+    if read_up_to(reader, &mut count[..count_len]).map_err(io)? < count_len {
+        return Ok(()); // the crate reports the directory as truncated
+    }
+    let entries = if big { u64_at(&count) } else { u16_at(&count) };
+    let mut entry = [0u8; 20];
+    for i in 0..entries.min(len / entry_len as u64) {
+        if read_up_to(reader, &mut entry[..entry_len]).map_err(io)? < entry_len {
+            break;
+        }
+        let kind = u16_at(&entry[2..4]);
+        let values = if big {
+            u64_at(&entry[4..12])
+        } else {
+            u32_at(&entry[4..8])
+        };
+        let size: u64 = match kind {
+            1 | 2 | 6 | 7 => 1,
+            3 | 8 => 2,
+            4 | 9 | 11 | 13 => 4,
+            5 | 10 | 12 | 16..=18 => 8,
+            _ => continue, // unknown types are skipped by the crate
+        };
+        if values.saturating_mul(size) > len {
+            return Err(corrupt(format!(
+                "directory entry {i} (tag {}) declares {values} values, more than the file's {len} bytes hold",
+                u16_at(&entry[0..2])
+            )));
+        }
+    }
+    Ok(())
 }
 
 /// How many pages the file has, counted up to `limits.max_pages`.
