@@ -7,12 +7,16 @@
 //! in-process in milliseconds. Storing and delivering are the caller's.
 
 use std::collections::{BTreeMap, VecDeque};
+use std::time::Duration;
 
-use crate::qc::alerts::{AlertBook, AlertEvent, AlertState};
+use crate::qc::alerts::{
+    list_positions, AlertBook, AlertEvent, AlertState, Entry, Exit, Group, GroupBook,
+    PositionEvidence,
+};
 use crate::qc::drift::{median, Chart, Signal, Step};
 use crate::qc::flags::{frame_flags, num, FrameFlag, PositionContext};
 use crate::qc::metrics::{Direction, FrameMetrics, Metric};
-use crate::qc::params::QualitySettings;
+use crate::qc::params::{AlertSettings, QualitySettings};
 
 /// Condition of a stalled acquisition.
 pub const STALLED: &str = "stalled";
@@ -51,7 +55,10 @@ struct PositionState {
 pub struct RunMonitor {
     settings: QualitySettings,
     positions: BTreeMap<String, PositionState>,
+    /// Episodes of the whole run (stall, failure rate, free space).
     book: AlertBook,
+    /// Drift episodes, each naming the positions that share it.
+    groups: GroupBook,
     last_frame_at_ms: Option<i64>,
     /// Recent outcomes, `true` for a failure.
     outcomes: VecDeque<bool>,
@@ -62,18 +69,27 @@ pub struct RunMonitor {
 }
 
 impl RunMonitor {
-    /// A monitor for a new run: no positions, no open episodes, nothing recorded.
+    /// A monitor for a new run: no positions, no open episodes, nothing recorded;
+    /// drifts are grouped over [`AlertSettings::DEFAULT_GROUP_WINDOW`].
     pub fn new(settings: QualitySettings) -> RunMonitor {
         RunMonitor {
             settings,
             positions: BTreeMap::new(),
             book: AlertBook::default(),
+            groups: GroupBook::new(millis(AlertSettings::DEFAULT_GROUP_WINDOW)),
             last_frame_at_ms: None,
             outcomes: VecDeque::new(),
             recorded: 0,
             flagged: 0,
             failed: 0,
         }
+    }
+
+    /// The same monitor with drifts that open within `window` of an episode's
+    /// opening grouped into it (`[alerts] group_window_min`).
+    pub fn with_group_window(mut self, window: Duration) -> RunMonitor {
+        self.groups = GroupBook::new(millis(window));
+        self
     }
 
     /// Judges one analyzed frame at `position` (empty when the run has no
@@ -119,15 +135,7 @@ impl RunMonitor {
         }
         let mut events = Vec::new();
         for (metric, step) in changed {
-            let holds = self.in_drift(metric);
-            let chart = &self.positions[position].charts[metric_index(metric)];
-            let value = metric.value(m);
-            let event = self
-                .book
-                .set(&drift_condition(metric), holds, at_ms, Some(file), || {
-                    drift_message(metric, position, value, chart, &step)
-                });
-            events.extend(event);
+            events.extend(self.drift_step(position, file, at_ms, metric, metric.value(m), &step));
         }
         self.last_frame_at_ms = Some(at_ms);
         events.extend(self.book.set(STALLED, false, at_ms, Some(file), || {
@@ -146,19 +154,149 @@ impl RunMonitor {
             .is_some_and(|n| self.recorded >= n)
     }
 
-    /// Counts a recorded frame; the notice when it is the last one expected.
-    fn count_recorded(&mut self, at_ms: i64, file: &str) -> Option<AlertEvent> {
+    /// Counts a recorded frame. When it is the last one expected, the run is
+    /// complete: every open episode closes with a final message, then the
+    /// notice says so.
+    fn count_recorded(&mut self, at_ms: i64, file: &str) -> Vec<AlertEvent> {
         self.recorded += 1;
-        (self.settings.expected_frames == Some(self.recorded)).then(|| AlertEvent {
-            condition: RUN_COMPLETE.into(),
-            state: AlertState::Notice,
+        if self.settings.expected_frames != Some(self.recorded) {
+            return Vec::new();
+        }
+        let mut events = self.close_open_episodes(at_ms, file);
+        events.push(AlertEvent::notice(
+            RUN_COMPLETE,
             at_ms,
-            file: Some(file.into()),
-            message: format!(
+            Some(file),
+            format!(
                 "the acquisition is complete: all {} expected frames recorded ({} flagged, {} failed); no stall alert from now on",
                 self.recorded, self.flagged, self.failed
             ),
-        })
+        ));
+        events
+    }
+
+    /// The run is over: every open episode closes, not recovered, each with a
+    /// sentence saying what still held.
+    fn close_open_episodes(&mut self, at_ms: i64, file: &str) -> Vec<AlertEvent> {
+        let total = self.named_positions();
+        let mut events: Vec<AlertEvent> = self
+            .groups
+            .close_all()
+            .into_iter()
+            .map(|group| {
+                let holding = named(group.holding());
+                let what = metric_of(&group.condition)
+                    .map_or_else(|| group.condition.clone(), |m| m.describe().to_string());
+                let message = format!(
+                    "the run is complete with {what} still drifting{}; the alert closes with the run, not recovered",
+                    at_positions(&holding, total)
+                );
+                group_event(&group, AlertState::Closed, at_ms, Some(file), message, None)
+            })
+            .collect();
+        for (condition, opened_at_ms) in self.book.close_all() {
+            let message = format!(
+                "the run is complete with {condition} still open; the alert closes with the run, not recovered"
+            );
+            events.push(AlertEvent {
+                condition,
+                state: AlertState::Closed,
+                at_ms,
+                opened_at_ms,
+                file: Some(file.to_string()),
+                positions: Vec::new(),
+                evidence: None,
+                message,
+            });
+        }
+        events
+    }
+
+    /// Turns one chart step of `metric` at `position` into the drift
+    /// episodes' events: a position whose chart declares a harmful drift opens
+    /// an episode or joins one (an update); one whose chart recovers leaves it,
+    /// and the last to leave closes it.
+    fn drift_step(
+        &mut self,
+        position: &str,
+        file: &str,
+        at_ms: i64,
+        metric: Metric,
+        value: f64,
+        step: &Step,
+    ) -> Option<AlertEvent> {
+        let condition = drift_condition(metric);
+        let total = self.named_positions();
+        let chart = &self.positions[position].charts[metric_index(metric)];
+        let evidence = PositionEvidence {
+            position: position.to_string(),
+            message: chart_evidence(value, chart, step),
+        };
+        match step.signal {
+            Signal::Declared(direction) if metric.harms(direction) => {
+                let (entry, group) = self.groups.enter(&condition, position, at_ms);
+                let state = match entry {
+                    Entry::Opened => AlertState::Opened,
+                    Entry::Joined => AlertState::Updated,
+                    Entry::Returned | Entry::Unchanged => return None,
+                };
+                let word = if direction == Direction::Up {
+                    "up"
+                } else {
+                    "down"
+                };
+                let names = named(group.positions());
+                let message = format!(
+                    "{} drifting {word}{}{}",
+                    metric.describe(),
+                    at_positions(&names, total),
+                    newest(&names, &evidence)
+                );
+                Some(group_event(
+                    group,
+                    state,
+                    at_ms,
+                    Some(file),
+                    message,
+                    Some(evidence),
+                ))
+            }
+            Signal::Recovered => match self.groups.leave(&condition, position) {
+                Exit::AllRecovered(group) => {
+                    let names = named(group.positions());
+                    let message = if names.is_empty() {
+                        format!(
+                            "{} back in control: {}",
+                            metric.describe(),
+                            evidence.message
+                        )
+                    } else {
+                        format!(
+                            "{} back in control at every position this alert named ({}); the last, {}",
+                            metric.describe(),
+                            list_positions(&names),
+                            evidence.sentence()
+                        )
+                    };
+                    Some(group_event(
+                        &group,
+                        AlertState::Recovered,
+                        at_ms,
+                        Some(file),
+                        message,
+                        Some(evidence),
+                    ))
+                }
+                Exit::Recovered | Exit::Unchanged => None,
+            },
+            Signal::Declared(_) | Signal::Quiet => None,
+        }
+    }
+
+    /// Positions with a name seen so far (a run whose files name no position
+    /// has one, unnamed).
+    fn named_positions(&self) -> usize {
+        self.positions.keys().filter(|p| !p.is_empty()).count()
     }
 
     /// Records a frame that produced no result (its flag is the error row's
@@ -186,7 +324,7 @@ impl RunMonitor {
             return None;
         }
         let last = self.last_frame_at_ms?;
-        let limit_ms = i64::try_from(self.settings.stall_after.as_millis()).unwrap_or(i64::MAX);
+        let limit_ms = millis(self.settings.stall_after);
         let idle_ms = now_ms - last;
         self.book.set(STALLED, idle_ms > limit_ms, now_ms, None, || {
             format!(
@@ -197,13 +335,17 @@ impl RunMonitor {
         })
     }
 
-    /// Checks the free space of one volume (`name` says which, e.g. its path).
+    /// Checks the free space of one volume (`name` says which, e.g. its path);
+    /// once the run is complete it writes nothing more, and nothing is raised.
     pub fn check_free_space(
         &mut self,
         name: &str,
         free_bytes: u64,
         now_ms: i64,
     ) -> Option<AlertEvent> {
+        if self.is_complete() {
+            return None;
+        }
         let limit = self.settings.min_free_space_bytes;
         let condition = format!("low_disk_space:{name}");
         self.book.set(&condition, free_bytes < limit, now_ms, None, || {
@@ -219,19 +361,46 @@ impl RunMonitor {
         })
     }
 
-    /// Marks a stored, still open alert open again after a restart, so its
-    /// recovery is noticed and it is not raised twice.
-    pub fn restore_open(&mut self, condition: &str, opened_at_ms: i64) {
-        self.book.restore(condition, opened_at_ms);
+    /// Forgets the open episodes (after a replay, whose events are discarded:
+    /// the stored alerts are the truth, put back with [`RunMonitor::restore_open`]).
+    pub fn forget_episodes(&mut self) {
+        self.book.close_all();
+        self.groups.close_all();
     }
 
-    /// True when any position's chart of `metric` is in a declared drift.
-    fn in_drift(&self, metric: Metric) -> bool {
-        self.positions
-            .values()
-            .filter_map(|p| p.charts.get(metric_index(metric)))
-            .filter_map(|c| c.drift())
-            .any(|direction| metric.harms(direction))
+    /// Marks a stored, still open alert open again after a restart, so its
+    /// updates and recovery are noticed and it is not raised twice. A drift
+    /// alert gets back the positions it names; the drift still holds at those
+    /// whose chart is still in a harmful drift.
+    pub fn restore_open(&mut self, condition: &str, opened_at_ms: i64, positions: &[String]) {
+        let Some(metric) = metric_of(condition) else {
+            self.book.restore(condition, opened_at_ms);
+            return;
+        };
+        // A run whose files name no position charts one, unnamed.
+        let unnamed = [String::new()];
+        let positions = if positions.is_empty() {
+            &unnamed[..]
+        } else {
+            positions
+        };
+        let members = positions
+            .iter()
+            .map(|p| {
+                let holds = self
+                    .positions
+                    .get(p)
+                    .and_then(|s| s.charts.get(metric_index(metric)))
+                    .and_then(Chart::drift)
+                    .is_some_and(|direction| metric.harms(direction));
+                (p.clone(), holds)
+            })
+            .collect();
+        self.groups.restore(Group {
+            condition: condition.to_string(),
+            opened_at_ms,
+            members,
+        });
     }
 
     fn record_outcome(&mut self, failed: bool, at_ms: i64, file: &str) -> Option<AlertEvent> {
@@ -264,17 +433,79 @@ fn metric_index(metric: Metric) -> usize {
         .unwrap_or_else(|| unreachable!("every metric is in Metric::ALL"))
 }
 
-fn drift_message(metric: Metric, position: &str, value: f64, chart: &Chart, step: &Step) -> String {
-    let at = if position.is_empty() {
-        String::new()
+/// The metric whose drift is `condition`, if it is a drift.
+fn metric_of(condition: &str) -> Option<Metric> {
+    Metric::ALL
+        .iter()
+        .copied()
+        .find(|&m| drift_condition(m) == condition)
+}
+
+/// The names among `positions` (the unnamed position of a run whose files name
+/// none is left out).
+fn named(positions: Vec<String>) -> Vec<String> {
+    positions.into_iter().filter(|p| !p.is_empty()).collect()
+}
+
+/// Where a drift holds, for a sentence: " at A01" in a run of one position,
+/// " at A01 (1 of 16 positions)", " at 14 of 16 positions: A01, A02, …",
+/// " at all 16 positions: …"; nothing when no position is named.
+fn at_positions(names: &[String], total: usize) -> String {
+    let total = total.max(names.len());
+    match names {
+        [] => String::new(),
+        [one] if total == 1 => format!(" at {one}"),
+        [one] => format!(" at {one} (1 of {total} positions)"),
+        _ if names.len() == total => {
+            format!(" at all {total} positions: {}", list_positions(names))
+        }
+        _ => format!(
+            " at {} of {total} positions: {}",
+            names.len(),
+            list_positions(names)
+        ),
+    }
+}
+
+/// The evidence of the position that opened or joined an episode, after the
+/// list of positions: ": <evidence>" when it is the only one named (or none
+/// is), else "; newest, A03: <evidence>".
+fn newest(names: &[String], evidence: &PositionEvidence) -> String {
+    if names.len() <= 1 {
+        format!(": {}", evidence.message)
     } else {
-        format!(" at {position}")
-    };
+        format!("; newest, {}", evidence.sentence())
+    }
+}
+
+/// One event of a drift episode: its positions, and the evidence of the
+/// position that caused it.
+fn group_event(
+    group: &Group,
+    state: AlertState,
+    at_ms: i64,
+    file: Option<&str>,
+    message: String,
+    evidence: Option<PositionEvidence>,
+) -> AlertEvent {
+    AlertEvent {
+        condition: group.condition.clone(),
+        state,
+        at_ms,
+        opened_at_ms: group.opened_at_ms,
+        file: file.map(str::to_string),
+        positions: named(group.positions()),
+        evidence: evidence.filter(|e| !e.position.is_empty()),
+        message,
+    }
+}
+
+/// A chart's evidence at one frame: the value against the baseline, and the
+/// statistics behind a declared drift.
+fn chart_evidence(value: f64, chart: &Chart, step: &Step) -> String {
     match step.signal {
-        Signal::Declared(dir) => format!(
-            "{} drifting {}{at}: {} against a baseline of {} ± {} (EWMA {:+.2} σ, limit ±{:.2}; CUSUM up {:.1}, down {:.1}, limit {:.1})",
-            metric.describe(),
-            if dir == Direction::Up { "up" } else { "down" },
+        Signal::Declared(_) => format!(
+            "{} against a baseline of {} ± {} (EWMA {:+.2} σ, limit ±{:.2}; CUSUM up {:.1}, down {:.1}, limit {:.1})",
             num(value),
             num(chart.mean),
             num(chart.sigma),
@@ -284,13 +515,12 @@ fn drift_message(metric: Metric, position: &str, value: f64, chart: &Chart, step
             step.cusum_down,
             chart.decision_interval(),
         ),
-        _ => format!(
-            "{} back in control{at} and everywhere else: {} against a baseline of {}",
-            metric.describe(),
-            num(value),
-            num(chart.mean)
-        ),
+        _ => format!("{} against a baseline of {}", num(value), num(chart.mean)),
     }
+}
+
+fn millis(d: Duration) -> i64 {
+    i64::try_from(d.as_millis()).unwrap_or(i64::MAX)
 }
 
 fn minutes(ms: i64) -> String {

@@ -75,14 +75,15 @@ struct FrameLine {
 
 impl QcRecorder {
     /// Starts the sinks and rebuilds the monitor of `run_id` from its rows; a run
-    /// that already has frames was interrupted, which raises a restart notice.
+    /// that already has frames and is not complete was interrupted, which
+    /// raises a restart notice.
     ///
     /// # Errors
     /// [`QcError`]: SQLite errors, or a sink thread that cannot start.
     pub fn start(conn: &Connection, run_id: i64, setup: QcSetup) -> Result<QcRecorder, QcError> {
         let dispatcher = AlertDispatcher::start(&setup.alerts).map_err(QcError::Sinks)?;
         let mut recorder = QcRecorder {
-            monitor: RunMonitor::new(setup.quality.clone()),
+            monitor: new_monitor(&setup),
             setup,
             run_id,
             dispatcher,
@@ -91,17 +92,19 @@ impl QcRecorder {
             checkpoint: None,
         };
         let replayed = recorder.replay(conn)?;
-        if replayed > 0 {
-            let at_ms = now_ms();
-            let event = AlertEvent {
-                condition: SERVICE_RESTARTED.into(),
-                state: AlertState::Notice,
-                at_ms,
-                file: None,
-                message: format!(
+        if replayed > 0 && recorder.monitor.is_complete() {
+            tracing::info!(
+                "run {run_id} is complete ({replayed} frames recorded); frames that still come are added to it"
+            );
+        } else if replayed > 0 {
+            let event = AlertEvent::notice(
+                SERVICE_RESTARTED,
+                now_ms(),
+                None,
+                format!(
                     "framewarden restarted in the middle of run {run_id} ({replayed} frames already recorded); frames in flight are redone"
                 ),
-            };
+            );
             // Outside a transaction: stored at once, so announced at once.
             recorder.store_event(conn, &event, None)?;
             recorder.announce_pending();
@@ -249,23 +252,31 @@ impl QcRecorder {
     fn switch_run(&mut self, run_id: i64) {
         if run_id != self.run_id {
             self.run_id = run_id;
-            self.monitor = RunMonitor::new(self.setup.quality.clone());
+            self.monitor = new_monitor(&self.setup);
         }
     }
 
+    /// Stores one event in `conn` (the writer's transaction, or outside one):
+    /// an opening or a notice is a new row; an update rewrites the open
+    /// alert's sentence; a recovery or a run's end closes it. Each position an
+    /// event brings in is stored with its evidence. The event is announced
+    /// once stored and committed.
     fn store_event(
         &mut self,
         conn: &Connection,
         event: &AlertEvent,
         frame_id: Option<i64>,
     ) -> rusqlite::Result<()> {
-        match event.state {
+        // The open episode the event is about: its condition and opening.
+        const EPISODE: &str =
+            "run_id = ?1 AND condition = ?2 AND opened_at_ms = ?3 AND closed_at_ms IS NULL";
+        let alert_id: Option<i64> = match event.state {
             AlertState::Opened | AlertState::Notice => {
                 // A notice is an episode closed as it opens.
-                let closed_at_ms = (event.state == AlertState::Notice).then_some(event.at_ms);
+                let notice = event.state == AlertState::Notice;
                 conn.prepare_cached(
-                    "INSERT INTO alerts (run_id, opened_at_ms, condition, message, frame_id, file, closed_at_ms)
-                     VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7)",
+                    "INSERT INTO alerts (run_id, opened_at_ms, condition, message, frame_id, file, closed_at_ms, closed_state)
+                     VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8)",
                 )?
                 .execute(params![
                     self.run_id,
@@ -274,21 +285,52 @@ impl QcRecorder {
                     event.message,
                     frame_id,
                     event.file,
-                    closed_at_ms
+                    notice.then_some(event.at_ms),
+                    notice.then_some(AlertState::Notice.as_str())
                 ])?;
+                Some(conn.last_insert_rowid())
             }
-            AlertState::Recovered => {
-                conn.prepare_cached(
-                    "UPDATE alerts SET closed_at_ms = ?1, closed_message = ?2
-                     WHERE run_id = ?3 AND condition = ?4 AND closed_at_ms IS NULL",
-                )?
+            AlertState::Updated => conn
+                .prepare_cached(&format!(
+                    "UPDATE alerts SET message = ?4 WHERE {EPISODE} RETURNING id"
+                ))?
+                .query_row(
+                    params![
+                        self.run_id,
+                        event.condition,
+                        event.opened_at_ms,
+                        event.message
+                    ],
+                    |r| r.get(0),
+                )
+                .optional()?,
+            AlertState::Recovered | AlertState::Closed => {
+                conn.prepare_cached(&format!(
+                    "UPDATE alerts SET closed_at_ms = ?4, closed_message = ?5, closed_state = ?6 WHERE {EPISODE}"
+                ))?
                 .execute(params![
+                    self.run_id,
+                    event.condition,
+                    event.opened_at_ms,
                     event.at_ms,
                     event.message,
-                    self.run_id,
-                    event.condition
+                    event.state.as_str()
                 ])?;
+                None
             }
+        };
+        if let (Some(alert_id), Some(evidence)) = (alert_id, &event.evidence) {
+            conn.prepare_cached(
+                "INSERT OR REPLACE INTO alert_positions (alert_id, position, joined_at_ms, frame_id, message)
+                 VALUES (?1, ?2, ?3, ?4, ?5)",
+            )?
+            .execute(params![
+                alert_id,
+                evidence.position,
+                event.at_ms,
+                frame_id,
+                evidence.message
+            ])?;
         }
         self.pending.push(event.clone());
         Ok(())
@@ -302,9 +344,20 @@ impl QcRecorder {
                 "alert: {}",
                 shown(&event.message)
             ),
+            AlertState::Updated => tracing::warn!(
+                condition = %shown(&event.condition),
+                file = %shown(event.file.as_deref().unwrap_or("")),
+                "alert grows: {}",
+                shown(&event.message)
+            ),
             AlertState::Recovered => tracing::info!(
                 condition = %shown(&event.condition),
                 "recovered: {}",
+                shown(&event.message)
+            ),
+            AlertState::Closed => tracing::info!(
+                condition = %shown(&event.condition),
+                "closed with the run: {}",
                 shown(&event.message)
             ),
             AlertState::Notice => tracing::info!(
@@ -317,8 +370,9 @@ impl QcRecorder {
     }
 
     /// Feeds the run's recorded frames to a fresh monitor, in recording order,
-    /// discarding the events (they are already stored), then marks the stored
-    /// open alerts open. Returns the number of frames replayed.
+    /// discarding the events (they are already stored), then puts back the
+    /// stored open alerts, each drift alert with the positions it names.
+    /// Returns the number of frames replayed.
     fn replay(&mut self, conn: &Connection) -> rusqlite::Result<usize> {
         let mut stmt = conn.prepare(&format!(
             "SELECT file, {POSITION_SQL}, analyzed_at_ms, status,
@@ -359,16 +413,28 @@ impl QcRecorder {
             }
             n += 1;
         }
+        self.monitor.forget_episodes();
         let mut open = conn.prepare(
-            "SELECT condition, opened_at_ms FROM alerts WHERE run_id = ?1 AND closed_at_ms IS NULL",
+            "SELECT condition, opened_at_ms,
+                    (SELECT json_group_array(position) FROM
+                        (SELECT position FROM alert_positions WHERE alert_id = alerts.id ORDER BY position))
+             FROM alerts WHERE run_id = ?1 AND closed_at_ms IS NULL ORDER BY opened_at_ms, id",
         )?;
-        let rows = open.query_map([self.run_id], |r| Ok((r.get::<_, String>(0)?, r.get(1)?)))?;
+        let rows = open.query_map([self.run_id], |r| {
+            Ok((r.get::<_, String>(0)?, r.get(1)?, r.get::<_, String>(2)?))
+        })?;
         for row in rows {
-            let (kind, at): (String, i64) = row?;
-            self.monitor.restore_open(&kind, at);
+            let (condition, at, positions): (String, i64, String) = row?;
+            let positions: Vec<String> = serde_json::from_str(&positions).unwrap_or_default();
+            self.monitor.restore_open(&condition, at, &positions);
         }
         Ok(n)
     }
+}
+
+/// A monitor for a new run with the setup's limits and group window.
+fn new_monitor(setup: &QcSetup) -> RunMonitor {
+    RunMonitor::new(setup.quality.clone()).with_group_window(setup.alerts.group_window)
 }
 
 /// The run, file, position and latency (ready to recorded, ms) of a frame row.
