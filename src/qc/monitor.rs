@@ -567,6 +567,233 @@ mod tests {
         assert!(!some.iter().any(|c| c == "drift:object_count"), "{some:?}");
     }
 
+    /// A run with a 4-frame baseline, grouped over `window_ms`.
+    fn grouping(window_ms: u64, expected_frames: Option<u64>) -> RunMonitor {
+        let mut settings = QualitySettings {
+            expected_frames,
+            ..QualitySettings::default()
+        };
+        settings.charts.baseline_frames = 4;
+        RunMonitor::new(settings).with_group_window(Duration::from_millis(window_ms))
+    }
+
+    /// The lamp at half power: background 3250 against a baseline of 6500 with
+    /// its 2% floor (σ 130) is −25 σ, clipped to −4: the EWMA moves to −0.8 on
+    /// the first such frame, beyond its first limit of 3·√(0.2/1.8·(1 − 0.8²))
+    /// = 0.6, so the drift is declared at once.
+    fn dim() -> FrameMetrics {
+        FrameMetrics {
+            background_level: 3250.0,
+            ..frame()
+        }
+    }
+
+    /// (state, positions) of each drift event.
+    fn drift_events(events: &[AlertEvent]) -> Vec<(AlertState, Vec<String>)> {
+        events
+            .iter()
+            .filter(|e| e.condition == "drift:background_level")
+            .map(|e| (e.state, e.positions.clone()))
+            .collect()
+    }
+
+    fn names(v: &[&str]) -> Vec<String> {
+        v.iter().map(|s| s.to_string()).collect()
+    }
+
+    const WELLS: [&str; 4] = ["A01", "A02", "B01", "B02"];
+
+    /// Four wells, baseline at t = 0..3; the lamp dims for every well at once
+    /// (t = 4..6): one alert opened at the first well, grown by an update per
+    /// further well, naming them all; it recovers once, when the last well
+    /// has (recover_frames = 5 calm frames each), not before.
+    #[test]
+    fn every_well_dimming_together_is_one_alert_that_grows_then_recovers_once() {
+        let mut m = grouping(60_000, None);
+        let mut events = Vec::new();
+        let mut at = 0;
+        let mut time_point = |m: &mut RunMonitor, metrics: &dyn Fn(&str) -> FrameMetrics| {
+            let mut out = Vec::new();
+            for well in WELLS {
+                at += 10;
+                out.extend(
+                    m.observe(well, &format!("{well}.tif"), at, &metrics(well))
+                        .events,
+                );
+            }
+            out
+        };
+        for _ in 0..4 {
+            events.extend(time_point(&mut m, &|_| frame()));
+        }
+        assert!(events.is_empty(), "{events:?}");
+        for _ in 0..3 {
+            events.extend(time_point(&mut m, &|_| dim()));
+        }
+        assert_eq!(
+            drift_events(&events),
+            [
+                (AlertState::Opened, names(&["A01"])),
+                (AlertState::Updated, names(&["A01", "A02"])),
+                (AlertState::Updated, names(&["A01", "A02", "B01"])),
+                (AlertState::Updated, names(&["A01", "A02", "B01", "B02"])),
+            ]
+        );
+        let opened_at = events[0].opened_at_ms;
+        assert!(events.iter().all(|e| e.opened_at_ms == opened_at));
+        assert_eq!(
+            events[0].message.split(':').next().unwrap(),
+            "background level (lamp brightness) drifting down at A01 (1 of 4 positions)"
+        );
+        let last = &events[3];
+        assert!(
+            last.message.starts_with(
+                "background level (lamp brightness) drifting down at all 4 positions: A01, A02, B01, B02; newest, B02: 3250 against a baseline of 6500"
+            ),
+            "{}",
+            last.message
+        );
+        assert_eq!(last.evidence.as_ref().unwrap().position, "B02");
+        // The lamp is fixed for A01 only: no recovery while the others drift.
+        events.clear();
+        for _ in 0..20 {
+            events.extend(time_point(&mut m, &|w| {
+                if w == "A01" {
+                    frame()
+                } else {
+                    dim()
+                }
+            }));
+        }
+        assert!(drift_events(&events).is_empty(), "{events:?}");
+        // Then for all: one recovery, naming every position.
+        for _ in 0..25 {
+            events.extend(time_point(&mut m, &|_| frame()));
+        }
+        let recovered = drift_events(&events);
+        assert_eq!(recovered, [(AlertState::Recovered, names(&WELLS))]);
+        assert!(
+            events[0].message.contains(
+                "back in control at every position this alert named (A01, A02, B01, B02)"
+            ),
+            "{}",
+            events[0].message
+        );
+        assert_eq!(events[0].opened_at_ms, opened_at);
+    }
+
+    /// Window 25 ms, a frame every 10 ms: A01 opens at 50 and A02 joins at
+    /// 60 and B01 at 70 (20 ms after the opening); B02 drifts at 80, 30 ms
+    /// after: a cause of its own, a second alert.
+    #[test]
+    fn a_drift_past_the_window_is_an_alert_of_its_own() {
+        let mut m = grouping(25, None);
+        let mut events = Vec::new();
+        let mut at = 10;
+        for t in 0..6 {
+            for well in WELLS {
+                let metrics = if t >= 4 { dim() } else { frame() };
+                events.extend(m.observe(well, "f.tif", at, &metrics).events);
+                at += 10;
+            }
+        }
+        // Baseline frames 10..160; the lamp dims from 170 on.
+        let opened: Vec<(AlertState, Vec<String>, i64)> = events
+            .iter()
+            .map(|e| (e.state, e.positions.clone(), e.opened_at_ms))
+            .collect();
+        assert_eq!(
+            opened,
+            [
+                (AlertState::Opened, names(&["A01"]), 170),
+                (AlertState::Updated, names(&["A01", "A02"]), 170),
+                (AlertState::Updated, names(&["A01", "A02", "B01"]), 170),
+                (AlertState::Opened, names(&["B02"]), 200),
+            ]
+        );
+    }
+
+    /// Thirteen expected frames: six time points at two wells (baseline 4,
+    /// the lamp dim from the fifth), then a failed last frame completes the
+    /// run still dim. The open alerts close with a final message (the drift's
+    /// names where it still holds) before the notice.
+    #[test]
+    fn a_complete_run_closes_its_open_alerts_with_a_final_message() {
+        let mut m = grouping(60_000, Some(13));
+        let mut events = Vec::new();
+        for i in 0..6 {
+            for well in ["A01", "A02"] {
+                let metrics = if i >= 4 { dim() } else { frame() };
+                events.extend(m.observe(well, "f.tif", i, &metrics).events);
+            }
+        }
+        // A stall opened before the end closes with the last frame.
+        events.extend(m.check_stall(i64::MAX / 2));
+        let states: Vec<(&str, AlertState)> = events
+            .iter()
+            .map(|e| (e.condition.as_str(), e.state))
+            .collect();
+        assert_eq!(
+            states,
+            [
+                ("drift:background_level", AlertState::Opened),
+                ("drift:background_level", AlertState::Updated),
+                (STALLED, AlertState::Opened),
+            ]
+        );
+        let end = m.observe_failure("last.tif", i64::MAX / 2 + 1);
+        let states: Vec<(&str, AlertState)> = end
+            .iter()
+            .map(|e| (e.condition.as_str(), e.state))
+            .collect();
+        assert_eq!(
+            states,
+            [
+                (STALLED, AlertState::Recovered),
+                ("drift:background_level", AlertState::Closed),
+                (RUN_COMPLETE, AlertState::Notice),
+            ],
+            "{end:#?}"
+        );
+        assert_eq!(
+            end[1].message,
+            "the run is complete with background level (lamp brightness) still drifting at all 2 positions: A01, A02; the alert closes with the run, not recovered"
+        );
+        assert_eq!(end[1].positions, names(&["A01", "A02"]));
+        // Nothing is left open: no stall and no free-space alert from now on.
+        assert_eq!(m.check_free_space("/data", 0, i64::MAX / 2 + 2), None);
+    }
+
+    /// After a restart the monitor replays the frames, forgets the replayed
+    /// episodes and gets the stored ones back: a third well that drifts joins
+    /// the stored alert (an update), not a new one.
+    #[test]
+    fn a_restored_alert_keeps_its_positions_and_grows() {
+        let mut m = grouping(60_000, None);
+        for i in 0..6 {
+            for well in ["A01", "A02", "B01"] {
+                let metrics = if i >= 4 && well != "B01" {
+                    dim()
+                } else {
+                    frame()
+                };
+                m.observe(well, "f.tif", i, &metrics);
+            }
+        }
+        m.forget_episodes();
+        m.restore_open("drift:background_level", 4, &names(&["A01", "A02"]));
+        // B01 has charted two frames: its EWMA limit has widened to 0.86, so
+        // the second dim frame declares the drift.
+        let grown: Vec<AlertEvent> = (7..9)
+            .flat_map(|at| m.observe("B01", "b.tif", at, &dim()).events)
+            .collect();
+        assert_eq!(
+            drift_events(&grown),
+            [(AlertState::Updated, names(&["A01", "A02", "B01"]))]
+        );
+        assert_eq!(grown[0].opened_at_ms, 4);
+    }
+
     #[test]
     fn failure_rate_limit_on_both_sides_one_episode() {
         // Window 50, limit 20%: 10 failures in 50 is at the limit, 11 beyond.
