@@ -163,8 +163,11 @@ pub fn run(
     // the late-run dimming and gradient are charted (and alerted) against them.
     // The cells divide through the run, which raises counts and image detail on
     // purpose: like a user of a growing culture, the demo leaves object_count and
-    // focus out of the alerting charts.
-    let config = demo_config(&acq, &db, &workdir.join("alerts.jsonl"));
+    // focus out of the alerting charts. The demo knows how many frames it
+    // writes: once they are all recorded the run is complete, and the alerts
+    // still open close with it, each with a final message.
+    let expected = scenario.wells.len() * scenario.time_points;
+    let config = demo_config(&acq, &db, &workdir.join("alerts.jsonl"), expected);
     let settings: Settings = crate::settings::from_text(&config, &workdir.join("demo.toml"))
         .map_err(|e| DemoError::Scenario(format!("demo settings: {e}")))?;
     let service = Service::start(&settings, &WatchOptions { new_run: true })?;
@@ -291,13 +294,13 @@ pub fn fresh_folder(parent: &Path) -> Result<PathBuf, String> {
 
 /// The demo's settings as TOML. Paths are written as escaped TOML strings:
 /// Windows paths are full of backslashes.
-fn demo_config(acq: &Path, db: &Path, alerts: &Path) -> String {
+fn demo_config(acq: &Path, db: &Path, alerts: &Path, expected_frames: usize) -> String {
     let quoted = |p: &Path| toml::Value::String(p.display().to_string()).to_string();
     format!(
         "[watch]\nfolders = [{}]\nsettle_ms = 300\nretry_limit = 3\nretry_backoff_ms = 200\n\
          name_pattern = '^(?P<well>[A-P]\\d{{2}})_t(?P<time_point>\\d+)_(?P<channel>[^.]+)\\.tif$'\n\
          [store]\ndatabase = {}\n\
-         [quality]\nbaseline_frames = 4\non_uneven_illumination = \"flatten\"\n\
+         [quality]\nbaseline_frames = 4\nexpected_frames = {expected_frames}\non_uneven_illumination = \"flatten\"\n\
          charted_metrics = [\"background_level\", \"illumination_change\", \"threshold\", \"separability\"]\n\
          [alerts]\nfile = {}\n",
         quoted(acq),
@@ -324,7 +327,7 @@ mod tests {
     fn demo_settings_keep_paths_with_backslashes_and_quotes() {
         let dir = Path::new("/tmp/night \\ \"run\" 'A'");
         let (acq, db, alerts) = (dir.join("acq"), dir.join("fw.db"), dir.join("a.jsonl"));
-        let text = demo_config(&acq, &db, &alerts);
+        let text = demo_config(&acq, &db, &alerts, 96);
         let settings = crate::settings::parse(&text, &dir.join("demo.toml"))
             .unwrap()
             .read_files()
@@ -332,6 +335,7 @@ mod tests {
         assert_eq!(settings.watch.folders, vec![acq]);
         assert_eq!(settings.store.database, db);
         assert_eq!(settings.alerts.file, Some(alerts));
+        assert_eq!(settings.quality.expected_frames, Some(96));
     }
 
     #[test]
