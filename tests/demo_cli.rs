@@ -29,7 +29,6 @@ fn the_demo_records_every_frame_and_explains_its_alerts() {
     has("background level (lamp brightness) drifting down at ");
     has("] drift:illumination_change since");
     has("CUSUM");
-    has("positions (");
     has("closed with the run: the run is complete with background level (lamp brightness) still drifting at ");
     has("alerts (0 open):");
     // The late frames are flagged for uneven illumination and recounted flat.

@@ -481,7 +481,7 @@ fn every_well_dimming_together_is_one_alert_closed_by_the_complete_run() {
             .all(|(_, m)| m.contains("against a baseline of")),
         "{evidence:?}"
     );
-    // The text view lists the positions.
+    // The text view names the positions and how the alert ended.
     let text = Command::new(BIN)
         .args(["status", "--config"])
         .arg(&bench.config)
@@ -489,7 +489,7 @@ fn every_well_dimming_together_is_one_alert_closed_by_the_complete_run() {
         .unwrap();
     let text = String::from_utf8(text.stdout).unwrap();
     assert!(
-        text.contains("positions (6): A01, A02, A03, B01, B02, B03"),
+        text.contains("at all 6 positions: A01, A02, A03, B01, B02, B03"),
         "{text}"
     );
     assert!(text.contains("closed with the run: "), "{text}");

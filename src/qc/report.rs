@@ -9,7 +9,9 @@ use std::fmt::Write as _;
 use rusqlite::{params, Connection};
 use serde::Serialize;
 
+use crate::qc::alerts::LISTED;
 use crate::qc::flags::{failure_flag, FrameFlag};
+use crate::qc::recorder::POSITIONS_JSON_SQL;
 use crate::store::iso_time_sql;
 use crate::text::shown;
 
@@ -80,9 +82,7 @@ pub struct FlaggedFrame {
 pub fn alerts(conn: &Connection, run_id: i64) -> rusqlite::Result<Vec<AlertRow>> {
     let mut stmt = conn.prepare(&format!(
         "SELECT condition, {}, {}, COALESCE(file, (SELECT file FROM frames WHERE id = alerts.frame_id)),
-                message, closed_message, closed_state,
-                (SELECT json_group_array(position) FROM
-                    (SELECT position FROM alert_positions WHERE alert_id = alerts.id ORDER BY position))
+                message, closed_message, closed_state, {POSITIONS_JSON_SQL}
          FROM alerts WHERE run_id = ?1
          ORDER BY closed_at_ms IS NOT NULL, opened_at_ms DESC, id DESC",
         iso_time_sql("opened_at_ms"),
@@ -198,7 +198,8 @@ pub fn render(
                 a.opened_at,
                 shown(&a.message)
             );
-            if a.positions.len() > 1 {
+            // The message names up to LISTED positions; a longer list in full here.
+            if a.positions.len() > LISTED {
                 let names: Vec<String> = a.positions.iter().map(|p| shown(p).to_string()).collect();
                 let _ = writeln!(
                     out,
