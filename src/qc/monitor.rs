@@ -370,32 +370,32 @@ impl RunMonitor {
 
     /// Marks a stored, still open alert open again after a restart, so its
     /// updates and recovery are noticed and it is not raised twice. A drift
-    /// alert gets back the positions it names; the drift still holds at those
-    /// whose chart is still in a harmful drift.
+    /// alert gets back the positions it names (every position in the drift
+    /// when it names none); the drift still holds at those whose chart is
+    /// still in a harmful drift.
     pub fn restore_open(&mut self, condition: &str, opened_at_ms: i64, positions: &[String]) {
         let Some(metric) = metric_of(condition) else {
             self.book.restore(condition, opened_at_ms);
             return;
         };
-        // A run whose files name no position charts one, unnamed.
-        let unnamed = [String::new()];
-        let positions = if positions.is_empty() {
-            &unnamed[..]
-        } else {
-            positions
+        let holds = |p: &str| {
+            self.positions
+                .get(p)
+                .and_then(|s| s.charts.get(metric_index(metric)))
+                .and_then(Chart::drift)
+                .is_some_and(|direction| metric.harms(direction))
         };
-        let members = positions
-            .iter()
-            .map(|p| {
-                let holds = self
-                    .positions
-                    .get(p)
-                    .and_then(|s| s.charts.get(metric_index(metric)))
-                    .and_then(Chart::drift)
-                    .is_some_and(|direction| metric.harms(direction));
-                (p.clone(), holds)
-            })
-            .collect();
+        let members = if positions.is_empty() {
+            // Stored before alerts named positions (schema 6), or in a run
+            // whose files name none: every position where the drift holds.
+            self.positions
+                .keys()
+                .filter(|p| holds(p))
+                .map(|p| (p.clone(), true))
+                .collect()
+        } else {
+            positions.iter().map(|p| (p.clone(), holds(p))).collect()
+        };
         self.groups.restore(Group {
             condition: condition.to_string(),
             opened_at_ms,
