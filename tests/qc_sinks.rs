@@ -9,7 +9,7 @@ use std::path::Path;
 use std::sync::mpsc;
 use std::time::Duration;
 
-use framewarden::qc::alerts::{AlertEvent, AlertState};
+use framewarden::qc::alerts::{AlertEvent, AlertState, PositionEvidence};
 use framewarden::qc::params::{AlertSettings, CommandSink, WebhookSink};
 use framewarden::qc::sinks::{AlertDispatcher, SinkError, WebhookClient};
 
@@ -18,10 +18,20 @@ fn event(file: &str) -> AlertEvent {
         condition: "drift:background_level".into(),
         state: AlertState::Opened,
         at_ms: 1_700_000_000_000,
+        opened_at_ms: 1_700_000_000_000,
         file: Some(file.into()),
+        // Positions come from file names too: a hostile one among them.
+        positions: vec!["A01".into(), HOSTILE_POSITION.into()],
+        evidence: Some(PositionEvidence {
+            position: "A01".into(),
+            message: "3250 against a baseline of 6500".into(),
+        }),
         message: format!("background level drifting down at A01 ({file})"),
     }
 }
+
+/// A position name (from a file name) that would run something in a shell.
+const HOSTILE_POSITION: &str = "B02 site $(touch PWNED5); `touch PWNED6`";
 
 /// Names that would run something if they ever reached a shell.
 const HOSTILE: &str = "A01 t0001 \"q\" 'x'; touch PWNED; $(touch PWNED2) `touch PWNED3`.tif";
@@ -275,7 +285,7 @@ fn capture_script(dir: &Path) -> std::path::PathBuf {
     let script = dir.join("page the lab; $(touch PWNED4).sh");
     std::fs::write(
         &script,
-        "#!/bin/sh\ncat > \"$1/stdin.json\"\nprintf '%s' \"$FRAMEWARDEN_ALERT_FILE\" > \"$1/file.txt\"\nprintf '%s' \"$FRAMEWARDEN_ALERT_STATE\" > \"$1/state.txt\"\n",
+        "#!/bin/sh\ncat > \"$1/stdin.json\"\nprintf '%s' \"$FRAMEWARDEN_ALERT_FILE\" > \"$1/file.txt\"\nprintf '%s' \"$FRAMEWARDEN_ALERT_STATE\" > \"$1/state.txt\"\nprintf '%s' \"$FRAMEWARDEN_ALERT_POSITIONS\" > \"$1/positions.txt\"\n",
     )
     .unwrap();
     #[cfg(unix)]
@@ -318,7 +328,13 @@ fn the_command_gets_hostile_names_verbatim_and_runs_nothing_else() {
         std::fs::read_to_string(out.join("state.txt")).unwrap(),
         "opened"
     );
-    for marker in ["PWNED", "PWNED2", "PWNED3", "PWNED4"] {
+    assert_eq!(
+        std::fs::read_to_string(out.join("positions.txt")).unwrap(),
+        format!("A01, {HOSTILE_POSITION}")
+    );
+    assert_eq!(stdin["positions"][1], HOSTILE_POSITION);
+    assert_eq!(stdin["evidence"]["position"], "A01");
+    for marker in ["PWNED", "PWNED2", "PWNED3", "PWNED4", "PWNED5", "PWNED6"] {
         for place in [dir.path(), out.as_path(), Path::new(".")] {
             assert!(
                 !place.join(marker).exists(),

@@ -392,3 +392,163 @@ fn a_run_with_every_expected_frame_is_complete_and_its_end_is_no_stall() {
         assert_eq!(bench.wait_exit(Duration::from_secs(60)), Some(0));
     }
 }
+
+/// The events a command sink received: the program is `sh -c 'cat >> FILE'`,
+/// so each event's JSON (stdin) lands as one line.
+fn command_sink_events(path: &std::path::Path) -> Vec<serde_json::Value> {
+    std::fs::read_to_string(path)
+        .unwrap_or_default()
+        .lines()
+        .map(|l| serde_json::from_str(l).unwrap())
+        .collect()
+}
+
+#[test]
+fn every_well_dimming_together_is_one_alert_closed_by_the_complete_run() {
+    // Six wells, four baseline time points, then the lamp at half power for
+    // every well until the run's 48 expected frames are in. Alerts go to a
+    // real command sink run by the service.
+    const WELLS: [&str; 6] = ["A01", "A02", "A03", "B01", "B02", "B03"];
+    let received = tempfile::tempdir().unwrap();
+    let events_file = received.path().join("events.jsonl");
+    let mut bench = Bench::new(&format!(
+        "name_pattern = '^(?P<well>[A-Z]\\d{{2}})_t(?P<time_point>\\d+)\\.tif$'\n\
+         [quality]\nbaseline_frames = 4\nexpected_frames = 48\n\
+         [alerts]\ncommand = [\"/bin/sh\", \"-c\", \"cat >> '{}'\"]\n",
+        events_file.display()
+    ));
+    bench.start();
+    for t in 0..8u64 {
+        let lamp = if t < 4 { 1.0 } else { 0.5 };
+        for (w, well) in WELLS.iter().enumerate() {
+            put(
+                &bench,
+                &format!("{well}_t{t:04}.tif"),
+                scene(t * 10 + w as u64 + 1, lamp, 0.0),
+            );
+        }
+        bench.wait_finished(WELLS.len() * (t as usize + 1), LONG);
+    }
+    let wells: Vec<&str> = WELLS.to_vec();
+    let status = status_json(&bench);
+    let drift = alerts_of(&status, "drift:background_level");
+    assert_eq!(drift.len(), 1, "one cause, one alert: {status:#}");
+    let a = drift[0];
+    assert_eq!(a["positions"], serde_json::json!(wells), "{a:#}");
+    assert!(
+        a["message"]
+            .as_str()
+            .unwrap()
+            .contains("drifting down at all 6 positions: A01, A02, A03, B01, B02, B03"),
+        "{a:#}"
+    );
+    // The run completed with the lamp still dim: the alert is closed, not
+    // recovered, and says so.
+    assert!(a["closed_at"].is_string(), "{a:#}");
+    assert_eq!(a["closed_state"], "closed", "{a:#}");
+    assert!(
+        a["closed_message"]
+            .as_str()
+            .unwrap()
+            .contains("the alert closes with the run, not recovered"),
+        "{a:#}"
+    );
+    assert_eq!(alerts_of(&status, "run_complete").len(), 1, "{status:#}");
+    // Each position's evidence is kept.
+    let conn = rusqlite::Connection::open_with_flags(
+        &bench.db,
+        rusqlite::OpenFlags::SQLITE_OPEN_READ_ONLY,
+    )
+    .unwrap();
+    let evidence: Vec<(String, String)> = conn
+        .prepare(
+            "SELECT position, p.message FROM alert_positions p JOIN alerts ON alerts.id = p.alert_id
+             WHERE condition = 'drift:background_level' ORDER BY position",
+        )
+        .unwrap()
+        .query_map([], |r| Ok((r.get(0)?, r.get(1)?)))
+        .unwrap()
+        .collect::<Result<_, _>>()
+        .unwrap();
+    drop(conn);
+    assert_eq!(
+        evidence.iter().map(|(p, _)| p.as_str()).collect::<Vec<_>>(),
+        wells
+    );
+    assert!(
+        evidence
+            .iter()
+            .all(|(_, m)| m.contains("against a baseline of")),
+        "{evidence:?}"
+    );
+    // The text view names the positions and how the alert ended.
+    let text = Command::new(BIN)
+        .args(["status", "--config"])
+        .arg(&bench.config)
+        .output()
+        .unwrap();
+    let text = String::from_utf8(text.stdout).unwrap();
+    assert!(
+        text.contains("at all 6 positions: A01, A02, A03, B01, B02, B03"),
+        "{text}"
+    );
+    assert!(text.contains("closed with the run: "), "{text}");
+
+    // The sink got one opening, an update per further well (not new alerts)
+    // and the final message, all about the same alert; then the notice.
+    let mut sent = Vec::new();
+    watch_support::wait_for("the command sink's deliveries", LONG, || {
+        sent = command_sink_events(&events_file);
+        sent.iter().any(|e| e["condition"] == "run_complete")
+    });
+    let drift: Vec<&serde_json::Value> = sent
+        .iter()
+        .filter(|e| e["condition"] == "drift:background_level")
+        .collect();
+    let states: Vec<&str> = drift.iter().map(|e| e["state"].as_str().unwrap()).collect();
+    assert_eq!(
+        states,
+        ["opened", "updated", "updated", "updated", "updated", "updated", "closed"],
+        "{sent:#?}"
+    );
+    assert!(
+        drift
+            .iter()
+            .all(|e| e["opened_at_ms"] == drift[0]["opened_at_ms"]),
+        "{drift:#?}"
+    );
+    assert_eq!(drift[0]["positions"].as_array().unwrap().len(), 1);
+    assert_eq!(drift[6]["positions"], serde_json::json!(wells));
+    let joined: Vec<&str> = drift[..6]
+        .iter()
+        .map(|e| e["evidence"]["position"].as_str().unwrap())
+        .collect();
+    let mut joined_sorted = joined.clone();
+    joined_sorted.sort_unstable();
+    assert_eq!(joined_sorted, wells, "each well joined once: {joined:?}");
+
+    // A restart after the complete run is no restart in the middle of it.
+    bench.signal("TERM");
+    assert_eq!(bench.wait_exit(Duration::from_secs(60)), Some(0));
+    bench.start();
+    bench.signal("TERM");
+    assert_eq!(bench.wait_exit(Duration::from_secs(60)), Some(0));
+    let status = status_json(&bench);
+    assert!(
+        alerts_of(&status, "service_restarted").is_empty(),
+        "{status:#}"
+    );
+    assert!(
+        !command_sink_events(&events_file)
+            .iter()
+            .any(|e| e["condition"] == "service_restarted"),
+        "no restart notice sent"
+    );
+    assert!(
+        bench
+            .logs()
+            .contains("run 1 is complete (48 frames recorded)"),
+        "{}",
+        bench.logs()
+    );
+}

@@ -93,14 +93,35 @@ pub struct QualitySettings {
 }
 
 /// Validated `[alerts]` settings: every sink is optional.
-#[derive(Debug, Clone, PartialEq, Default)]
+#[derive(Debug, Clone, PartialEq)]
 pub struct AlertSettings {
+    /// A drift that opens at a position within this long of an open drift
+    /// alert's opening joins that alert (one cause, one alert naming every
+    /// position) instead of opening another.
+    pub group_window: Duration,
     /// Program and arguments, run directly (never through a shell).
     pub command: Option<CommandSink>,
     /// HTTP(S) POST of each alert's JSON to a URL.
     pub webhook: Option<WebhookSink>,
     /// Append-only JSON-lines file.
     pub file: Option<PathBuf>,
+}
+
+impl AlertSettings {
+    /// How long after a drift alert opens other positions may join it, unless
+    /// configured: 30 minutes (see `group_window_min` in the configuration).
+    pub const DEFAULT_GROUP_WINDOW: Duration = Duration::from_secs(30 * 60);
+}
+
+impl Default for AlertSettings {
+    fn default() -> Self {
+        AlertSettings {
+            group_window: AlertSettings::DEFAULT_GROUP_WINDOW,
+            command: None,
+            webhook: None,
+            file: None,
+        }
+    }
 }
 
 /// A program run for each alert, with the alert's JSON on its stdin and its

@@ -75,14 +75,15 @@ struct FrameLine {
 
 impl QcRecorder {
     /// Starts the sinks and rebuilds the monitor of `run_id` from its rows; a run
-    /// that already has frames was interrupted, which raises a restart notice.
+    /// that already has frames and is not complete was interrupted, which
+    /// raises a restart notice.
     ///
     /// # Errors
     /// [`QcError`]: SQLite errors, or a sink thread that cannot start.
     pub fn start(conn: &Connection, run_id: i64, setup: QcSetup) -> Result<QcRecorder, QcError> {
         let dispatcher = AlertDispatcher::start(&setup.alerts).map_err(QcError::Sinks)?;
         let mut recorder = QcRecorder {
-            monitor: RunMonitor::new(setup.quality.clone()),
+            monitor: new_monitor(&setup),
             setup,
             run_id,
             dispatcher,
@@ -91,21 +92,24 @@ impl QcRecorder {
             checkpoint: None,
         };
         let replayed = recorder.replay(conn)?;
-        if replayed > 0 {
-            let at_ms = now_ms();
-            let event = AlertEvent {
-                condition: SERVICE_RESTARTED.into(),
-                state: AlertState::Notice,
-                at_ms,
-                file: None,
-                message: format!(
+        recorder.close_earlier_runs(conn)?;
+        if replayed > 0 && recorder.monitor.is_complete() {
+            tracing::info!(
+                "run {run_id} is complete ({replayed} frames recorded); frames that still come are added to it"
+            );
+        } else if replayed > 0 {
+            let event = AlertEvent::notice(
+                SERVICE_RESTARTED,
+                now_ms(),
+                None,
+                format!(
                     "framewarden restarted in the middle of run {run_id} ({replayed} frames already recorded); frames in flight are redone"
                 ),
-            };
-            // Outside a transaction: stored at once, so announced at once.
+            );
             recorder.store_event(conn, &event, None)?;
-            recorder.announce_pending();
         }
+        // Outside a transaction: stored at once, so announced at once.
+        recorder.announce_pending();
         Ok(recorder)
     }
 }
@@ -126,7 +130,7 @@ impl FrameObserver for QcRecorder {
         analysis: &FileAnalysis,
     ) -> rusqlite::Result<()> {
         let (run_id, file, position, latency_ms) = frame_row(tx, frame_id)?;
-        self.switch_run(run_id);
+        self.switch_run(tx, run_id)?;
         let at_ms = now_ms();
         let result = &analysis.result;
         let mut verdict =
@@ -178,7 +182,7 @@ impl FrameObserver for QcRecorder {
         let Some((frame_id, run_id)) = row else {
             return Ok(());
         };
-        self.switch_run(run_id);
+        self.switch_run(tx, run_id)?;
         for event in self.monitor.observe_failure(&key.path, now_ms()) {
             self.store_event(tx, &event, Some(frame_id))?;
         }
@@ -245,50 +249,131 @@ impl QcRecorder {
         }
     }
 
-    /// A new run (after an idle gap) starts with a fresh memory.
-    fn switch_run(&mut self, run_id: i64) {
+    /// A new run (after an idle gap) starts with a fresh memory; the run
+    /// before it is over, and its open alerts close.
+    fn switch_run(&mut self, conn: &Connection, run_id: i64) -> rusqlite::Result<()> {
         if run_id != self.run_id {
             self.run_id = run_id;
-            self.monitor = RunMonitor::new(self.setup.quality.clone());
+            self.monitor = new_monitor(&self.setup);
+            self.close_earlier_runs(conn)?;
         }
+        Ok(())
     }
 
+    /// Closes the alerts still open in runs before the current one (a run
+    /// that another has followed is over), each with a final message; they
+    /// are announced with the rest.
+    fn close_earlier_runs(&mut self, conn: &Connection) -> rusqlite::Result<()> {
+        let open: Vec<(i64, String, i64, String)> = conn
+            .prepare_cached(&format!(
+                "SELECT run_id, condition, opened_at_ms, {POSITIONS_JSON_SQL}
+                 FROM alerts WHERE run_id < ?1 AND closed_at_ms IS NULL ORDER BY opened_at_ms, id"
+            ))?
+            .query_map([self.run_id], |r| {
+                Ok((r.get(0)?, r.get(1)?, r.get(2)?, r.get(3)?))
+            })?
+            .collect::<Result<_, _>>()?;
+        let at_ms = now_ms();
+        for (run_id, condition, opened_at_ms, positions) in open {
+            let event = AlertEvent {
+                message: format!(
+                    "run {run_id} is over (run {} has started) with {condition} still open; the alert closes with its run, not recovered",
+                    self.run_id
+                ),
+                condition,
+                state: AlertState::Closed,
+                at_ms,
+                opened_at_ms,
+                file: None,
+                positions: serde_json::from_str(&positions).unwrap_or_default(),
+                evidence: None,
+            };
+            self.store_event_of(conn, run_id, &event, None)?;
+        }
+        Ok(())
+    }
+
+    /// Stores one event in `conn` (the writer's transaction, or outside one):
+    /// an opening or a notice is a new row; an update rewrites the open
+    /// alert's sentence; a recovery or a run's end closes it. Each position an
+    /// event brings in is stored with its evidence. The event is announced
+    /// once stored and committed.
     fn store_event(
         &mut self,
         conn: &Connection,
         event: &AlertEvent,
         frame_id: Option<i64>,
     ) -> rusqlite::Result<()> {
-        match event.state {
+        self.store_event_of(conn, self.run_id, event, frame_id)
+    }
+
+    /// [`QcRecorder::store_event`] for an alert of `run_id`.
+    fn store_event_of(
+        &mut self,
+        conn: &Connection,
+        run_id: i64,
+        event: &AlertEvent,
+        frame_id: Option<i64>,
+    ) -> rusqlite::Result<()> {
+        // The open episode the event is about: its condition and opening.
+        const EPISODE: &str =
+            "run_id = ?1 AND condition = ?2 AND opened_at_ms = ?3 AND closed_at_ms IS NULL";
+        let alert_id: Option<i64> = match event.state {
             AlertState::Opened | AlertState::Notice => {
                 // A notice is an episode closed as it opens.
-                let closed_at_ms = (event.state == AlertState::Notice).then_some(event.at_ms);
+                let notice = event.state == AlertState::Notice;
                 conn.prepare_cached(
-                    "INSERT INTO alerts (run_id, opened_at_ms, condition, message, frame_id, file, closed_at_ms)
-                     VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7)",
+                    "INSERT INTO alerts (run_id, opened_at_ms, condition, message, frame_id, file, closed_at_ms, closed_state)
+                     VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8)",
                 )?
                 .execute(params![
-                    self.run_id,
+                    run_id,
                     event.at_ms,
                     event.condition,
                     event.message,
                     frame_id,
                     event.file,
-                    closed_at_ms
+                    notice.then_some(event.at_ms),
+                    notice.then_some(AlertState::Notice.as_str())
                 ])?;
+                Some(conn.last_insert_rowid())
             }
-            AlertState::Recovered => {
-                conn.prepare_cached(
-                    "UPDATE alerts SET closed_at_ms = ?1, closed_message = ?2
-                     WHERE run_id = ?3 AND condition = ?4 AND closed_at_ms IS NULL",
-                )?
+            AlertState::Updated => conn
+                .prepare_cached(&format!(
+                    "UPDATE alerts SET message = ?4 WHERE {EPISODE} RETURNING id"
+                ))?
+                .query_row(
+                    params![run_id, event.condition, event.opened_at_ms, event.message],
+                    |r| r.get(0),
+                )
+                .optional()?,
+            AlertState::Recovered | AlertState::Closed => {
+                conn.prepare_cached(&format!(
+                    "UPDATE alerts SET closed_at_ms = ?4, closed_message = ?5, closed_state = ?6 WHERE {EPISODE}"
+                ))?
                 .execute(params![
+                    run_id,
+                    event.condition,
+                    event.opened_at_ms,
                     event.at_ms,
                     event.message,
-                    self.run_id,
-                    event.condition
+                    event.state.as_str()
                 ])?;
+                None
             }
+        };
+        if let (Some(alert_id), Some(evidence)) = (alert_id, &event.evidence) {
+            conn.prepare_cached(
+                "INSERT OR REPLACE INTO alert_positions (alert_id, position, joined_at_ms, frame_id, message)
+                 VALUES (?1, ?2, ?3, ?4, ?5)",
+            )?
+            .execute(params![
+                alert_id,
+                evidence.position,
+                event.at_ms,
+                frame_id,
+                evidence.message
+            ])?;
         }
         self.pending.push(event.clone());
         Ok(())
@@ -302,9 +387,20 @@ impl QcRecorder {
                 "alert: {}",
                 shown(&event.message)
             ),
+            AlertState::Updated => tracing::warn!(
+                condition = %shown(&event.condition),
+                file = %shown(event.file.as_deref().unwrap_or("")),
+                "alert grows: {}",
+                shown(&event.message)
+            ),
             AlertState::Recovered => tracing::info!(
                 condition = %shown(&event.condition),
                 "recovered: {}",
+                shown(&event.message)
+            ),
+            AlertState::Closed => tracing::info!(
+                condition = %shown(&event.condition),
+                "closed with the run: {}",
                 shown(&event.message)
             ),
             AlertState::Notice => tracing::info!(
@@ -317,8 +413,9 @@ impl QcRecorder {
     }
 
     /// Feeds the run's recorded frames to a fresh monitor, in recording order,
-    /// discarding the events (they are already stored), then marks the stored
-    /// open alerts open. Returns the number of frames replayed.
+    /// discarding the events (they are already stored), then puts back the
+    /// stored open alerts, each drift alert with the positions it names.
+    /// Returns the number of frames replayed.
     fn replay(&mut self, conn: &Connection) -> rusqlite::Result<usize> {
         let mut stmt = conn.prepare(&format!(
             "SELECT file, {POSITION_SQL}, analyzed_at_ms, status,
@@ -359,16 +456,30 @@ impl QcRecorder {
             }
             n += 1;
         }
-        let mut open = conn.prepare(
-            "SELECT condition, opened_at_ms FROM alerts WHERE run_id = ?1 AND closed_at_ms IS NULL",
-        )?;
-        let rows = open.query_map([self.run_id], |r| Ok((r.get::<_, String>(0)?, r.get(1)?)))?;
+        self.monitor.forget_episodes();
+        let mut open = conn.prepare(&format!(
+            "SELECT condition, opened_at_ms, {POSITIONS_JSON_SQL}
+             FROM alerts WHERE run_id = ?1 AND closed_at_ms IS NULL ORDER BY opened_at_ms, id"
+        ))?;
+        let rows = open.query_map([self.run_id], |r| {
+            Ok((r.get::<_, String>(0)?, r.get(1)?, r.get::<_, String>(2)?))
+        })?;
         for row in rows {
-            let (kind, at): (String, i64) = row?;
-            self.monitor.restore_open(&kind, at);
+            let (condition, at, positions): (String, i64, String) = row?;
+            let positions: Vec<String> = serde_json::from_str(&positions).unwrap_or_default();
+            self.monitor.restore_open(&condition, at, &positions);
         }
         Ok(n)
     }
+}
+
+/// SQL for the positions an alert row names, as a JSON array in order.
+pub const POSITIONS_JSON_SQL: &str = "(SELECT json_group_array(position) FROM
+    (SELECT position FROM alert_positions WHERE alert_id = alerts.id ORDER BY position))";
+
+/// A monitor for a new run with the setup's limits and group window.
+fn new_monitor(setup: &QcSetup) -> RunMonitor {
+    RunMonitor::new(setup.quality.clone()).with_group_window(setup.alerts.group_window)
 }
 
 /// The run, file, position and latency (ready to recorded, ms) of a frame row.
@@ -462,5 +573,61 @@ mod tests {
             1,
             "{lines}"
         );
+    }
+
+    /// A run that another has followed is over: its alerts still open close
+    /// when the service starts in the later run, with a final message, the
+    /// positions they named, and a line to the sinks; the later run's own
+    /// open alert stays open (real SQLite, real JSON-lines sink).
+    #[test]
+    fn the_open_alerts_of_an_earlier_run_close_with_it() {
+        let dir = tempfile::tempdir().unwrap();
+        let setup = QcSetup {
+            quality: QualitySettings::default(),
+            alerts: AlertSettings {
+                file: Some(dir.path().join("alerts.jsonl")),
+                ..AlertSettings::default()
+            },
+            volumes: Vec::new(),
+        };
+        let conn = crate::store::open_for_writing(&dir.path().join("fw.db")).unwrap();
+        conn.execute_batch(
+            "INSERT INTO runs (id, folders, started_at_ms, last_frame_at_ms, settings) VALUES
+                 (1, '[]', 0, 0, ''), (2, '[]', 9, 9, '');
+             INSERT INTO alerts (id, run_id, opened_at_ms, condition, message) VALUES
+                 (1, 1, 5, 'drift:focus', 'focus drifting down'),
+                 (2, 2, 10, 'stalled', 'no new frame');
+             INSERT INTO alert_positions (alert_id, position, joined_at_ms, message) VALUES
+                 (1, 'B02', 6, 'b'), (1, 'A01', 5, 'a');",
+        )
+        .unwrap();
+        let recorder = QcRecorder::start(&conn, 2, setup).unwrap();
+        Box::new(recorder).close();
+        let rows: Vec<(i64, Option<String>, Option<String>)> = conn
+            .prepare("SELECT run_id, closed_state, closed_message FROM alerts ORDER BY id")
+            .unwrap()
+            .query_map([], |r| Ok((r.get(0)?, r.get(1)?, r.get(2)?)))
+            .unwrap()
+            .collect::<Result<_, _>>()
+            .unwrap();
+        assert_eq!(rows[0].1.as_deref(), Some("closed"));
+        assert_eq!(
+            rows[0].2.as_deref(),
+            Some("run 1 is over (run 2 has started) with drift:focus still open; the alert closes with its run, not recovered")
+        );
+        assert_eq!(
+            rows[1],
+            (2, None, None),
+            "the current run's alert stays open"
+        );
+        let lines = std::fs::read_to_string(dir.path().join("alerts.jsonl")).unwrap();
+        let sent: Vec<serde_json::Value> = lines
+            .lines()
+            .map(|l| serde_json::from_str(l).unwrap())
+            .collect();
+        assert_eq!(sent.len(), 1, "{lines}");
+        assert_eq!(sent[0]["state"], "closed");
+        assert_eq!(sent[0]["opened_at_ms"], 5);
+        assert_eq!(sent[0]["positions"], serde_json::json!(["A01", "B02"]));
     }
 }

@@ -9,7 +9,9 @@ use std::fmt::Write as _;
 use rusqlite::{params, Connection};
 use serde::Serialize;
 
+use crate::qc::alerts::LISTED;
 use crate::qc::flags::{failure_flag, FrameFlag};
+use crate::qc::recorder::POSITIONS_JSON_SQL;
 use crate::store::iso_time_sql;
 use crate::text::shown;
 
@@ -25,8 +27,15 @@ pub struct AlertRow {
     pub closed_at: Option<String>,
     /// The file that triggered it, when a frame did.
     pub frame: Option<String>,
-    /// The sentence written when the episode opened.
+    /// The sentence written when the episode opened (for a drift alert that
+    /// grew, when the last position joined).
     pub message: String,
+    /// The positions a drift alert names, in order; empty for a condition of
+    /// the whole run.
+    pub positions: Vec<String>,
+    /// How it ended: `recovered`, `closed` (with its run, still holding) or
+    /// `notice`; `None` while open (and for episodes closed before schema 7).
+    pub closed_state: Option<String>,
     /// What ended it.
     pub closed_message: Option<String>,
 }
@@ -73,7 +82,7 @@ pub struct FlaggedFrame {
 pub fn alerts(conn: &Connection, run_id: i64) -> rusqlite::Result<Vec<AlertRow>> {
     let mut stmt = conn.prepare(&format!(
         "SELECT condition, {}, {}, COALESCE(file, (SELECT file FROM frames WHERE id = alerts.frame_id)),
-                message, closed_message
+                message, closed_message, closed_state, {POSITIONS_JSON_SQL}
          FROM alerts WHERE run_id = ?1
          ORDER BY closed_at_ms IS NOT NULL, opened_at_ms DESC, id DESC",
         iso_time_sql("opened_at_ms"),
@@ -86,6 +95,8 @@ pub fn alerts(conn: &Connection, run_id: i64) -> rusqlite::Result<Vec<AlertRow>>
             closed_at: r.get(2)?,
             frame: r.get(3)?,
             message: r.get(4)?,
+            positions: serde_json::from_str(&r.get::<_, String>(7)?).unwrap_or_default(),
+            closed_state: r.get(6)?,
             closed_message: r.get(5)?,
         })
     })?;
@@ -187,8 +198,22 @@ pub fn render(
                 a.opened_at,
                 shown(&a.message)
             );
+            // The message names up to LISTED positions; a longer list in full here.
+            if a.positions.len() > LISTED {
+                let names: Vec<String> = a.positions.iter().map(|p| shown(p).to_string()).collect();
+                let _ = writeln!(
+                    out,
+                    "      positions ({}): {}",
+                    names.len(),
+                    names.join(", ")
+                );
+            }
             if let Some(m) = &a.closed_message {
-                let _ = writeln!(out, "      recovered: {}", shown(m));
+                let how = match a.closed_state.as_deref() {
+                    Some("closed") => "closed with the run",
+                    _ => "recovered",
+                };
+                let _ = writeln!(out, "      {how}: {}", shown(m));
             }
         }
     }

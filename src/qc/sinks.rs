@@ -280,6 +280,7 @@ fn run_command(c: &CommandSink, event: &AlertEvent) -> Result<(), SinkError> {
             event.file.as_deref().unwrap_or(""),
         )
         .env("FRAMEWARDEN_ALERT_AT", event.at_ms.to_string())
+        .env("FRAMEWARDEN_ALERT_POSITIONS", event.positions.join(", "))
         .stdin(Stdio::piped())
         .stdout(Stdio::null())
         .stderr(Stdio::null())

@@ -382,6 +382,7 @@ impl Default for QualitySection {
 #[serde(deny_unknown_fields, default)]
 #[allow(missing_docs)] // each key is documented in config/framewarden.toml
 pub struct AlertsSection {
+    pub group_window_min: u64,
     pub command: Vec<String>,
     pub command_timeout_s: u64,
     pub webhook_url: String,
@@ -398,6 +399,7 @@ impl From<&AlertSettings> for AlertsSection {
     fn from(a: &AlertSettings) -> Self {
         let w = a.webhook.as_ref();
         AlertsSection {
+            group_window_min: a.group_window.as_secs() / 60,
             command: a
                 .command
                 .iter()

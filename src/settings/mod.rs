@@ -538,6 +538,7 @@ min_free_space_mib = 4096
 failure_window = 40
 max_failure_fraction = 0.25
 [alerts]
+group_window_min = 45
 command = ["/usr/local/bin/page-the-lab", "--urgent"]
 command_timeout_s = 12
 webhook_url = "https://alerts.example.org/hook"

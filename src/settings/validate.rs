@@ -507,6 +507,9 @@ pub fn alerts(a: AlertsSection, base: &Path) -> Result<AlertSettings, ValueError
         })
     };
     Ok(AlertSettings {
+        group_window: Duration::from_secs(
+            positive("alerts.group_window_min", a.group_window_min)?.saturating_mul(60),
+        ),
         command,
         webhook,
         file: a.file.map(|f| base.join(f)),
