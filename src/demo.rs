@@ -229,7 +229,11 @@ pub fn run(
         started.elapsed().as_secs_f64()
     );
     let report = status::read(&db, 8, None)?;
-    let _ = write!(out, "{}", status::render(&report));
+    let _ = write!(
+        out,
+        "{}",
+        status::render(&report, &jiff::tz::TimeZone::system())
+    );
     let _ = writeln!(out, "\nevery result is in {}", db.display());
     Ok(report)
 }
