@@ -1,6 +1,6 @@
 //! `framewarden export` at scale: a generated run of 5,000 frames and
 //! 1 million, then 5 million, object rows (inserted with plain SQL, values
-//! varied per row), exported by the real binary to CSV and to Parquet, each
+//! drawn with SQLite's `random()` so that files compress as real data would), exported by the real binary to CSV and to Parquet, each
 //! under `/usr/bin/time -v` for its peak resident memory.
 //!
 //! Prints, per size and format: seconds, rows per second, output size and
@@ -48,12 +48,14 @@ fn generate(db: &Path, objects: i64) {
                  bbox_x_min, bbox_y_min, bbox_x_max, bbox_y_max, mean_intensity,
                  integrated_intensity, max_intensity, perimeter_px, circularity, major_axis_px,
                  minor_axis_px, eccentricity, solidity, channels)
-         SELECT f.id, 'raw', k.j, 20 + (f.id * 7 + k.j * 13) % 400, NULL,
-                (k.j * 37 % 1024) + 0.25, (k.j * 91 % 1024) + 0.5,
-                k.j * 37 % 1024, k.j * 91 % 1024, k.j * 37 % 1024 + 12, k.j * 91 % 1024 + 12,
-                500.0 + (f.id + k.j) % 1000 / 3.0, 10000.0 + k.j * 3.5, 900.0 + k.j % 50,
-                40.0 + k.j % 17 / 7.0, 0.8 + k.j % 19 / 100.0, 12.0 + k.j % 5 / 3.0,
-                10.0 + k.j % 3 / 7.0, 0.3 + k.j % 23 / 100.0, 0.9 + k.j % 7 / 100.0, NULL
+         SELECT f.id, 'raw', k.j, 20 + abs(random()) % 400, abs(random()) % 170001 / 1000.0,
+                abs(random()) % 1024001 / 1000.0, abs(random()) % 1024001 / 1000.0,
+                k.j % 1000, k.j * 7 % 1000, k.j % 1000 + 14, k.j * 7 % 1000 + 14,
+                500.0 + abs(random()) % 3000001 / 1000.0, abs(random()) % 1000000001 / 1000.0,
+                600.0 + abs(random()) % 60000, 20.0 + abs(random()) % 1000001 / 10000.0,
+                0.5 + abs(random()) % 500001 / 1000000.0, 10.0 + abs(random()) % 200001 / 10000.0,
+                8.0 + abs(random()) % 100001 / 10000.0, abs(random()) % 1000001 / 1000000.0,
+                0.7 + abs(random()) % 300001 / 1000000.0, NULL
          FROM frames f, k;
          COMMIT;"
     ))

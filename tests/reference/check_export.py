@@ -176,11 +176,11 @@ def compare(what, got_rows, got_columns, want):
 
 
 def read_csv(path, want):
-    # Only an empty field is missing ("NA" or "null" would be text), numbers
-    # parsed exactly, text columns kept as text (a time point "0003" stays so).
+    # Only an empty field is missing ("NA" or "null" would be text), text
+    # columns kept as text (a time point "0003" stays so); pandas 3 parses
+    # numbers exactly by default.
     text = {k for row in want for k, v in row.items() if isinstance(v, str)}
-    df = pd.read_csv(path, keep_default_na=False, na_values=[""], float_precision="round_trip",
-                     dtype={k: str for k in text})
+    df = pd.read_csv(path, keep_default_na=False, na_values=[""], dtype={k: str for k in text})
     return df.to_dict("records"), list(df.columns)
 
 
