@@ -27,6 +27,7 @@ use rusqlite::types::ValueRef;
 use rusqlite::{Connection, Row};
 
 use crate::store::{self, iso_time_sql, StoreError, COUNT_USED_SQL};
+use crate::text::shown_path;
 
 /// Rows per Parquet row group, and per batch held in memory before it is
 /// written: about 64 k rows × 30 columns × 8 bytes, some 16 MB at most.
@@ -170,7 +171,12 @@ fn position(columns: &mut Vec<Column>) {
 /// The columns and the `FROM … ORDER BY` of a table; `?1` is the run.
 fn layout(table: Table) -> (Vec<Column>, &'static str) {
     use Kind::{Int, Real, Text};
-    let mut c = vec![col("run", Int, "f.run_id")];
+    let run = if table == Table::Alerts {
+        "a.run_id"
+    } else {
+        "f.run_id"
+    };
+    let mut c = vec![col("run", Int, run)];
     match table {
         Table::Frames => {
             c.push(col("frame_id", Int, "f.id"));
@@ -260,7 +266,6 @@ fn layout(table: Table) -> (Vec<Column>, &'static str) {
             )
         }
         Table::Alerts => {
-            c[0] = col("run", Int, "a.run_id");
             c.extend([
                 col("alert_id", Int, "a.id"),
                 col("condition", Text, "a.condition"),
@@ -339,7 +344,7 @@ pub fn export(
                 stream(conn, db, table, run_id, sink)?
             }
             Some(path) => write_file(path, |file| {
-                let shown = path.display().to_string();
+                let shown = shown_path(path);
                 match format {
                     Format::Csv => {
                         let sink = CsvSink::new(BufWriter::new(file), &layout(table).0, &shown);
@@ -366,7 +371,7 @@ fn write_file(
     partial.push(".partial");
     let partial = PathBuf::from(partial);
     let io_error = |source| ExportError::Write {
-        path: path.display().to_string(),
+        path: shown_path(path),
         source,
     };
     let file = File::create(&partial).map_err(io_error)?;
