@@ -21,7 +21,12 @@ const FRAMES: i64 = 5_000;
 /// A database with one run of [`FRAMES`] done frames (4 × 12 wells × 3 sites
 /// × time points) and `objects` object rows spread evenly over them.
 fn generate(db: &Path, objects: i64) {
-    let _ = std::fs::remove_file(db);
+    // A fresh folder: no WAL or shared-memory file of an earlier database.
+    let dir = db
+        .parent()
+        .expect("the database is inside the bench folder");
+    let _ = std::fs::remove_dir_all(dir);
+    std::fs::create_dir_all(dir).unwrap();
     let conn = framewarden::store::open_for_writing(db).unwrap();
     let per_frame = objects / FRAMES;
     conn.execute_batch(&format!(
@@ -100,7 +105,6 @@ fn main() {
         sizes
     };
     let dir: PathBuf = Path::new(env!("CARGO_MANIFEST_DIR")).join("target/bench-export");
-    std::fs::create_dir_all(&dir).unwrap();
     let db = dir.join("bench.db");
     println!(
         "{:>10} {:>8} {:>8} {:>12} {:>10} {:>12}",
@@ -149,5 +153,5 @@ fn main() {
         of(large, "parquet").2 / of(large, "csv").2,
         of(large, "parquet").4 / of(large, "csv").4
     );
-    let _ = std::fs::remove_file(&db);
+    let _ = std::fs::remove_dir_all(&dir);
 }
