@@ -15,7 +15,7 @@
 //! | judging | [`qc`] |
 //! | watching | [`watch`] |
 //! | configuration | [`settings`] (builds every layer's parameters) |
-//! | commands | [`daemon`], [`analyze`], [`status`], [`demo`] |
+//! | commands | [`daemon`], [`analyze`], [`status`], [`export`], [`demo`] |
 
 pub mod text;
 
@@ -40,4 +40,5 @@ pub mod settings;
 pub mod analyze;
 pub mod daemon;
 pub mod demo;
+pub mod export;
 pub mod status;

@@ -73,6 +73,31 @@ enum Command {
         /// Show this run (by number) instead of the current or last one.
         #[arg(long)]
         run: Option<i64>,
+        /// Show times in UTC instead of local time (--json is always UTC).
+        #[arg(long)]
+        utc: bool,
+    },
+    /// Write one table of a run (frames, objects, alerts or flags) as CSV or
+    /// Parquet, one row per item, read-only.
+    Export {
+        /// Configuration file whose [store] database to read.
+        #[arg(long)]
+        config: Option<PathBuf>,
+        /// Database file (overrides the config).
+        #[arg(long)]
+        db: Option<PathBuf>,
+        /// Export this run (by number) instead of the current or last one.
+        #[arg(long)]
+        run: Option<i64>,
+        /// frames, objects, alerts or flags.
+        #[arg(long)]
+        table: framewarden::export::Table,
+        /// csv or parquet (Parquet needs -o).
+        #[arg(long, default_value = "csv")]
+        format: framewarden::export::Format,
+        /// Output file (default: standard output, CSV only).
+        #[arg(short = 'o', long = "output", value_name = "FILE")]
+        output: Option<PathBuf>,
     },
     /// Replay an invented overnight plate time-lapse into a new folder while the
     /// watch service records it, then tell what happened (a few seconds). The
@@ -128,6 +153,7 @@ fn main() -> ExitCode {
             json,
             recent,
             run,
+            utc,
         } => {
             let settings = match load_settings(config.as_deref()) {
                 Ok(s) => s,
@@ -143,11 +169,51 @@ fn main() -> ExitCode {
                     ExitCode::SUCCESS
                 }
                 Ok(report) => {
-                    print!("{}", framewarden::status::render(&report));
+                    let zone = if utc {
+                        jiff::tz::TimeZone::UTC
+                    } else {
+                        jiff::tz::TimeZone::system()
+                    };
+                    print!("{}", framewarden::status::render(&report, &zone));
                     ExitCode::SUCCESS
                 }
                 Err(e) => {
                     eprintln!("framewarden status: {e}");
+                    ExitCode::from(FAILURE)
+                }
+            }
+        }
+        Command::Export {
+            config,
+            db,
+            run,
+            table,
+            format,
+            output,
+        } => {
+            let settings = match load_settings(config.as_deref()) {
+                Ok(s) => s,
+                Err(code) => return code,
+            };
+            let db = db.unwrap_or(settings.store.database);
+            match framewarden::export::export(&db, run, table, format, output.as_deref()) {
+                Ok(done) => {
+                    if let Some(path) = &output {
+                        eprintln!(
+                            "framewarden export: {} rows of run {} written to {}",
+                            done.rows,
+                            done.run,
+                            framewarden::text::shown_path(path)
+                        );
+                    }
+                    ExitCode::SUCCESS
+                }
+                Err(e @ framewarden::export::ExportError::ParquetNeedsFile) => {
+                    eprintln!("framewarden export: {e}");
+                    ExitCode::from(USAGE)
+                }
+                Err(e) => {
+                    eprintln!("framewarden export: {e}");
                     ExitCode::from(FAILURE)
                 }
             }

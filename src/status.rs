@@ -7,11 +7,12 @@
 use std::fmt::Write as _;
 use std::path::Path;
 
-use rusqlite::{params, Connection, OptionalExtension};
+use jiff::tz::TimeZone;
+use rusqlite::{params, Connection};
 use serde::Serialize;
 
 use crate::store::{self, iso_time_sql, now_ms, StoreError, COUNT_USED_SQL, POSITION_SQL};
-use crate::text::shown;
+use crate::text::{shown, shown_time};
 
 /// Everything `status` shows; `--json` prints it as one document.
 #[derive(Debug, Clone, Serialize, PartialEq)]
@@ -122,29 +123,20 @@ pub struct RecentFrame {
 /// [`StoreError`] for a missing, foreign or unreadable database, or a run
 /// number it does not have.
 pub fn read(db: &Path, recent: usize, run: Option<i64>) -> Result<StatusReport, StoreError> {
-    let mut conn = store::open_read_only(db)?;
-    let sqlite = |source| StoreError::Sqlite {
-        path: db.to_path_buf(),
-        source,
-    };
     // One snapshot for every query, kept short so the WAL can be checkpointed.
-    let tx = conn.transaction().map_err(sqlite)?;
-    let report = query(&tx, db, recent, run).map_err(sqlite)?;
-    tx.finish().map_err(sqlite)?;
-    match (run, &report.run) {
-        (Some(run), None) => Err(StoreError::NoRun {
+    store::read_run(db, run, |conn, run_id| {
+        query(conn, db, recent, run_id).map_err(|source| StoreError::Sqlite {
             path: db.to_path_buf(),
-            run,
-        }),
-        _ => Ok(report),
-    }
+            source,
+        })
+    })
 }
 
 fn query(
     conn: &Connection,
     db: &Path,
     recent: usize,
-    run: Option<i64>,
+    run_id: Option<i64>,
 ) -> rusqlite::Result<StatusReport> {
     let mut report = StatusReport {
         database: db.display().to_string(),
@@ -165,27 +157,26 @@ fn query(
         flagged_frames: Vec::new(),
         positions: Vec::new(),
     };
-    let run = conn
-        .query_row(
-            &format!(
-                "SELECT id, folders, {}, {} FROM runs WHERE ?1 IS NULL OR id = ?1 ORDER BY id DESC LIMIT 1",
-                iso_time_sql("started_at_ms"),
-                iso_time_sql("ended_at_ms"),
-            ),
-            [run],
-            |r| {
-                let folders: String = r.get(1)?;
-                Ok(RunInfo {
-                    id: r.get(0)?,
-                    folders: serde_json::from_str(&folders).unwrap_or_default(),
-                    started_at: r.get(2)?,
-                    ended_at: r.get(3)?,
-                })
-            },
-        )
-        .optional()?;
-    let Some(run) = run else { return Ok(report) };
-    let run_id = run.id;
+    let Some(run_id) = run_id else {
+        return Ok(report);
+    };
+    let run = conn.query_row(
+        &format!(
+            "SELECT id, folders, {}, {} FROM runs WHERE id = ?1",
+            iso_time_sql("started_at_ms"),
+            iso_time_sql("ended_at_ms"),
+        ),
+        [run_id],
+        |r| {
+            let folders: String = r.get(1)?;
+            Ok(RunInfo {
+                id: r.get(0)?,
+                folders: serde_json::from_str(&folders).unwrap_or_default(),
+                started_at: r.get(2)?,
+                ended_at: r.get(3)?,
+            })
+        },
+    )?;
     report.run = Some(run);
 
     let (seen, done, queued, failed, objects, filtered, first_ms, last_ms): (i64, i64, i64, i64, i64, i64, Option<i64>, Option<i64>) =
@@ -292,8 +283,10 @@ fn positions(conn: &Connection, run_id: i64) -> rusqlite::Result<Vec<PositionSum
     Ok(out)
 }
 
-/// The report as text for a terminal.
-pub fn render(report: &StatusReport) -> String {
+/// The report as text for a terminal, its times shown in `zone` with the UTC
+/// offset (`TimeZone::system()` for local time, `TimeZone::UTC`).
+pub fn render(report: &StatusReport, zone: &TimeZone) -> String {
+    let time = |t: &str| shown_time(t, zone);
     let mut out = String::new();
     let Some(run) = &report.run else {
         let _ = writeln!(
@@ -303,16 +296,16 @@ pub fn render(report: &StatusReport) -> String {
         );
         return out;
     };
-    let state = run
-        .ended_at
-        .as_ref()
-        .map_or_else(|| "being watched".to_string(), |e| format!("ended {e}"));
+    let state = run.ended_at.as_ref().map_or_else(
+        || "being watched".to_string(),
+        |e| format!("ended {}", time(e)),
+    );
     let _ = writeln!(
         out,
         "run {} on {} (started {}, {state})",
         run.id,
         run.folders.join(", "),
-        run.started_at
+        time(&run.started_at)
     );
     let _ = writeln!(
         out,
@@ -328,7 +321,7 @@ pub fn render(report: &StatusReport) -> String {
         let _ = writeln!(out, "rate: {rate:.1} frames/min");
     }
     if let (Some(at), Some(age)) = (&report.last_frame_at, report.last_frame_age_s) {
-        let _ = writeln!(out, "last frame: {at} ({} ago)", human_age(age));
+        let _ = writeln!(out, "last frame: {} ({} ago)", time(at), human_age(age));
     }
     if !report.frames.is_empty() {
         let _ = writeln!(out, "\nrecent frames:");
@@ -395,6 +388,7 @@ pub fn render(report: &StatusReport) -> String {
         &report.alerts,
         &report.flag_counts,
         &report.flagged_frames,
+        zone,
         &mut out,
     );
     out
@@ -420,7 +414,7 @@ mod tests {
         let report = read(&db, 5, None).unwrap();
         assert_eq!(report.run, None);
         assert_eq!(report.frames_seen, 0);
-        assert!(render(&report).contains("no run recorded yet"));
+        assert!(render(&report, &TimeZone::UTC).contains("no run recorded yet"));
     }
 
     #[test]

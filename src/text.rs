@@ -2,7 +2,8 @@
 //! control character in a name must not split a log line or reach a terminal
 //! as an escape sequence.
 //!
-//! The bottom of the crate: anything that writes a name uses [`shown`].
+//! The bottom of the crate: anything that writes a name uses [`shown`], and
+//! anything that shows a stored time to a person uses [`shown_time`].
 //! JSON output needs none of it (serde escapes control characters).
 
 use std::borrow::Cow;
@@ -34,6 +35,30 @@ pub fn shown(text: &str) -> Cow<'_, str> {
 /// A path as [`shown`] text (lossy for names that are not UTF-8).
 pub fn shown_path(path: &std::path::Path) -> String {
     shown(&path.to_string_lossy()).into_owned()
+}
+
+/// A time the store wrote as RFC 3339 UTC text (`2026-12-02T10:04:05.250Z`)
+/// shown for a person in `zone`, to the second, with the zone's UTC offset:
+/// `2026-12-02 11:04:05 +01:00`. Text that is not such a time is returned
+/// [`shown`] as it is.
+///
+/// ```
+/// use framewarden::text::shown_time;
+/// let paris = jiff::tz::TimeZone::get("Europe/Paris").unwrap();
+/// assert_eq!(shown_time("2026-12-02T10:04:05.250Z", &paris), "2026-12-02 11:04:05 +01:00");
+/// assert_eq!(
+///     shown_time("2026-07-01T22:30:00.000Z", &jiff::tz::TimeZone::UTC),
+///     "2026-07-01 22:30:00 +00:00"
+/// );
+/// ```
+pub fn shown_time(utc: &str, zone: &jiff::tz::TimeZone) -> String {
+    match utc.parse::<jiff::Timestamp>() {
+        Ok(t) => t
+            .to_zoned(zone.clone())
+            .strftime("%Y-%m-%d %H:%M:%S %:z")
+            .to_string(),
+        Err(_) => shown(utc).into_owned(),
+    }
 }
 
 #[cfg(test)]

@@ -13,7 +13,7 @@ use std::path::{Path, PathBuf};
 /// Top-level modules from the bottom up.
 const LAYERS: &[&str] = &[
     "text", "frame", "synth", "decode", "encode", "analysis", "naming", "pipeline", "store", "qc",
-    "watch", "settings", "daemon", "analyze", "status", "demo",
+    "watch", "settings", "daemon", "analyze", "status", "export", "demo",
 ];
 
 /// The non-test code of a file with comments removed, one entry per line.

@@ -13,7 +13,7 @@ use crate::qc::alerts::LISTED;
 use crate::qc::flags::{failure_flag, FrameFlag};
 use crate::qc::recorder::POSITIONS_JSON_SQL;
 use crate::store::iso_time_sql;
-use crate::text::shown;
+use crate::text::{shown, shown_time};
 
 /// One alert episode.
 #[derive(Debug, Clone, Serialize, PartialEq)]
@@ -176,26 +176,27 @@ pub fn flagged_frames(
     Ok(out)
 }
 
-/// The lists as text for a terminal.
+/// The lists as text for a terminal, times shown in `zone`.
 pub fn render(
     alerts: &[AlertRow],
     counts: &[FlagCount],
     flagged: &[FlaggedFrame],
+    zone: &jiff::tz::TimeZone,
     out: &mut String,
 ) {
     if !alerts.is_empty() {
         let open = alerts.iter().filter(|a| a.closed_at.is_none()).count();
         let _ = writeln!(out, "\nalerts ({open} open):");
         for a in alerts {
-            let state = a
-                .closed_at
-                .as_ref()
-                .map_or_else(|| "OPEN".to_string(), |c| format!("closed {c}"));
+            let state = a.closed_at.as_ref().map_or_else(
+                || "OPEN".to_string(),
+                |c| format!("closed {}", shown_time(c, zone)),
+            );
             let _ = writeln!(
                 out,
                 "  [{state}] {} since {}: {}",
                 shown(&a.condition),
-                a.opened_at,
+                shown_time(&a.opened_at, zone),
                 shown(&a.message)
             );
             // The message names up to LISTED positions; a longer list in full here.

@@ -2,7 +2,8 @@
 //! the identity of a frame (path + size + mtime).
 //!
 //! Writing belongs to the single writer thread in [`writer`]; reading for `status`
-//! lives in [`crate::status`]. This file only opens connections, migrates, and
+//! lives in [`crate::status`] and for `export` in [`crate::export`], both through
+//! [`read_run`]. This file only opens connections, migrates, and
 //! answers the watcher's "is this version of this file already recorded?".
 
 pub mod writer;
@@ -348,6 +349,43 @@ pub fn open_read_only(path: &Path) -> Result<Connection, StoreError> {
         });
     }
     Ok(conn)
+}
+
+/// Reads run `run` (by default the current or last one) of the database at
+/// `db` in one read-only snapshot: opens it with [`open_read_only`], picks the
+/// run and calls `read` with the snapshot and the run's number (`None` when the
+/// database has no run yet and none was asked for). The readers (`status`,
+/// `export`) share it, so they open, check and pick runs alike; a running
+/// `watch` is never disturbed (WAL: readers do not block the writer).
+///
+/// # Errors
+/// [`open_read_only`]'s errors, [`StoreError::NoRun`] for a run number the
+/// database does not have, and whatever `read` returns.
+pub fn read_run<T, E: From<StoreError>>(
+    db: &Path,
+    run: Option<i64>,
+    read: impl FnOnce(&Connection, Option<i64>) -> Result<T, E>,
+) -> Result<T, E> {
+    let mut conn = open_read_only(db)?;
+    let tx = conn.transaction().map_err(StoreError::sqlite(db))?;
+    let run_id: Option<i64> = tx
+        .query_row(
+            "SELECT id FROM runs WHERE ?1 IS NULL OR id = ?1 ORDER BY id DESC LIMIT 1",
+            [run],
+            |r| r.get(0),
+        )
+        .optional()
+        .map_err(StoreError::sqlite(db))?;
+    if let (Some(run), None) = (run, run_id) {
+        return Err(StoreError::NoRun {
+            path: db.to_path_buf(),
+            run,
+        }
+        .into());
+    }
+    let out = read(&tx, run_id)?;
+    tx.finish().map_err(StoreError::sqlite(db))?;
+    Ok(out)
 }
 
 /// The file's `application_id`; a file that is not SQLite at all is foreign.
