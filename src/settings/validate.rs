@@ -508,7 +508,7 @@ pub fn alerts(a: AlertsSection, base: &Path) -> Result<AlertSettings, ValueError
     };
     Ok(AlertSettings {
         group_window: Duration::from_secs(
-            positive("alerts.group_window_min", a.group_window_min)?.saturating_mul(60),
+            within("alerts.group_window_min", a.group_window_min, 1, 1_440)? * 60,
         ),
         command,
         webhook,
