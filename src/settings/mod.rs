@@ -405,6 +405,10 @@ exclude_border = true
             ("[watch]\ninclude = [\"[\"]", "watch.include"),
             ("[watch]\nname_pattern = \"(\"", "watch.name_pattern"),
             ("[watch]\nqueue_capacity = 0", "watch.queue_capacity"),
+            (
+                "[store]\nlabel_images = \"some\"",
+                "store.label_images = \"some\" (expected none, flagged or all)",
+            ),
             ("[limits]\nmax_pages = 0", "limits.max_pages"),
         ] {
             let err = parse(text, Path::new("c.toml")).unwrap_err().to_string();
@@ -469,6 +473,7 @@ name_pattern = '^(?P<well>[A-P]\d{2})_t(?P<time_point>\d+)_(?P<channel>[^.]+)\.t
 [store]
 database = "results/night.db"
 batch_max = 100
+label_images = "all"
 [quality]
 min_separability = 0.55
 min_bimodality = 0.5

@@ -17,6 +17,7 @@ use rusqlite::{params, Connection, OptionalExtension, Transaction, TransactionBe
 use crate::analysis::ObjectMeasures;
 use crate::naming::NameParts;
 use crate::pipeline::FileAnalysis;
+use crate::store::label_images::LabelImageWriter;
 use crate::store::{now_ms, FrameKey, FRAME_KEY_SQL};
 use crate::text::shown;
 
@@ -41,7 +42,9 @@ pub enum WriterError {
 pub trait FrameObserver: Send {
     /// A transaction is about to start.
     fn begin(&mut self);
-    /// Frame `frame_id` was just recorded as done with `analysis`.
+    /// Frame `frame_id` was just recorded as done with `analysis`. Returns
+    /// whether the frame got at least one flag (what `label_images =
+    /// "flagged"` keeps an image for).
     ///
     /// # Errors
     /// SQLite errors (the transaction is rolled back and retried).
@@ -50,7 +53,7 @@ pub trait FrameObserver: Send {
         tx: &Transaction<'_>,
         frame_id: i64,
         analysis: &FileAnalysis,
-    ) -> rusqlite::Result<()>;
+    ) -> rusqlite::Result<bool>;
     /// The frame `key` was just recorded as failed.
     ///
     /// # Errors
@@ -92,6 +95,10 @@ pub enum StoreOp {
         attempts: u32,
         /// The result (and recount) to record.
         analysis: Box<FileAnalysis>,
+        /// The first result's label image, encoded (see
+        /// [`crate::encode::encode_label_image`]), when label images are on;
+        /// written once the row commits, if the frame's image is kept.
+        label_image: Option<Vec<u8>>,
     },
     /// A queued frame that produced no result, with the reason.
     Failed {
@@ -164,6 +171,8 @@ pub struct WriterSetup {
     pub on_commit: CommitHook,
     /// Judges each recorded frame inside the transaction; `None` = off.
     pub observer: Option<Box<dyn FrameObserver>>,
+    /// Writes the kept label images after each commit; `None` = off.
+    pub label_images: Option<LabelImageWriter>,
 }
 
 impl Writer {
@@ -185,6 +194,7 @@ impl Writer {
             on_commit: setup.on_commit,
             max_batch: setup.max_batch.max(1),
             observer: setup.observer,
+            label_images: setup.label_images,
         };
         let run_id = state.run.id;
         let thread = std::thread::Builder::new()
@@ -209,7 +219,12 @@ struct WriterState {
     on_commit: CommitHook,
     max_batch: usize,
     observer: Option<Box<dyn FrameObserver>>,
+    label_images: Option<LabelImageWriter>,
 }
+
+/// A recorded frame whose label image is kept: its op's place in the batch
+/// and its row id.
+type KeptImage = (usize, i64);
 
 /// How often the writer, when idle, lets the observer check for a stall.
 const OBSERVER_TICK: Duration = Duration::from_secs(5);
@@ -239,7 +254,19 @@ impl WriterState {
                     Err(_) => break,
                 }
             }
-            self.commit_with_retry(&batch);
+            let kept = self.commit_with_retry(&batch);
+            if let Some(images) = &self.label_images {
+                for (i, frame_id) in kept {
+                    if let StoreOp::Done {
+                        key, label_image, ..
+                    } = &mut batch[i]
+                    {
+                        if let Some(bytes) = label_image.take() {
+                            images.write(frame_id, &key.path, bytes);
+                        }
+                    }
+                }
+            }
             let finished: Vec<FrameKey> = batch
                 .iter()
                 .filter_map(StoreOp::finished_key)
@@ -257,14 +284,18 @@ impl WriterState {
         if let Some(observer) = self.observer.take() {
             observer.close();
         }
+        if let Some(images) = self.label_images.take() {
+            images.finish();
+        }
     }
 
     /// Commits `batch`, retrying: for as long as it takes while the database
     /// is busy, locked, full or failing I/O (conditions that clear: another
     /// program's transaction ends, space is freed), so nothing is dropped and
     /// the bounded channel holds the pipeline back meanwhile; up to
-    /// `GIVE_UP_AFTER` attempts for any other error.
-    fn commit_with_retry(&mut self, batch: &[StoreOp]) {
+    /// `GIVE_UP_AFTER` attempts for any other error. Returns the frames whose
+    /// label image is kept (none when the batch was given up).
+    fn commit_with_retry(&mut self, batch: &[StoreOp]) -> Vec<KeptImage> {
         const GIVE_UP_AFTER: u32 = 5;
         for attempt in 1u32.. {
             if let Some(observer) = self.observer.as_mut() {
@@ -273,12 +304,12 @@ impl WriterState {
             let result = self.commit(batch);
             if let Some(observer) = self.observer.as_mut() {
                 match result {
-                    Ok(()) => observer.committed(),
+                    Ok(_) => observer.committed(),
                     Err(_) => observer.rolled_back(),
                 }
             }
             match result {
-                Ok(()) => return,
+                Ok(kept) => return kept,
                 Err(e) if attempt < GIVE_UP_AFTER || clears_by_itself(&e) => {
                     tracing::warn!(
                         "store: commit of {} ops failed ({e}); retrying (attempt {attempt})",
@@ -290,18 +321,20 @@ impl WriterState {
                     // Nothing is lost for good: the frames stay unrecorded or
                     // queued, and the next start's catch-up scan redoes them.
                     tracing::error!("store: giving up on a batch of {} ops: {e}", batch.len());
-                    return;
+                    return Vec::new();
                 }
             }
         }
+        Vec::new()
     }
 
-    fn commit(&mut self, batch: &[StoreOp]) -> rusqlite::Result<()> {
+    fn commit(&mut self, batch: &[StoreOp]) -> rusqlite::Result<Vec<KeptImage>> {
         let tx = self
             .conn
             .transaction_with_behavior(TransactionBehavior::Immediate)?;
         let mut run = self.run;
-        for op in batch {
+        let mut kept = Vec::new();
+        for (i, op) in batch.iter().enumerate() {
             match op {
                 StoreOp::Queued {
                     key,
@@ -320,10 +353,18 @@ impl WriterState {
                     key,
                     attempts,
                     analysis,
+                    label_image,
                 } => {
-                    let frame_id = record_done(&tx, key, *attempts, analysis)?;
-                    if let (Some(observer), Some(id)) = (self.observer.as_mut(), frame_id) {
-                        observer.frame_done(&tx, id, analysis)?;
+                    let Some(id) = record_done(&tx, key, *attempts, analysis)? else {
+                        continue;
+                    };
+                    let flagged = match self.observer.as_mut() {
+                        Some(observer) => observer.frame_done(&tx, id, analysis)?,
+                        None => false,
+                    };
+                    let keeps = |images: &LabelImageWriter| images.keeps(flagged);
+                    if label_image.is_some() && self.label_images.as_ref().is_some_and(keeps) {
+                        kept.push((i, id));
                     }
                 }
                 StoreOp::Failed {
@@ -351,7 +392,7 @@ impl WriterState {
         )?;
         tx.commit()?;
         self.run = run;
-        Ok(())
+        Ok(kept)
     }
 }
 
@@ -703,6 +744,7 @@ mod tests {
             max_batch: capacity,
             on_commit,
             observer: None,
+            label_images: None,
         };
         Writer::start(conn, policy, run, setup).unwrap()
     }
@@ -729,6 +771,7 @@ mod tests {
             key: a.clone(),
             attempts: 1,
             analysis: analysis(3),
+            label_image: None,
         })
         .unwrap();
         // A repeated completion (e.g. redone after a crash) neither duplicates
@@ -737,6 +780,7 @@ mod tests {
             key: a.clone(),
             attempts: 1,
             analysis: analysis(3),
+            label_image: None,
         })
         .unwrap();
         tx.send(StoreOp::Failed {
@@ -788,6 +832,7 @@ mod tests {
                 key: a.clone(),
                 attempts: 1,
                 analysis: two_results.clone(),
+                label_image: None,
             })
             .unwrap();
         }
@@ -821,6 +866,7 @@ mod tests {
             key: a.clone(),
             attempts: 1,
             analysis: analysis(2),
+            label_image: None,
         })
         .unwrap();
         std::thread::sleep(Duration::from_millis(3500));
