@@ -52,7 +52,7 @@ struct Frame {
     file: String,
     flagged: bool,
     count_source: Option<String>,
-    objects: BTreeMap<u64, (u64, f64, f64)>,
+    objects: BTreeMap<i64, (i64, f64, f64)>,
 }
 
 fn frames(db: &Path) -> Vec<Frame> {
@@ -82,7 +82,9 @@ fn frames(db: &Path) -> Vec<Frame> {
                   WHERE frame_id = ?1 AND result = 'raw'",
             )
             .unwrap()
-            .query_map([f.id], |r| Ok((r.get(0)?, (r.get(1)?, r.get(2)?, r.get(3)?))))
+            .query_map([f.id], |r| {
+                Ok((r.get(0)?, (r.get(1)?, r.get(2)?, r.get(3)?)))
+            })
             .unwrap()
             .collect::<Result<_, _>>()
             .unwrap();
@@ -96,7 +98,7 @@ struct ReadBack {
     dtype: String,
     compression: u32,
     shape: Vec<usize>,
-    labels: BTreeMap<u64, (u64, f64, f64)>,
+    labels: BTreeMap<i64, (i64, f64, f64)>,
 }
 
 /// Every label image in the bench's folder, read by the reference script,
@@ -111,16 +113,19 @@ fn read_back(bench: &Bench) -> BTreeMap<String, ReadBack> {
 fn image_matches(frame: &Frame, image: &ReadBack, failures: &mut Vec<String>) {
     let name = format!("frame {} ({})", frame.id, frame.file);
     // LZW is compression 5 (TIFF 6.0); 16 bits while labels fit.
-    if (image.dtype.as_str(), image.compression, image.shape.as_slice())
-        != ("uint16", 5, [128, 128].as_slice())
+    if (
+        image.dtype.as_str(),
+        image.compression,
+        image.shape.as_slice(),
+    ) != ("uint16", 5, [128, 128].as_slice())
     {
         failures.push(format!(
             "{name}: {} {} {:?}",
             image.dtype, image.compression, image.shape
         ));
     }
-    let labels: Vec<&u64> = image.labels.keys().collect();
-    let objects: Vec<&u64> = frame.objects.keys().collect();
+    let labels: Vec<&i64> = image.labels.keys().collect();
+    let objects: Vec<&i64> = frame.objects.keys().collect();
     if labels != objects {
         failures.push(format!("{name}: labels {labels:?}, objects {objects:?}"));
     }
@@ -214,7 +219,10 @@ fn all_writes_one_image_per_frame_and_none_writes_no_folder() {
     for bench in [&mut all, &mut none] {
         bench.start();
         for i in 0..3u64 {
-            bench.write(&format!("A0{i}.tif"), &frame_bytes(40 + i, 4 + 4 * i as usize, 0.0));
+            bench.write(
+                &format!("A0{i}.tif"),
+                &frame_bytes(40 + i, 4 + 4 * i as usize, 0.0),
+            );
         }
         bench.wait_finished(3, LONG);
         stop(bench);
@@ -249,9 +257,8 @@ fn an_image_that_cannot_be_written_is_logged_and_the_service_goes_on() {
     let logs = bench.logs();
     for name in ["B01.tif", "B02.tif"] {
         assert!(
-            logs.lines().any(|l| l.contains(name)
-                && l.contains("not written")
-                && l.contains("fw-labels")),
+            logs.lines()
+                .any(|l| l.contains(name) && l.contains("not written") && l.contains("fw-labels")),
             "{name}: the log names the frame, the label image and the cause:\n{logs}"
         );
     }
