@@ -556,6 +556,25 @@ mod tests {
     use super::*;
 
     #[test]
+    #[cfg(unix)]
+    fn a_label_image_is_found_by_frame_id_whatever_path_names_the_database() {
+        let dir = tempfile::tempdir().unwrap();
+        let real = dir.path().canonicalize().unwrap();
+        std::fs::create_dir(real.join("data")).unwrap();
+        std::fs::write(real.join("data/night.db"), b"").unwrap();
+        std::os::unix::fs::symlink("data/night.db", real.join("link.db")).unwrap();
+        let expected = real.join("data/night-labels/frame-42.tif");
+        for db in [real.join("data/night.db"), real.join("link.db")] {
+            assert_eq!(label_image_path(&db, 42), expected, "{}", db.display());
+        }
+        assert_eq!(
+            label_image_path(&real.join("data/results"), 7),
+            real.join("data/results-labels/frame-7.tif"),
+            "a database without an extension"
+        );
+    }
+
+    #[test]
     fn an_older_database_is_migrated_forward_keeping_its_rows() {
         let dir = tempfile::tempdir().unwrap();
         let db = dir.path().join("fw.db");

@@ -813,6 +813,59 @@ mod tests {
     }
 
     #[test]
+    fn label_images_are_written_for_recorded_rows_under_their_ids() {
+        use crate::encode::encode_label_image;
+        use crate::store::label_images::LabelImageWriter;
+        use crate::store::{label_image_path, LabelImages};
+        let dir = tempfile::tempdir().unwrap();
+        for keep in [LabelImages::All, LabelImages::Flagged] {
+            let db = dir.path().join(format!("{}.db", keep.name()));
+            let mut conn = open_for_writing(&db).unwrap();
+            let policy = policy(false);
+            let run = open_run(&mut conn, &policy).unwrap();
+            let setup = WriterSetup {
+                capacity: 8,
+                max_batch: 8,
+                on_commit: Box::new(|_| {}),
+                // Without an observer no frame is flagged.
+                observer: None,
+                label_images: LabelImageWriter::start(&db, keep).unwrap(),
+            };
+            let (w, tx) = Writer::start(conn, policy, run, setup).unwrap();
+            let a = key("/acq/a.tif", 10);
+            let done = |k: &FrameKey, labels: &[u32]| StoreOp::Done {
+                key: k.clone(),
+                attempts: 1,
+                analysis: analysis(1),
+                label_image: Some(encode_label_image(2, 1, labels).unwrap()),
+            };
+            tx.send(queued(&a)).unwrap();
+            tx.send(done(&a, &[0, 1])).unwrap();
+            // Done again (redone after a crash): the row is not completed
+            // again, so its image is not replaced.
+            tx.send(done(&a, &[1, 1])).unwrap();
+            // No queued row to complete: no row, no image.
+            tx.send(done(&key("/acq/b.tif", 10), &[1, 0])).unwrap();
+            drop(tx);
+            w.join();
+            let id: i64 = open_for_writing(&db)
+                .unwrap()
+                .query_row("SELECT id FROM frames", [], |r| r.get(0))
+                .unwrap();
+            let path = label_image_path(&db, id);
+            let folder = path.parent().unwrap();
+            if keep == LabelImages::Flagged {
+                assert!(!folder.exists(), "nothing flagged, no folder");
+                continue;
+            }
+            let limits = crate::decode::DecodeLimits::default();
+            let image = crate::decode::read_page(&path, 0, &limits).unwrap();
+            assert_eq!(image.pixels, vec![0, 1]);
+            assert_eq!(std::fs::read_dir(folder).unwrap().count(), 1);
+        }
+    }
+
+    #[test]
     fn both_results_of_a_flattened_frame_keep_their_objects() {
         let dir = tempfile::tempdir().unwrap();
         let db = dir.path().join("fw.db");
