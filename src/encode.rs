@@ -4,9 +4,10 @@
 //!
 //! 16-bit while the labels fit (up to 65,535 objects), 32-bit beyond. Making
 //! the labels is the analysis's ([`crate::analysis::segment_frame`]); naming
-//! the files is the caller's. Encoding ([`encode_label_image`]) and writing
-//! ([`write_label_file`]) are apart, so that the watch service encodes on its
-//! workers and writes only once it knows the frame's row and flags.
+//! the files is the caller's. Holding ([`LabelRuns`]), encoding
+//! ([`encode_label_image`]) and writing ([`write_label_file`]) are apart: the
+//! watch service holds each frame's labels as runs, compactly, until its row
+//! and flags are committed, and encodes only the images it keeps.
 
 use std::io::{Cursor, Write};
 use std::path::{Path, PathBuf};
@@ -42,6 +43,62 @@ pub struct LabelFileError {
     pub path: String,
     /// The cause.
     pub source: EncodeError,
+}
+
+/// A label image held as runs of equal values, row after row: a frame's
+/// labels in far less memory (two numbers per run of background or object
+/// along a row) until they are encoded.
+#[derive(Debug, Clone, PartialEq)]
+pub struct LabelRuns {
+    width: usize,
+    height: usize,
+    /// (label, length) in raster order; lengths sum to `width × height`.
+    runs: Vec<(u32, u32)>,
+}
+
+impl LabelRuns {
+    /// The runs of `labels` (row by row, `width × height` values).
+    ///
+    /// # Errors
+    /// [`EncodeError::Size`] when the labels do not fill the frame.
+    pub fn new(width: usize, height: usize, labels: &[u32]) -> Result<LabelRuns, EncodeError> {
+        if labels.len() != width * height {
+            return Err(EncodeError::Size {
+                got: labels.len(),
+                width,
+                height,
+            });
+        }
+        let mut runs: Vec<(u32, u32)> = Vec::new();
+        for &l in labels {
+            match runs.last_mut() {
+                Some((value, length)) if *value == l && *length < u32::MAX => *length += 1,
+                _ => runs.push((l, 1)),
+            }
+        }
+        Ok(LabelRuns {
+            width,
+            height,
+            runs,
+        })
+    }
+
+    /// The labels again, row by row.
+    pub fn labels(&self) -> Vec<u32> {
+        let mut labels = Vec::with_capacity(self.width * self.height);
+        for &(value, length) in &self.runs {
+            labels.resize(labels.len() + length as usize, value);
+        }
+        labels
+    }
+
+    /// [`encode_label_image`] of these labels.
+    ///
+    /// # Errors
+    /// As [`encode_label_image`].
+    pub fn encode(&self) -> Result<Vec<u8>, EncodeError> {
+        encode_label_image(self.width, self.height, &self.labels())
+    }
 }
 
 /// The TIFF file of `labels` (row by row, `width × height` values), in
@@ -157,6 +214,21 @@ mod tests {
                 .ends_with("x.tif: 1 labels for a 2 x 2 frame"),
             "{err}"
         );
+    }
+
+    #[test]
+    fn runs_hold_the_labels_and_encode_like_them() {
+        // Two rows of 4: runs continue across the row end.
+        let labels = [0, 0, 5, 5, 5, 0, 0, 0];
+        let runs = LabelRuns::new(4, 2, &labels).unwrap();
+        assert_eq!(runs.runs, vec![(0, 2), (5, 3), (0, 3)]);
+        assert_eq!(runs.labels(), labels);
+        assert_eq!(
+            runs.encode().unwrap(),
+            encode_label_image(4, 2, &labels).unwrap()
+        );
+        let err = LabelRuns::new(3, 3, &labels).unwrap_err().to_string();
+        assert_eq!(err, "8 labels for a 3 x 3 frame");
     }
 
     #[test]

@@ -10,7 +10,7 @@ use std::sync::Arc;
 
 use crossbeam_channel::{Receiver, Sender};
 
-use crate::encode::encode_label_image;
+use crate::encode::LabelRuns;
 use crate::pipeline::{
     analyze_file, analyze_file_with_labels, FileAnalysis, FileError, PipelineParams,
 };
@@ -128,15 +128,15 @@ impl Worker {
     }
 
     /// The file's analysis and, when label images are on, its first result's
-    /// label image encoded here, off the writer's thread. An image that
-    /// cannot be encoded is logged and left out; the frame is still recorded.
-    fn analyze(&self, path: &Path) -> Result<(FileAnalysis, Option<Vec<u8>>), FileError> {
+    /// label image as runs (encoded later, only if kept). Labels that do not
+    /// fit the frame are logged and left out; the frame is still recorded.
+    fn analyze(&self, path: &Path) -> Result<(FileAnalysis, Option<LabelRuns>), FileError> {
         if !self.label_images {
             return analyze_file(path, &self.pipeline).map(|a| (a, None));
         }
         let (analysis, labels) = analyze_file_with_labels(path, &self.pipeline)?;
         let r = &analysis.result;
-        let image = encode_label_image(r.width, r.height, &labels)
+        let image = LabelRuns::new(r.width, r.height, &labels)
             .map_err(|e| tracing::error!(file = %shown_path(path), "no label image: {e}"))
             .ok();
         Ok((analysis, image))

@@ -1,12 +1,14 @@
 //! Label images of recorded frames, written after their rows commit.
 //!
-//! The workers encode each frame's label image while they analyze it (the
-//! heavy part); whether it is kept is known only once quality control has
-//! judged the frame in the writer's transaction. After the commit the writer
-//! hands the kept ones, with their frame ids, to the thread here, which writes
-//! each whole or not at all ([`crate::encode::write_label_file`]) to
-//! [`label_image_path`]. A file that cannot be written is logged with its
-//! name and cause; the frame's row is already safe, and the service goes on.
+//! The workers keep each frame's labels as runs ([`LabelRuns`], compact and
+//! cheap to make); whether the image is kept is known only once quality
+//! control has judged the frame in the writer's transaction. After the commit
+//! the writer hands the kept ones, with their frame ids, to the thread here,
+//! which encodes each (LZW, the costly part: off the writer's thread, and
+//! only for kept images) and writes it whole or not at all
+//! ([`crate::encode::write_label_file`]) to [`label_image_path`]. An image
+//! that cannot be written is logged with the frame's file and the cause; the
+//! frame's row is already safe, and the service goes on.
 //!
 //! An image is written only after its row committed, so a crash can lose an
 //! image (the row stays, without one) but never leave one for a row that is not
@@ -17,13 +19,13 @@ use std::thread::JoinHandle;
 
 use crossbeam_channel::{Receiver, Sender};
 
-use crate::encode::{write_label_file, PARTIAL_SUFFIX};
+use crate::encode::{write_label_file, LabelRuns, PARTIAL_SUFFIX};
 use crate::store::{label_image_path, LabelImages};
 use crate::text::{shown, shown_path};
 
 /// Label images waiting to be written before the writer waits in turn: a
-/// bound on the memory they hold (each is a compressed image, mostly far
-/// smaller than its frame).
+/// bound on the memory they hold (each held as runs, mostly far smaller than
+/// its frame).
 const WAITING: usize = 64;
 
 /// One image to write.
@@ -31,7 +33,7 @@ struct Pending {
     frame_id: i64,
     /// The analyzed file, for the log.
     file: String,
-    bytes: Vec<u8>,
+    runs: LabelRuns,
 }
 
 /// The thread that writes label images, and which frames it keeps.
@@ -71,11 +73,11 @@ impl LabelImageWriter {
 
     /// Queues the image of the committed frame `frame_id` (analyzed from
     /// `file`); waits while [`WAITING`] images are queued.
-    pub fn write(&self, frame_id: i64, file: &str, bytes: Vec<u8>) {
+    pub fn write(&self, frame_id: i64, file: &str, runs: LabelRuns) {
         let pending = Pending {
             frame_id,
             file: file.to_owned(),
-            bytes,
+            runs,
         };
         if self.tx.send(pending).is_err() {
             tracing::error!(
@@ -100,21 +102,28 @@ fn write_loop(db: &Path, rx: &Receiver<Pending>) {
     }
     for p in rx {
         let path = label_image_path(db, p.frame_id);
-        let folder = path.parent().map(Path::to_path_buf).unwrap_or_default();
-        // Made on the first image (and again if someone deleted it meanwhile).
-        let written = std::fs::create_dir_all(&folder)
-            .map_err(|e| format!("cannot create the folder {}: {e}", shown_path(&folder)))
-            .and_then(|()| {
-                write_label_file(&path, &p.bytes).map_err(|e| shown(&e.to_string()).into_owned())
-            });
-        if let Err(cause) = written {
+        if let Err(cause) = encode_and_write(&path, &p.runs) {
             tracing::error!(
                 file = %shown(&p.file),
-                "label image of frame {} not written ({cause}); the frame's row is recorded",
-                p.frame_id
+                "label image of frame {} not written ({}); the frame's row is recorded",
+                p.frame_id,
+                shown(&cause)
             );
         }
     }
+}
+
+/// Encodes `runs` and writes them to `path`, making its folder first (on the
+/// first image, and again if someone deleted it meanwhile). The error names
+/// the file or folder and the cause.
+fn encode_and_write(path: &Path, runs: &LabelRuns) -> Result<(), String> {
+    let bytes = runs
+        .encode()
+        .map_err(|e| format!("{}: {e}", path.display()))?;
+    let folder = path.parent().unwrap_or(Path::new("."));
+    std::fs::create_dir_all(folder)
+        .map_err(|e| format!("cannot create the folder {}: {e}", folder.display()))?;
+    write_label_file(path, &bytes).map_err(|e| e.to_string())
 }
 
 /// Removes the `.partial` files a crash left in `folder` (missing = nothing to do).

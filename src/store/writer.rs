@@ -15,6 +15,7 @@ use crossbeam_channel::{Receiver, Sender};
 use rusqlite::{params, Connection, OptionalExtension, Transaction, TransactionBehavior};
 
 use crate::analysis::ObjectMeasures;
+use crate::encode::LabelRuns;
 use crate::naming::NameParts;
 use crate::pipeline::FileAnalysis;
 use crate::store::label_images::LabelImageWriter;
@@ -95,10 +96,9 @@ pub enum StoreOp {
         attempts: u32,
         /// The result (and recount) to record.
         analysis: Box<FileAnalysis>,
-        /// The first result's label image, encoded (see
-        /// [`crate::encode::encode_label_image`]), when label images are on;
-        /// written once the row commits, if the frame's image is kept.
-        label_image: Option<Vec<u8>>,
+        /// The first result's label image when label images are on; encoded
+        /// and written once the row commits, if the frame's image is kept.
+        label_image: Option<LabelRuns>,
     },
     /// A queued frame that produced no result, with the reason.
     Failed {
@@ -261,8 +261,8 @@ impl WriterState {
                         key, label_image, ..
                     } = &mut batch[i]
                     {
-                        if let Some(bytes) = label_image.take() {
-                            images.write(frame_id, &key.path, bytes);
+                        if let Some(runs) = label_image.take() {
+                            images.write(frame_id, &key.path, runs);
                         }
                     }
                 }
@@ -814,7 +814,6 @@ mod tests {
 
     #[test]
     fn label_images_are_written_for_recorded_rows_under_their_ids() {
-        use crate::encode::encode_label_image;
         use crate::store::label_images::LabelImageWriter;
         use crate::store::{label_image_path, LabelImages};
         let dir = tempfile::tempdir().unwrap();
@@ -837,7 +836,7 @@ mod tests {
                 key: k.clone(),
                 attempts: 1,
                 analysis: analysis(1),
-                label_image: Some(encode_label_image(2, 1, labels).unwrap()),
+                label_image: Some(LabelRuns::new(2, 1, labels).unwrap()),
             };
             tx.send(queued(&a)).unwrap();
             tx.send(done(&a, &[0, 1])).unwrap();
