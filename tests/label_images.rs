@@ -263,3 +263,56 @@ fn an_image_that_cannot_be_written_is_logged_and_the_service_goes_on() {
         );
     }
 }
+
+#[test]
+fn a_crash_and_restart_duplicate_no_row_and_leave_only_whole_images() {
+    let mut bench = Bench::with_config("", "label_images = \"all\"\n");
+    bench.start();
+    for i in 0..6u64 {
+        bench.write(&format!("C{i:02}.tif"), &frame_bytes(60 + i, 8, 0.0));
+    }
+    watch_support::wait_for("some frames to be recorded", LONG, || {
+        bench.rows().iter().any(|r| r.status == "done")
+    });
+    bench.kill_hard();
+    // What an image write cut short by the crash would leave.
+    let folder = bench.dir.path().join("fw-labels");
+    std::fs::create_dir_all(&folder).unwrap();
+    let partial = folder.join("frame-999.tif.partial");
+    std::fs::write(&partial, b"cut short").unwrap();
+    bench.start();
+    for i in 6..12u64 {
+        bench.write(&format!("C{i:02}.tif"), &frame_bytes(60 + i, 8, 0.0));
+    }
+    let rows = bench.wait_finished(12, LONG);
+    stop(&mut bench);
+
+    let mut names: Vec<&str> = rows.iter().map(|r| r.path.as_str()).collect();
+    names.sort_unstable();
+    names.dedup();
+    assert_eq!(names.len(), 12, "a file recorded twice: {rows:?}");
+    assert!(rows.iter().all(|r| r.status == "done"), "{rows:?}");
+    assert!(!partial.exists(), "the restart removes what a crash left");
+    // A frame committed just before the kill may have no image; every image
+    // there is whole, belongs to a row and matches it, and every frame after
+    // the restart has one.
+    let frames = frames(&bench.db);
+    let images = read_back(&bench);
+    let mut failures = Vec::new();
+    for f in &frames {
+        let after_restart = f.file.as_str() >= bench.acq.join("C06.tif").to_str().unwrap();
+        match images.get(&format!("fw-labels/frame-{}.tif", f.id)) {
+            Some(image) => image_matches(f, image, &mut failures),
+            None if after_restart => failures.push(format!("{}: no image", f.file)),
+            None => {}
+        }
+    }
+    assert!(
+        images.keys().all(|k| frames
+            .iter()
+            .any(|f| *k == format!("fw-labels/frame-{}.tif", f.id))),
+        "an image without a row: {:?}",
+        images.keys()
+    );
+    common::check(failures, "label images after a crash");
+}
