@@ -20,7 +20,7 @@ use std::thread::JoinHandle;
 use crossbeam_channel::{Receiver, Sender};
 
 use crate::encode::{write_label_file, LabelRuns, PARTIAL_SUFFIX};
-use crate::store::{label_image_path, LabelImages};
+use crate::store::{label_folder, label_image_path, LabelImages};
 use crate::text::{shown, shown_path};
 
 /// Label images waiting to be written before the writer waits in turn: a
@@ -97,9 +97,7 @@ impl LabelImageWriter {
 }
 
 fn write_loop(db: &Path, rx: &Receiver<Pending>) {
-    if let Some(folder) = label_image_path(db, 0).parent() {
-        remove_partial_files(folder);
-    }
+    remove_partial_files(&label_folder(db));
     for p in rx {
         let path = label_image_path(db, p.frame_id);
         if let Err(cause) = encode_and_write(&path, &p.runs) {

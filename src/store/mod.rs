@@ -110,13 +110,17 @@ impl LabelImages {
 /// itself, so every command finds the images the service wrote. The folder
 /// holds nothing but these images: deleting it loses nothing else.
 pub fn label_image_path(db: &Path, frame_id: i64) -> PathBuf {
+    label_folder(db).join(format!("frame-{frame_id}.tif"))
+}
+
+/// The folder [`label_image_path`] puts a database's label images in.
+pub(crate) fn label_folder(db: &Path) -> PathBuf {
     let real = real_file(db);
     let stem = real.file_stem().map_or_else(
         || "framewarden".into(),
         |s| s.to_string_lossy().into_owned(),
     );
     real.with_file_name(format!("{stem}-labels"))
-        .join(format!("frame-{frame_id}.tif"))
 }
 
 /// Errors opening or using the database, with what to do about them.
