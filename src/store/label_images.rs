@@ -25,8 +25,9 @@ use crate::text::{shown, shown_path};
 
 /// Label images waiting to be written before the writer waits in turn: a
 /// bound on the memory they hold (each held as runs, mostly far smaller than
-/// its frame).
-const WAITING: usize = 64;
+/// its frame) and on the encoding left at shutdown (a 2048 × 2048 image
+/// takes a few analysis times).
+const WAITING: usize = 16;
 
 /// One image to write.
 struct Pending {
