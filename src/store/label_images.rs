@@ -73,7 +73,7 @@ impl LabelImageWriter {
     }
 
     /// Queues the image of the committed frame `frame_id` (analyzed from
-    /// `file`); waits while [`WAITING`] images are queued.
+    /// `file`); waits while 16 images are queued.
     pub fn write(&self, frame_id: i64, file: &str, runs: LabelRuns) {
         let pending = Pending {
             frame_id,
