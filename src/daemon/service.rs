@@ -20,8 +20,9 @@ use notify::Watcher;
 use crate::daemon::worker::Worker;
 use crate::qc::recorder::{QcError, QcRecorder, QcSetup};
 use crate::settings::Settings;
+use crate::store::label_images::LabelImageWriter;
 use crate::store::writer::{open_run, RunPolicy, StoreOp, Writer, WriterError, WriterSetup};
-use crate::store::{self, FrameKey, StoreError};
+use crate::store::{self, FrameKey, LabelImages, StoreError};
 use crate::text::shown;
 use crate::watch::scheduler::{scan_loop, SchedMsg, Scheduler};
 use crate::watch::watcher::{start_watcher, WatcherError};
@@ -191,6 +192,12 @@ impl Service {
                 }
             }),
             observer: Some(Box::new(recorder)),
+            label_images: LabelImageWriter::start(db, settings.store.label_images).map_err(
+                |source| WatchError::Start {
+                    what: "the label image thread".into(),
+                    source,
+                },
+            )?,
         };
         let (writer, store_tx) =
             Writer::start(conn, policy, run, setup).map_err(|source| WatchError::Writer {
@@ -205,6 +212,7 @@ impl Service {
         for i in 0..watch.workers {
             let worker = Worker {
                 pipeline: Arc::clone(&pipeline),
+                label_images: settings.store.label_images != LabelImages::None,
                 retry_limit: watch.retry_limit,
                 work_rx: work_rx.clone(),
                 store_tx: store_tx.clone(),

@@ -4,12 +4,16 @@
 //! or changed while it was read.
 
 use std::panic::{catch_unwind, AssertUnwindSafe};
+use std::path::Path;
 use std::sync::atomic::{AtomicBool, Ordering};
 use std::sync::Arc;
 
 use crossbeam_channel::{Receiver, Sender};
 
-use crate::pipeline::{analyze_file, PipelineParams};
+use crate::encode::LabelRuns;
+use crate::pipeline::{
+    analyze_file, analyze_file_with_labels, FileAnalysis, FileError, PipelineParams,
+};
 use crate::store::writer::StoreOp;
 use crate::store::FrameKey;
 use crate::text::{shown, shown_path};
@@ -43,6 +47,8 @@ enum Next {
 
 pub(crate) struct Worker {
     pub(crate) pipeline: Arc<PipelineParams>,
+    /// Whether each frame's label image is made (kept or not after its flags).
+    pub(crate) label_images: bool,
     pub(crate) retry_limit: u32,
     pub(crate) work_rx: Receiver<Job>,
     pub(crate) store_tx: Sender<StoreOp>,
@@ -58,21 +64,21 @@ impl Worker {
                 // Released: the row stays queued; the next start redoes it.
                 break;
             }
-            let outcome =
-                catch_unwind(AssertUnwindSafe(|| analyze_file(&job.path, &self.pipeline)));
+            let outcome = catch_unwind(AssertUnwindSafe(|| self.analyze(&job.path)));
             let unchanged = FrameKey::of(&job.path).is_ok_and(|k| k == job.key);
             let limit = self.retry_limit;
             let next = match outcome {
                 Ok(Ok(_)) | Ok(Err(_)) if !unchanged => {
                     retry_or_fail(&job, limit, "the file changed while it was read".into())
                 }
-                Ok(Ok(analysis)) => {
+                Ok(Ok((analysis, label_image))) => {
                     // The frame's log line is written once its row commits (qc::record).
                     self.progress.done.fetch_add(1, Ordering::Relaxed);
                     Next::Record(StoreOp::Done {
                         key: job.key.clone(),
                         attempts: job.attempts + 1,
                         analysis: Box::new(analysis),
+                        label_image,
                     })
                 }
                 Ok(Err(e)) if e.is_incomplete() => {
@@ -119,6 +125,21 @@ impl Worker {
             }
             self.progress.finished.fetch_add(1, Ordering::Relaxed);
         }
+    }
+
+    /// The file's analysis and, when label images are on, its first result's
+    /// label image as runs (encoded later, only if kept). Labels that do not
+    /// fit the frame are logged and left out; the frame is still recorded.
+    fn analyze(&self, path: &Path) -> Result<(FileAnalysis, Option<LabelRuns>), FileError> {
+        if !self.label_images {
+            return analyze_file(path, &self.pipeline).map(|a| (a, None));
+        }
+        let (analysis, labels) = analyze_file_with_labels(path, &self.pipeline)?;
+        let r = &analysis.result;
+        let image = LabelRuns::new(r.width, r.height, &labels)
+            .map_err(|e| tracing::error!(file = %shown_path(path), "no label image: {e}"))
+            .ok();
+        Ok((analysis, image))
     }
 }
 

@@ -128,7 +128,7 @@ impl FrameObserver for QcRecorder {
         tx: &Transaction<'_>,
         frame_id: i64,
         analysis: &FileAnalysis,
-    ) -> rusqlite::Result<()> {
+    ) -> rusqlite::Result<bool> {
         let (run_id, file, position, latency_ms) = frame_row(tx, frame_id)?;
         self.switch_run(tx, run_id)?;
         let at_ms = now_ms();
@@ -168,7 +168,7 @@ impl FrameObserver for QcRecorder {
             flags: flags.join(","),
             latency_ms: latency_ms.unwrap_or(0),
         });
-        Ok(())
+        Ok(!flags.is_empty())
     }
 
     /// Counts a frame recorded as failed towards the failure rate.

@@ -274,13 +274,14 @@ fn millis(d: std::time::Duration) -> u64 {
     u64::try_from(d.as_millis()).unwrap_or(u64::MAX)
 }
 
-/// `[store]`: the database.
+/// `[store]`: the database and the label images.
 #[derive(Debug, Deserialize, Serialize)]
 #[serde(deny_unknown_fields, default)]
 #[allow(missing_docs)] // each key is documented in config/framewarden.toml
 pub struct StoreSection {
     pub database: PathBuf,
     pub batch_max: usize,
+    pub label_images: String,
 }
 
 impl From<&StoreSettings> for StoreSection {
@@ -288,6 +289,7 @@ impl From<&StoreSettings> for StoreSection {
         StoreSection {
             database: s.database.clone(),
             batch_max: s.batch_max,
+            label_images: s.label_images.name().into(),
         }
     }
 }

@@ -407,6 +407,10 @@ exclude_border = true
             ("[watch]\ninclude = [\"[\"]", "watch.include"),
             ("[watch]\nname_pattern = \"(\"", "watch.name_pattern"),
             ("[watch]\nqueue_capacity = 0", "watch.queue_capacity"),
+            (
+                "[store]\nlabel_images = \"some\"",
+                "store.label_images = \"some\" (expected none, flagged or all)",
+            ),
             ("[limits]\nmax_pages = 0", "limits.max_pages"),
             // Values that once overflowed an allocation, a clock or a shift in
             // a thread of the running service (each refused at load now).
@@ -510,6 +514,7 @@ name_pattern = '^(?P<well>[A-P]\d{2})_t(?P<time_point>\d+)_(?P<channel>[^.]+)\.t
 [store]
 database = "results/night.db"
 batch_max = 100
+label_images = "all"
 [quality]
 min_separability = 0.55
 min_bimodality = 0.5

@@ -21,7 +21,7 @@ use crate::settings::document::{
     AlertsSection, CalibrationSection, FlatFieldFiles, FrameFile, LimitsSection, QualitySection,
     SegmentSection, StoreSection, WatchSection,
 };
-use crate::store::StoreSettings;
+use crate::store::{LabelImages, StoreSettings};
 use crate::watch::{default_workers, BadPattern, PathFilter, WatchMode, WatchSettings};
 
 /// A value the configuration does not accept, named by its key.
@@ -339,9 +339,17 @@ pub fn watch(w: WatchSection, base: &Path) -> Result<WatchSettings, ValueError> 
 
 /// `[store]`; a relative database path is anchored at `base`.
 pub fn store(s: StoreSection, base: &Path) -> Result<StoreSettings, ValueError> {
+    let label_images = LabelImages::parse(&s.label_images).ok_or_else(|| {
+        choice(
+            "store.label_images",
+            &s.label_images,
+            "none, flagged or all",
+        )
+    })?;
     Ok(StoreSettings {
         database: base.join(s.database),
         batch_max: within("store.batch_max", s.batch_max, 1, 100_000)?,
+        label_images,
     })
 }
 

@@ -6,6 +6,7 @@
 //! [`read_run`]. This file only opens connections, migrates, and
 //! answers the watcher's "is this version of this file already recorded?".
 
+pub mod label_images;
 pub mod writer;
 
 use std::path::{Path, PathBuf};
@@ -53,14 +54,16 @@ pub fn iso_time_sql(column: &str) -> String {
     format!("strftime('%Y-%m-%dT%H:%M:%fZ', {column} / 1000.0, 'unixepoch')")
 }
 
-/// The `[store]` settings: where the database is and how much one
-/// transaction records.
+/// The `[store]` settings: where the database is, how much one
+/// transaction records, and which frames get a label image.
 #[derive(Debug, Clone, PartialEq)]
 pub struct StoreSettings {
     /// The SQLite file.
     pub database: PathBuf,
     /// Most operations committed in one transaction.
     pub batch_max: usize,
+    /// Which analyzed frames get a label image (see [`label_image_path`]).
+    pub label_images: LabelImages,
 }
 
 impl Default for StoreSettings {
@@ -68,8 +71,58 @@ impl Default for StoreSettings {
         StoreSettings {
             database: PathBuf::from("framewarden.db"),
             batch_max: 500,
+            label_images: LabelImages::Flagged,
         }
     }
+}
+
+/// Which analyzed frames the watch service writes a label image for.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum LabelImages {
+    /// None: no folder is made.
+    None,
+    /// Frames that got at least one flag: the ones a person looks at.
+    Flagged,
+    /// Every analyzed frame.
+    All,
+}
+
+impl LabelImages {
+    /// The name written in the configuration: `none`, `flagged` or `all`.
+    pub fn name(self) -> &'static str {
+        match self {
+            LabelImages::None => "none",
+            LabelImages::Flagged => "flagged",
+            LabelImages::All => "all",
+        }
+    }
+
+    /// The choice named `name` (as [`LabelImages::name`] writes it).
+    pub fn parse(name: &str) -> Option<LabelImages> {
+        [LabelImages::None, LabelImages::Flagged, LabelImages::All]
+            .into_iter()
+            .find(|l| l.name() == name)
+    }
+}
+
+/// The label image of frame `frame_id` (the `frames.id` of its row) recorded
+/// in the database `db`: `frame-<id>.tif` in the folder `<database file
+/// stem>-labels` beside the database. Whatever path names the database (a
+/// symbolic link, a relative path), the folder is the one beside the file
+/// itself, so every command finds the images the service wrote. The folder
+/// holds nothing but these images: deleting it loses nothing else.
+pub fn label_image_path(db: &Path, frame_id: i64) -> PathBuf {
+    label_folder(db).join(format!("frame-{frame_id}.tif"))
+}
+
+/// The folder [`label_image_path`] puts a database's label images in.
+pub(crate) fn label_folder(db: &Path) -> PathBuf {
+    let real = real_file(db);
+    let stem = real.file_stem().map_or_else(
+        || "framewarden".into(),
+        |s| s.to_string_lossy().into_owned(),
+    );
+    real.with_file_name(format!("{stem}-labels"))
 }
 
 /// Errors opening or using the database, with what to do about them.
@@ -544,6 +597,25 @@ pub fn queued_frames(conn: &Connection) -> rusqlite::Result<Vec<FrameKey>> {
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    #[test]
+    #[cfg(unix)]
+    fn a_label_image_is_found_by_frame_id_whatever_path_names_the_database() {
+        let dir = tempfile::tempdir().unwrap();
+        let real = dir.path().canonicalize().unwrap();
+        std::fs::create_dir(real.join("data")).unwrap();
+        std::fs::write(real.join("data/night.db"), b"").unwrap();
+        std::os::unix::fs::symlink("data/night.db", real.join("link.db")).unwrap();
+        let expected = real.join("data/night-labels/frame-42.tif");
+        for db in [real.join("data/night.db"), real.join("link.db")] {
+            assert_eq!(label_image_path(&db, 42), expected, "{}", db.display());
+        }
+        assert_eq!(
+            label_image_path(&real.join("data/results"), 7),
+            real.join("data/results-labels/frame-7.tif"),
+            "a database without an extension"
+        );
+    }
 
     #[test]
     fn an_older_database_is_migrated_forward_keeping_its_rows() {

@@ -15,8 +15,10 @@ use crossbeam_channel::{Receiver, Sender};
 use rusqlite::{params, Connection, OptionalExtension, Transaction, TransactionBehavior};
 
 use crate::analysis::ObjectMeasures;
+use crate::encode::LabelRuns;
 use crate::naming::NameParts;
 use crate::pipeline::FileAnalysis;
+use crate::store::label_images::LabelImageWriter;
 use crate::store::{now_ms, FrameKey, FRAME_KEY_SQL};
 use crate::text::shown;
 
@@ -41,7 +43,9 @@ pub enum WriterError {
 pub trait FrameObserver: Send {
     /// A transaction is about to start.
     fn begin(&mut self);
-    /// Frame `frame_id` was just recorded as done with `analysis`.
+    /// Frame `frame_id` was just recorded as done with `analysis`. Returns
+    /// whether the frame got at least one flag (what `label_images =
+    /// "flagged"` keeps an image for).
     ///
     /// # Errors
     /// SQLite errors (the transaction is rolled back and retried).
@@ -50,7 +54,7 @@ pub trait FrameObserver: Send {
         tx: &Transaction<'_>,
         frame_id: i64,
         analysis: &FileAnalysis,
-    ) -> rusqlite::Result<()>;
+    ) -> rusqlite::Result<bool>;
     /// The frame `key` was just recorded as failed.
     ///
     /// # Errors
@@ -92,6 +96,9 @@ pub enum StoreOp {
         attempts: u32,
         /// The result (and recount) to record.
         analysis: Box<FileAnalysis>,
+        /// The first result's label image when label images are on; encoded
+        /// and written once the row commits, if the frame's image is kept.
+        label_image: Option<LabelRuns>,
     },
     /// A queued frame that produced no result, with the reason.
     Failed {
@@ -164,6 +171,8 @@ pub struct WriterSetup {
     pub on_commit: CommitHook,
     /// Judges each recorded frame inside the transaction; `None` = off.
     pub observer: Option<Box<dyn FrameObserver>>,
+    /// Writes the kept label images after each commit; `None` = off.
+    pub label_images: Option<LabelImageWriter>,
 }
 
 impl Writer {
@@ -185,6 +194,7 @@ impl Writer {
             on_commit: setup.on_commit,
             max_batch: setup.max_batch.max(1),
             observer: setup.observer,
+            label_images: setup.label_images,
         };
         let run_id = state.run.id;
         let thread = std::thread::Builder::new()
@@ -215,7 +225,12 @@ struct WriterState {
     on_commit: CommitHook,
     max_batch: usize,
     observer: Option<Box<dyn FrameObserver>>,
+    label_images: Option<LabelImageWriter>,
 }
+
+/// A recorded frame whose label image is kept: its op's place in the batch
+/// and its row id.
+type KeptImage = (usize, i64);
 
 /// How often the writer, when idle, lets the observer check for a stall.
 const OBSERVER_TICK: Duration = Duration::from_secs(5);
@@ -245,7 +260,19 @@ impl WriterState {
                     Err(_) => break,
                 }
             }
-            self.commit_with_retry(&batch);
+            let kept = self.commit_with_retry(&batch);
+            if let Some(images) = &self.label_images {
+                for (i, frame_id) in kept {
+                    if let StoreOp::Done {
+                        key, label_image, ..
+                    } = &mut batch[i]
+                    {
+                        if let Some(runs) = label_image.take() {
+                            images.write(frame_id, &key.path, runs);
+                        }
+                    }
+                }
+            }
             let finished: Vec<FrameKey> = batch
                 .iter()
                 .filter_map(StoreOp::finished_key)
@@ -263,14 +290,18 @@ impl WriterState {
         if let Some(observer) = self.observer.take() {
             observer.close();
         }
+        if let Some(images) = self.label_images.take() {
+            images.finish();
+        }
     }
 
     /// Commits `batch`, retrying: for as long as it takes while the database
     /// is busy, locked, full or failing I/O (conditions that clear: another
     /// program's transaction ends, space is freed), so nothing is dropped and
     /// the bounded channel holds the pipeline back meanwhile; up to
-    /// `GIVE_UP_AFTER` attempts for any other error.
-    fn commit_with_retry(&mut self, batch: &[StoreOp]) {
+    /// `GIVE_UP_AFTER` attempts for any other error. Returns the frames whose
+    /// label image is kept (none when the batch was given up).
+    fn commit_with_retry(&mut self, batch: &[StoreOp]) -> Vec<KeptImage> {
         const GIVE_UP_AFTER: u32 = 5;
         for attempt in 1u32.. {
             if let Some(observer) = self.observer.as_mut() {
@@ -279,12 +310,12 @@ impl WriterState {
             let result = self.commit(batch);
             if let Some(observer) = self.observer.as_mut() {
                 match result {
-                    Ok(()) => observer.committed(),
+                    Ok(_) => observer.committed(),
                     Err(_) => observer.rolled_back(),
                 }
             }
             match result {
-                Ok(()) => return,
+                Ok(kept) => return kept,
                 Err(e) if attempt < GIVE_UP_AFTER || clears_by_itself(&e) => {
                     tracing::warn!(
                         "store: commit of {} ops failed ({e}); retrying (attempt {attempt})",
@@ -296,18 +327,20 @@ impl WriterState {
                     // Nothing is lost for good: the frames stay unrecorded or
                     // queued, and the next start's catch-up scan redoes them.
                     tracing::error!("store: giving up on a batch of {} ops: {e}", batch.len());
-                    return;
+                    return Vec::new();
                 }
             }
         }
+        Vec::new()
     }
 
-    fn commit(&mut self, batch: &[StoreOp]) -> rusqlite::Result<()> {
+    fn commit(&mut self, batch: &[StoreOp]) -> rusqlite::Result<Vec<KeptImage>> {
         let tx = self
             .conn
             .transaction_with_behavior(TransactionBehavior::Immediate)?;
         let mut run = self.run;
-        for op in batch {
+        let mut kept = Vec::new();
+        for (i, op) in batch.iter().enumerate() {
             match op {
                 StoreOp::Queued {
                     key,
@@ -326,10 +359,18 @@ impl WriterState {
                     key,
                     attempts,
                     analysis,
+                    label_image,
                 } => {
-                    let frame_id = record_done(&tx, key, *attempts, analysis)?;
-                    if let (Some(observer), Some(id)) = (self.observer.as_mut(), frame_id) {
-                        observer.frame_done(&tx, id, analysis)?;
+                    let Some(id) = record_done(&tx, key, *attempts, analysis)? else {
+                        continue;
+                    };
+                    let flagged = match self.observer.as_mut() {
+                        Some(observer) => observer.frame_done(&tx, id, analysis)?,
+                        None => false,
+                    };
+                    let keeps = |images: &LabelImageWriter| images.keeps(flagged);
+                    if label_image.is_some() && self.label_images.as_ref().is_some_and(keeps) {
+                        kept.push((i, id));
                     }
                 }
                 StoreOp::Failed {
@@ -357,7 +398,7 @@ impl WriterState {
         )?;
         tx.commit()?;
         self.run = run;
-        Ok(())
+        Ok(kept)
     }
 }
 
@@ -709,6 +750,7 @@ mod tests {
             max_batch: capacity,
             on_commit,
             observer: None,
+            label_images: None,
         };
         Writer::start(conn, policy, run, setup).unwrap()
     }
@@ -735,6 +777,7 @@ mod tests {
             key: a.clone(),
             attempts: 1,
             analysis: analysis(3),
+            label_image: None,
         })
         .unwrap();
         // A repeated completion (e.g. redone after a crash) neither duplicates
@@ -743,6 +786,7 @@ mod tests {
             key: a.clone(),
             attempts: 1,
             analysis: analysis(3),
+            label_image: None,
         })
         .unwrap();
         tx.send(StoreOp::Failed {
@@ -775,6 +819,58 @@ mod tests {
     }
 
     #[test]
+    fn label_images_are_written_for_recorded_rows_under_their_ids() {
+        use crate::store::label_images::LabelImageWriter;
+        use crate::store::{label_image_path, LabelImages};
+        let dir = tempfile::tempdir().unwrap();
+        for keep in [LabelImages::All, LabelImages::Flagged] {
+            let db = dir.path().join(format!("{}.db", keep.name()));
+            let mut conn = open_for_writing(&db).unwrap();
+            let policy = policy(false);
+            let run = open_run(&mut conn, &policy).unwrap();
+            let setup = WriterSetup {
+                capacity: 8,
+                max_batch: 8,
+                on_commit: Box::new(|_| {}),
+                // Without an observer no frame is flagged.
+                observer: None,
+                label_images: LabelImageWriter::start(&db, keep).unwrap(),
+            };
+            let (w, tx) = Writer::start(conn, policy, run, setup).unwrap();
+            let a = key("/acq/a.tif", 10);
+            let done = |k: &FrameKey, labels: &[u32]| StoreOp::Done {
+                key: k.clone(),
+                attempts: 1,
+                analysis: analysis(1),
+                label_image: Some(LabelRuns::new(2, 1, labels).unwrap()),
+            };
+            tx.send(queued(&a)).unwrap();
+            tx.send(done(&a, &[0, 1])).unwrap();
+            // Done again (redone after a crash): the row is not completed
+            // again, so its image is not replaced.
+            tx.send(done(&a, &[1, 1])).unwrap();
+            // No queued row to complete: no row, no image.
+            tx.send(done(&key("/acq/b.tif", 10), &[1, 0])).unwrap();
+            drop(tx);
+            w.join();
+            let id: i64 = open_for_writing(&db)
+                .unwrap()
+                .query_row("SELECT id FROM frames", [], |r| r.get(0))
+                .unwrap();
+            let path = label_image_path(&db, id);
+            let folder = path.parent().unwrap();
+            if keep == LabelImages::Flagged {
+                assert!(!folder.exists(), "nothing flagged, no folder");
+                continue;
+            }
+            let limits = crate::decode::DecodeLimits::default();
+            let image = crate::decode::read_page(&path, 0, &limits).unwrap();
+            assert_eq!(image.pixels, vec![0, 1]);
+            assert_eq!(std::fs::read_dir(folder).unwrap().count(), 1);
+        }
+    }
+
+    #[test]
     fn both_results_of_a_flattened_frame_keep_their_objects() {
         let dir = tempfile::tempdir().unwrap();
         let db = dir.path().join("fw.db");
@@ -794,6 +890,7 @@ mod tests {
                 key: a.clone(),
                 attempts: 1,
                 analysis: two_results.clone(),
+                label_image: None,
             })
             .unwrap();
         }
@@ -827,6 +924,7 @@ mod tests {
             key: a.clone(),
             attempts: 1,
             analysis: analysis(2),
+            label_image: None,
         })
         .unwrap();
         std::thread::sleep(Duration::from_millis(3500));

@@ -43,6 +43,12 @@ pub struct Bench {
 impl Bench {
     /// Writes a config with a short settle time and quick retries.
     pub fn new(extra_watch: &str) -> Bench {
+        Bench::with_config(extra_watch, "")
+    }
+
+    /// [`Bench::new`] with `after_store` appended to the config's `[store]`
+    /// section: more `[store]` keys, then any other sections.
+    pub fn with_config(extra_watch: &str, after_store: &str) -> Bench {
         let dir = tempfile::tempdir().unwrap();
         let acq = dir.path().join("acq");
         std::fs::create_dir(&acq).unwrap();
@@ -60,7 +66,9 @@ impl Bench {
         }
         std::fs::write(
             &config,
-            format!("[watch]\n{watch}{extra_watch}\n[store]\ndatabase = \"fw.db\"\n"),
+            format!(
+                "[watch]\n{watch}{extra_watch}\n[store]\ndatabase = \"fw.db\"\n{after_store}\n"
+            ),
         )
         .unwrap();
         // The service canonicalises folders; keep the same spelling here.
