@@ -25,6 +25,7 @@ const MIGRATIONS: &[&str] = &[
     include_str!("schema_v4.sql"),
     include_str!("schema_v5.sql"),
     include_str!("schema_v6.sql"),
+    include_str!("schema_v7.sql"),
 ];
 
 /// The schema version this build writes and reads.
@@ -41,6 +42,18 @@ pub const POSITION_SQL: &str = "TRIM(COALESCE(well, '') \
 /// SQL for the count used of a frame row: the recount where the
 /// uneven-illumination remedy ran, otherwise the first result's.
 pub const COUNT_USED_SQL: &str = "COALESCE(recount_object_count, object_count)";
+
+/// SQL ordering a run's frame rows in acquisition order: by the time point
+/// the file-name pattern names, then by when the file was first written
+/// (`acquired_ns`: the modification time of its first version), then by name.
+/// Every per-position sequence (status, the quality monitor) follows it, never
+/// the order rows were written in.
+pub const ACQUISITION_ORDER_SQL: &str = "COALESCE(time_point_index, -1), acquired_ns, file, id";
+
+/// SQL true for a frame row that counts in summaries: not replaced by a
+/// later version with other pixels, and not a re-save of an earlier version's
+/// pixels. Each frame of a run counts once.
+pub const COUNTED_SQL: &str = "superseded_by IS NULL AND same_pixels_as IS NULL";
 
 /// SQL selecting exactly one version of a file: bind [`FrameKey::sql_params`]
 /// as `?1`, `?2`, `?3`.
@@ -320,17 +333,76 @@ pub fn open_for_writing(path: &Path) -> Result<Connection, StoreError> {
 
 /// Opens an existing database read-only, checking it is ours and not newer.
 ///
+/// A database in WAL mode is read through a shared-memory file beside it
+/// (`-shm`), which SQLite creates on first read. In a folder the reader cannot
+/// write (another user's, the service's own under systemd) that fails; a
+/// database stopped cleanly has no write-ahead log left to read, so it is then
+/// opened as immutable (SQLite's `immutable=1` URI parameter: no locks, no
+/// shared memory). With a log still there (a service running or killed) the
+/// error stands, since an immutable open would not see the log's frames.
+///
 /// # Errors
 /// [`StoreError::Missing`], [`StoreError::Foreign`], [`StoreError::TooNew`].
 pub fn open_read_only(path: &Path) -> Result<Connection, StoreError> {
     if !path.is_file() {
         return Err(StoreError::Missing(path.to_path_buf()));
     }
-    let conn = Connection::open_with_flags(
-        path,
-        OpenFlags::SQLITE_OPEN_READ_ONLY | OpenFlags::SQLITE_OPEN_NO_MUTEX,
+    let flags = OpenFlags::SQLITE_OPEN_READ_ONLY | OpenFlags::SQLITE_OPEN_NO_MUTEX;
+    let conn = Connection::open_with_flags(path, flags).map_err(StoreError::sqlite(path))?;
+    match check_ours(&conn, path) {
+        Err(StoreError::Sqlite { source, .. })
+            if cannot_share_memory(&source) && !has_write_ahead_log(path) =>
+        {
+            let conn = Connection::open_with_flags(
+                immutable_uri(path),
+                flags | OpenFlags::SQLITE_OPEN_URI,
+            )
+            .map_err(StoreError::sqlite(path))?;
+            check_ours(&conn, path)?;
+            Ok(conn)
+        }
+        checked => checked.map(|()| conn),
+    }
+}
+
+/// The errors SQLite gives when it cannot create or write a WAL database's
+/// shared-memory file.
+fn cannot_share_memory(e: &rusqlite::Error) -> bool {
+    matches!(
+        e.sqlite_error_code(),
+        Some(rusqlite::ErrorCode::CannotOpen | rusqlite::ErrorCode::ReadOnly)
     )
-    .map_err(StoreError::sqlite(path))?;
+}
+
+/// True when `<db>-wal` holds frames not yet copied into the database.
+fn has_write_ahead_log(db: &Path) -> bool {
+    let mut wal = db.as_os_str().to_owned();
+    wal.push("-wal");
+    std::fs::metadata(PathBuf::from(wal)).is_ok_and(|m| m.len() > 0)
+}
+
+/// `file:<absolute path>?immutable=1`, the path percent-encoded as SQLite's
+/// URI filenames require.
+fn immutable_uri(db: &Path) -> String {
+    let absolute = std::path::absolute(db).unwrap_or_else(|_| db.to_path_buf());
+    let text = absolute.to_string_lossy().replace('\\', "/");
+    let mut uri = String::from("file:");
+    if !text.starts_with('/') {
+        uri.push('/');
+    }
+    for b in text.bytes() {
+        if b.is_ascii_alphanumeric() || b"/-._~:".contains(&b) {
+            uri.push(char::from(b));
+        } else {
+            uri.push_str(&format!("%{b:02X}"));
+        }
+    }
+    uri.push_str("?immutable=1");
+    uri
+}
+
+/// Checks that `conn` reads a framewarden database this build understands.
+fn check_ours(conn: &Connection, path: &Path) -> Result<(), StoreError> {
     conn.busy_timeout(Duration::from_secs(10))
         .map_err(StoreError::sqlite(path))?;
     let app_id = application_id(&conn, path)?;
@@ -346,7 +418,7 @@ pub fn open_read_only(path: &Path) -> Result<Connection, StoreError> {
             found: version,
         });
     }
-    Ok(conn)
+    Ok(())
 }
 
 /// The file's `application_id`; a file that is not SQLite at all is foreign.
@@ -751,5 +823,14 @@ mod tests {
             open_for_writing(&db),
             Err(StoreError::TooNew { .. })
         ));
+    }
+
+    #[test]
+    fn the_immutable_uri_escapes_what_a_uri_reserves() {
+        // RFC 3986 percent-encoding, as SQLite's URI filenames take it.
+        assert_eq!(
+            immutable_uri(Path::new("/var/lib/fw/run 1#?%.db")),
+            "file:/var/lib/fw/run%201%23%3F%25.db?immutable=1"
+        );
     }
 }
