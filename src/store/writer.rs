@@ -294,6 +294,19 @@ impl WriterState {
         if let Err(e) = ended {
             tracing::error!("cannot mark run {} ended: {e}", self.run.id);
         }
+        // Everything into the database file and the log emptied, so that a
+        // reader who cannot write the folder finds a database complete on its
+        // own (see `store::open_read_only`).
+        let checkpoint = self
+            .conn
+            .query_row("PRAGMA wal_checkpoint(TRUNCATE)", [], |r| {
+                r.get::<_, i64>(0)
+            });
+        match checkpoint {
+            Ok(0) => {}
+            Ok(_) => tracing::warn!("the final checkpoint was blocked by a reader; the log stays"),
+            Err(e) => tracing::warn!("the final checkpoint failed: {e}"),
+        }
         if let Some(observer) = self.observer.take() {
             observer.close();
         }
