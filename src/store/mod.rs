@@ -405,7 +405,7 @@ fn immutable_uri(db: &Path) -> String {
 fn check_ours(conn: &Connection, path: &Path) -> Result<(), StoreError> {
     conn.busy_timeout(Duration::from_secs(10))
         .map_err(StoreError::sqlite(path))?;
-    let app_id = application_id(&conn, path)?;
+    let app_id = application_id(conn, path)?;
     if app_id != APPLICATION_ID {
         return Err(StoreError::Foreign(path.to_path_buf()));
     }

@@ -1091,8 +1091,11 @@ mod tests {
         w.join();
     }
 
+    /// The files judged, in order, and whether each superseded a frame.
+    type JudgedLog = Arc<Mutex<Vec<(String, bool)>>>;
+
     /// Records which frames the observer was asked to judge, in order.
-    struct Judged(Arc<Mutex<Vec<(String, bool)>>>);
+    struct Judged(JudgedLog);
 
     impl FrameObserver for Judged {
         fn begin(&mut self) {}
@@ -1122,9 +1125,7 @@ mod tests {
         fn close(self: Box<Self>) {}
     }
 
-    fn start_judged(
-        db: &std::path::Path,
-    ) -> (Writer, Sender<StoreOp>, Arc<Mutex<Vec<(String, bool)>>>) {
+    fn start_judged(db: &std::path::Path) -> (Writer, Sender<StoreOp>, JudgedLog) {
         let mut conn = open_for_writing(db).unwrap();
         let run = open_run(&mut conn, &policy(false)).unwrap();
         let judged = Arc::new(Mutex::new(Vec::new()));
