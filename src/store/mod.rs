@@ -833,4 +833,50 @@ mod tests {
             "file:/var/lib/fw/run%201%23%3F%25.db?immutable=1"
         );
     }
+
+    #[test]
+    fn v7_places_older_rows_in_acquisition_order() {
+        let dir = tempfile::tempdir().unwrap();
+        let db = dir.path().join("fw.db");
+        {
+            let mut conn = Connection::open(&db).unwrap();
+            let tx = conn.transaction().unwrap();
+            for sql in &MIGRATIONS[..6] {
+                tx.execute_batch(sql).unwrap();
+            }
+            tx.pragma_update(None, "user_version", 6).unwrap();
+            tx.pragma_update(None, "application_id", APPLICATION_ID)
+                .unwrap();
+            tx.execute_batch(
+                "INSERT INTO runs (folders, started_at_ms, last_frame_at_ms, settings) VALUES ('[]', 1, 1, '');
+                 INSERT INTO frames (run_id, file, size_bytes, mtime_ns, version, status, detected_at_ms,
+                                     ready_at_ms, time_point)
+                     VALUES (1, '/acq/a.tif', 10, 30, 1, 'done', 1, 1, '0013'),
+                            (1, '/acq/b.tif', 10, 20, 1, 'done', 1, 1, 't7'),
+                            (1, '/acq/c.tif', 10, 10, 1, 'done', 1, 1, NULL);",
+            )
+            .unwrap();
+            tx.commit().unwrap();
+        }
+        drop(open_for_writing(&db).unwrap());
+        let conn = open_read_only(&db).unwrap();
+        let rows: Vec<(String, Option<i64>, i64)> = conn
+            .prepare(&format!(
+                "SELECT file, time_point_index, acquired_ns FROM frames ORDER BY {ACQUISITION_ORDER_SQL}"
+            ))
+            .unwrap()
+            .query_map([], |r| Ok((r.get(0)?, r.get(1)?, r.get(2)?)))
+            .unwrap()
+            .collect::<Result<_, _>>()
+            .unwrap();
+        // The same numbers as `NameParts::time_point_index` gives.
+        assert_eq!(
+            rows,
+            [
+                ("/acq/c.tif".into(), None, 10),
+                ("/acq/b.tif".into(), Some(7), 20),
+                ("/acq/a.tif".into(), Some(13), 30)
+            ]
+        );
+    }
 }
