@@ -21,3 +21,5 @@ ALTER TABLE frames ADD COLUMN same_pixels_as INTEGER REFERENCES frames(id);
 -- The later version, with other pixels, whose result replaced this row's; the
 -- row is kept, and counted no more.
 ALTER TABLE frames ADD COLUMN superseded_by INTEGER REFERENCES frames(id);
+-- Which rows superseded another (the quality monitor's replay skips them).
+CREATE INDEX frames_superseding ON frames (superseded_by) WHERE superseded_by IS NOT NULL;

@@ -24,7 +24,7 @@ use rusqlite::{params, Connection, OptionalExtension, Transaction, TransactionBe
 use crate::analysis::ObjectMeasures;
 use crate::naming::NameParts;
 use crate::pipeline::FileAnalysis;
-use crate::store::{now_ms, FrameKey, COUNTED_SQL, FRAME_KEY_SQL, POSITION_SQL};
+use crate::store::{now_ms, FrameKey, COUNTED_SQL, FRAME_KEY_SQL};
 use crate::text::shown;
 
 /// Why the writer could not start.
@@ -392,7 +392,7 @@ impl WriterState {
                 }
             }
             // What this op finished may free held outcomes: before anything later.
-            if !waiting.is_empty() {
+            if !waiting.is_empty() && op.finished_key().is_some() {
                 release_waiting(&tx, batch, &mut waiting, session, observer)?;
             }
         }
@@ -633,7 +633,7 @@ fn record_done(
 ) -> rusqlite::Result<Option<(i64, Version)>> {
     let r = &analysis.result;
     let now = now_ms();
-    let frame_id: Option<(i64, i64, Option<String>, String)> = tx
+    let frame_id: Option<(i64, i64, Position)> = tx
         .prepare_cached(&format!(
             "UPDATE frames SET status = 'done', error = NULL, attempts = ?4, analyzed_at_ms = ?5,
                  latency_ms = MAX(0, ?5 - ready_at_ms),
@@ -643,7 +643,7 @@ fn record_done(
                  pixel_size_um = ?18, pixel_size_source = ?19, bimodality = ?20, size_filtered = ?21,
                  merged_fraction = ?22, pixel_hash = ?23
              WHERE {FRAME_KEY_SQL} AND status <> 'done'
-             RETURNING id, run_id, time_point, {POSITION_SQL}"
+             RETURNING id, run_id, time_point, well, site, channel"
         ))?
         .query_row(
             params![
@@ -671,24 +671,28 @@ fn record_done(
                 r.merged_fraction,
                 analysis.pixel_hash as i64,
             ],
-            |row| Ok((row.get(0)?, row.get(1)?, row.get(2)?, row.get(3)?)),
+            |row| {
+                Ok((
+                    row.get(0)?,
+                    row.get(1)?,
+                    Position {
+                        time_point: row.get(2)?,
+                        well: row.get(3)?,
+                        site: row.get(4)?,
+                        channel: row.get(5)?,
+                    },
+                ))
+            },
         )
         .optional()?;
-    let Some((frame_id, run_id, time_point, position)) = frame_id else {
+    let Some((frame_id, run_id, position)) = frame_id else {
         tracing::warn!(
             "store: {} has no queued row to complete; skipped",
             shown(&key.path)
         );
         return Ok(None);
     };
-    let version = compare_with_earlier(
-        tx,
-        frame_id,
-        run_id,
-        key,
-        (time_point.as_deref(), &position),
-        analysis.pixel_hash,
-    )?;
+    let version = compare_with_earlier(tx, frame_id, run_id, key, &position, analysis.pixel_hash)?;
     tx.prepare_cached("DELETE FROM objects WHERE frame_id = ?1")?
         .execute([frame_id])?;
     if !matches!(version, Version::SamePixels(_)) {
@@ -700,6 +704,15 @@ fn record_done(
     Ok(Some((frame_id, version)))
 }
 
+/// A frame row's place: the parts of its name that make its position
+/// ([`crate::store::POSITION_SQL`]) and its time point.
+struct Position {
+    time_point: Option<String>,
+    well: Option<String>,
+    site: Option<String>,
+    channel: Option<String>,
+}
+
 /// Finds the version of frame `frame_id` already counted in the run (the same
 /// file, or the same position and time point when the pattern names one) and
 /// marks whichever row no longer counts: this one when its pixels are the
@@ -709,18 +722,22 @@ fn compare_with_earlier(
     frame_id: i64,
     run_id: i64,
     key: &FrameKey,
-    (time_point, position): (Option<&str>, &str),
+    at: &Position,
     pixel_hash: u64,
 ) -> rusqlite::Result<Version> {
+    // Two indexed look-ups (by file; by well and time point), not one scan.
     let earlier: Option<(i64, Option<i64>, String)> = tx
         .prepare_cached(&format!(
             "SELECT id, pixel_hash, status FROM frames
-             WHERE run_id = ?1 AND id <> ?2 AND status IN ('done', 'failed') AND {COUNTED_SQL}
-               AND (file = ?3 OR (?4 IS NOT NULL AND time_point = ?4 AND {POSITION_SQL} = ?5))
+             WHERE id IN (SELECT id FROM frames WHERE file = ?3
+                          UNION ALL
+                          SELECT id FROM frames WHERE ?4 IS NOT NULL AND well IS ?5 AND time_point = ?4
+                                                  AND site IS ?6 AND channel IS ?7)
+               AND run_id = ?1 AND id <> ?2 AND status IN ('done', 'failed') AND {COUNTED_SQL}
              ORDER BY id DESC LIMIT 1"
         ))?
         .query_row(
-            params![run_id, frame_id, key.path, time_point, position],
+            params![run_id, frame_id, key.path, at.time_point, at.well, at.site, at.channel],
             |r| Ok((r.get(0)?, r.get(1)?, r.get(2)?)),
         )
         .optional()?;
