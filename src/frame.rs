@@ -103,3 +103,54 @@ impl Frame {
         &self.pixels[y * self.width..(y + 1) * self.width]
     }
 }
+
+/// A fast non-cryptographic hash (xxh3, 64 bits) of decoded pixels: the
+/// dimensions, bit depth and samples of each frame in order. Two versions of a
+/// file with equal hashes hold the same image, whatever their bytes on disk
+/// (compression, metadata, a new modification time).
+pub fn content_hash(frames: &[Frame]) -> u64 {
+    let mut hasher = xxhash_rust::xxh3::Xxh3::new();
+    let mut bytes = vec![0u8; 2 * 4096];
+    for f in frames {
+        hasher.update(&(f.width as u64).to_le_bytes());
+        hasher.update(&(f.height as u64).to_le_bytes());
+        hasher.update(&[f.bit_depth]);
+        for chunk in f.pixels.chunks(4096) {
+            let out = &mut bytes[..2 * chunk.len()];
+            for (d, s) in out.chunks_exact_mut(2).zip(chunk) {
+                d.copy_from_slice(&s.to_le_bytes());
+            }
+            hasher.update(out);
+        }
+    }
+    hasher.digest()
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn the_content_hash_follows_the_pixels_not_the_buffer() {
+        let a = Frame::from_rows_u8(&[&[1, 2, 3], &[4, 5, 6]]);
+        let same = Frame::new(3, 2, 8, vec![1, 2, 3, 4, 5, 6]).unwrap();
+        assert_eq!(
+            content_hash(std::slice::from_ref(&a)),
+            content_hash(&[same])
+        );
+        // One sample changed, the same samples in another shape, or at
+        // another bit depth: another image.
+        let one_off = Frame::from_rows_u8(&[&[1, 2, 3], &[4, 5, 7]]);
+        let reshaped = Frame::from_rows_u8(&[&[1, 2], &[3, 4], &[5, 6]]);
+        let deeper = Frame::new(3, 2, 16, vec![1, 2, 3, 4, 5, 6]).unwrap();
+        for other in [one_off, reshaped, deeper] {
+            assert_ne!(
+                content_hash(std::slice::from_ref(&a)),
+                content_hash(&[other])
+            );
+        }
+        // Pages count in order.
+        let b = Frame::from_rows_u8(&[&[9]]);
+        assert_ne!(content_hash(&[a.clone(), b.clone()]), content_hash(&[b, a]));
+    }
+}

@@ -26,6 +26,27 @@ pub struct NameParts {
     pub all: BTreeMap<String, String>,
 }
 
+impl NameParts {
+    /// The time point as a number, for ordering frames: the first run of
+    /// digits in `time_point` (`t0013` and `0013` are 13); `None` when the
+    /// pattern names no time point or it has no digits.
+    ///
+    /// ```
+    /// use framewarden::naming::NameParts;
+    /// let parts = NameParts { time_point: Some("t0013".into()), ..NameParts::default() };
+    /// assert_eq!(parts.time_point_index(), Some(13));
+    /// ```
+    pub fn time_point_index(&self) -> Option<i64> {
+        let t = self.time_point.as_deref()?;
+        let digits: String = t
+            .chars()
+            .skip_while(|c| !c.is_ascii_digit())
+            .take_while(char::is_ascii_digit)
+            .collect();
+        digits.parse().ok()
+    }
+}
+
 /// The file-name pattern: a regular expression with named groups; `well`,
 /// `site`, `time_point` and `channel` get their own columns, every group is
 /// kept. The empty pattern names nothing.

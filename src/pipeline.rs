@@ -64,6 +64,9 @@ pub struct FileAnalysis {
     pub recount: Option<FrameResult>,
     /// Where the pixel size came from, when there is one.
     pub pixel_size_source: Option<PixelSizeSource>,
+    /// [`crate::frame::content_hash`] of the pages analyzed: a re-saved file
+    /// with the same pixels has the same hash.
+    pub pixel_hash: u64,
 }
 
 impl FileAnalysis {
@@ -162,6 +165,7 @@ fn run(
         result,
         recount,
         pixel_size_source: pixel_size.map(|p| p.1),
+        pixel_hash: crate::frame::content_hash(&decoded.frames),
     };
     Ok((analysis, labels))
 }

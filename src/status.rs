@@ -11,7 +11,10 @@ use jiff::tz::TimeZone;
 use rusqlite::{params, Connection};
 use serde::Serialize;
 
-use crate::store::{self, iso_time_sql, now_ms, StoreError, COUNT_USED_SQL, POSITION_SQL};
+use crate::store::{
+    self, iso_time_sql, now_ms, StoreError, ACQUISITION_ORDER_SQL, COUNTED_SQL, COUNT_USED_SQL,
+    POSITION_SQL,
+};
 use crate::text::{shown, shown_time};
 
 /// Everything `status` shows; `--json` prints it as one document.
@@ -21,7 +24,9 @@ pub struct StatusReport {
     pub database: String,
     /// The current or last run; `None` before the first frame was ever seen.
     pub run: Option<RunInfo>,
-    /// Files recorded in this run (any status).
+    /// Frames recorded in this run (any status), each once: a re-saved file
+    /// with the same pixels is not counted again, and a new version with other
+    /// pixels replaces the one it supersedes.
     pub frames_seen: u64,
     /// Files of this run analyzed with a result.
     pub frames_done: u64,
@@ -68,9 +73,9 @@ pub struct PositionSummary {
     /// Done frames with at least one quality flag.
     pub frames_flagged: u64,
     /// Count used (the recount where the uneven-illumination remedy ran) of the
-    /// position's first done frame, in recording order.
+    /// position's first done frame, in acquisition order.
     pub first_count: Option<i64>,
-    /// Count used of the position's last done frame.
+    /// Count used of the position's last done frame, in acquisition order.
     pub last_count: Option<i64>,
     /// Smallest count used among the position's done frames.
     pub min_count: Option<i64>,
@@ -186,7 +191,7 @@ fn query(
                         total(CASE WHEN status = 'done' THEN {COUNT_USED_SQL} END),
                         total(CASE WHEN status = 'done' THEN size_filtered END),
                         min(CASE WHEN status = 'done' THEN analyzed_at_ms END), max(analyzed_at_ms)
-                 FROM frames WHERE run_id = ?1"
+                 FROM frames WHERE run_id = ?1 AND {COUNTED_SQL}"
             ),
             [run_id],
             |r| {
@@ -240,12 +245,14 @@ fn query(
     Ok(report)
 }
 
-/// Per-position summaries, folded from the run's rows in recording order.
+/// Per-position summaries, folded from the run's counted rows in acquisition
+/// order.
 fn positions(conn: &Connection, run_id: i64) -> rusqlite::Result<Vec<PositionSummary>> {
     let mut stmt = conn.prepare(&format!(
         "SELECT {POSITION_SQL} AS position, status, {COUNT_USED_SQL},
                 EXISTS (SELECT 1 FROM flags WHERE frame_id = frames.id)
-         FROM frames WHERE run_id = ?1 AND {POSITION_SQL} <> '' ORDER BY position, id"
+         FROM frames WHERE run_id = ?1 AND {POSITION_SQL} <> '' AND {COUNTED_SQL}
+         ORDER BY position, {ACQUISITION_ORDER_SQL}"
     ))?;
     let mut rows = stmt.query([run_id])?;
     let mut out: Vec<PositionSummary> = Vec::new();

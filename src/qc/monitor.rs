@@ -50,6 +50,19 @@ struct PositionState {
     recent_counts: VecDeque<f64>,
 }
 
+impl PositionState {
+    /// What a frame at this position is judged against.
+    fn context(&mut self, count_window: usize) -> PositionContext {
+        PositionContext {
+            baseline_focus: self.baseline_focus,
+            usual_count: self.usual_count,
+            recent_median_count: (self.recent_counts.len() >= count_window)
+                .then(|| median(self.recent_counts.make_contiguous()))
+                .flatten(),
+        }
+    }
+}
+
 /// The quality memory of one run.
 #[derive(Debug, Clone)]
 pub struct RunMonitor {
@@ -98,14 +111,7 @@ impl RunMonitor {
         let limits = &self.settings.flags;
         let params = &self.settings.charts;
         let state = self.positions.entry(position.to_string()).or_default();
-        let ctx = PositionContext {
-            baseline_focus: state.baseline_focus,
-            usual_count: state.usual_count,
-            recent_median_count: (state.recent_counts.len() >= limits.count_window)
-                .then(|| median(state.recent_counts.make_contiguous()))
-                .flatten(),
-        };
-        let flags = frame_flags(m, limits, &ctx);
+        let flags = frame_flags(m, limits, &state.context(limits.count_window));
         state.recent_counts.push_back(m.object_count as f64);
         while state.recent_counts.len() > limits.count_window {
             state.recent_counts.pop_front();
@@ -145,6 +151,20 @@ impl RunMonitor {
         self.flagged += u64::from(!flags.is_empty());
         events.extend(self.count_recorded(at_ms, file));
         Verdict { flags, events }
+    }
+
+    /// Judges a new version, with other pixels, of a frame already observed
+    /// at `position`: its flags against the position's baseline and recent
+    /// counts, without learning from it. The charts, the baseline and the
+    /// counts keep each frame once (the version they saw first), and the run
+    /// counts it once.
+    pub fn judge_again(&mut self, position: &str, m: &FrameMetrics) -> Vec<FrameFlag> {
+        let limits = &self.settings.flags;
+        let ctx = match self.positions.get_mut(position) {
+            Some(state) => state.context(limits.count_window),
+            None => PositionState::default().context(limits.count_window),
+        };
+        frame_flags(m, limits, &ctx)
     }
 
     /// True once the run has recorded `expected_frames` frames.

@@ -16,11 +16,11 @@ use crate::pipeline::FileAnalysis;
 use crate::qc::alerts::{AlertEvent, AlertState};
 use crate::qc::flags::explain_recount;
 use crate::qc::metrics::FrameMetrics;
-use crate::qc::monitor::RunMonitor;
+use crate::qc::monitor::{RunMonitor, Verdict};
 use crate::qc::params::{AlertSettings, QualitySettings};
 use crate::qc::sinks::{AlertDispatcher, SinkError};
 use crate::store::writer::FrameObserver;
-use crate::store::{now_ms, FrameKey, FRAME_KEY_SQL, POSITION_SQL};
+use crate::store::{now_ms, FrameKey, ACQUISITION_ORDER_SQL, FRAME_KEY_SQL, POSITION_SQL};
 use crate::text::shown;
 
 /// Why quality control could not start.
@@ -122,20 +122,28 @@ impl FrameObserver for QcRecorder {
     /// Judges a frame just recorded as done (`frame_id`) in the writer's
     /// transaction. Flags and charts use the first result, so the run's
     /// metrics stay comparable; a recount is stored beside it and becomes the
-    /// frame's count.
+    /// frame's count. A version that supersedes one already judged gets its
+    /// flags but changes no chart (see [`RunMonitor::judge_again`]).
     fn frame_done(
         &mut self,
         tx: &Transaction<'_>,
         frame_id: i64,
         analysis: &FileAnalysis,
+        supersedes: bool,
     ) -> rusqlite::Result<bool> {
         let (run_id, file, position, latency_ms) = frame_row(tx, frame_id)?;
         self.switch_run(tx, run_id)?;
         let at_ms = now_ms();
         let result = &analysis.result;
-        let mut verdict =
-            self.monitor
-                .observe(&position, &file, at_ms, &FrameMetrics::from(result));
+        let metrics = FrameMetrics::from(result);
+        let mut verdict = if supersedes {
+            Verdict {
+                flags: self.monitor.judge_again(&position, &metrics),
+                events: Vec::new(),
+            }
+        } else {
+            self.monitor.observe(&position, &file, at_ms, &metrics)
+        };
         if let Some(recount) = &analysis.recount {
             tx.prepare_cached(
                 "UPDATE frames SET recount_threshold = ?2, recount_object_count = ?3, count_source = 'recount' WHERE id = ?1",
@@ -412,17 +420,20 @@ impl QcRecorder {
         self.dispatcher.send(event);
     }
 
-    /// Feeds the run's recorded frames to a fresh monitor, in recording order,
-    /// discarding the events (they are already stored), then puts back the
-    /// stored open alerts, each drift alert with the positions it names.
-    /// Returns the number of frames replayed.
+    /// Feeds the run's recorded frames to a fresh monitor, in acquisition
+    /// order and each frame once (the version first judged), discarding the
+    /// events (they are already stored), then puts back the stored open
+    /// alerts, each drift alert with the positions it names. Returns the
+    /// number of frames replayed.
     fn replay(&mut self, conn: &Connection) -> rusqlite::Result<usize> {
         let mut stmt = conn.prepare(&format!(
             "SELECT file, {POSITION_SQL}, analyzed_at_ms, status,
                     method, threshold, separability, object_count, foreground_fraction,
                     background_level, saturation_fraction, focus, illumination_change, bimodality,
                     merged_fraction
-             FROM frames WHERE run_id = ?1 AND status IN ('done', 'failed') ORDER BY analyzed_at_ms, id"
+             FROM frames WHERE run_id = ?1 AND status IN ('done', 'failed') AND same_pixels_as IS NULL
+               AND NOT EXISTS (SELECT 1 FROM frames AS earlier WHERE earlier.superseded_by = frames.id)
+             ORDER BY {ACQUISITION_ORDER_SQL}"
         ))?;
         let mut rows = stmt.query([self.run_id])?;
         let mut n = 0;

@@ -12,7 +12,7 @@ use serde::Serialize;
 use crate::qc::alerts::LISTED;
 use crate::qc::flags::{failure_flag, FrameFlag};
 use crate::qc::recorder::POSITIONS_JSON_SQL;
-use crate::store::iso_time_sql;
+use crate::store::{iso_time_sql, COUNTED_SQL};
 use crate::text::{shown, shown_time};
 
 /// One alert episode.
@@ -118,13 +118,14 @@ pub struct FlagCount {
 /// # Errors
 /// SQLite errors.
 pub fn flag_counts(conn: &Connection, run_id: i64) -> rusqlite::Result<Vec<FlagCount>> {
-    let mut stmt = conn.prepare(
+    let mut stmt = conn.prepare(&format!(
         "SELECT flag, count(DISTINCT frame_id) FROM flags JOIN frames ON frames.id = flags.frame_id
-         WHERE frames.run_id = ?1 GROUP BY flag
+         WHERE frames.run_id = ?1 AND {COUNTED_SQL} GROUP BY flag
          UNION ALL
-         SELECT 'failed', count(*) FROM frames WHERE run_id = ?1 AND status = 'failed' HAVING count(*) > 0
-         ORDER BY 2 DESC, 1",
-    )?;
+         SELECT 'failed', count(*) FROM frames WHERE run_id = ?1 AND status = 'failed' AND {COUNTED_SQL}
+         HAVING count(*) > 0
+         ORDER BY 2 DESC, 1"
+    ))?;
     let rows = stmt.query_map([run_id], |r| {
         Ok(FlagCount {
             flag: r.get(0)?,
@@ -143,11 +144,12 @@ pub fn flagged_frames(
     run_id: i64,
     limit: usize,
 ) -> rusqlite::Result<Vec<FlaggedFrame>> {
-    let mut frames_stmt = conn.prepare(
+    let mut frames_stmt = conn.prepare(&format!(
         "SELECT id, file, status, error FROM frames
-         WHERE run_id = ?1 AND (status = 'failed' OR EXISTS (SELECT 1 FROM flags WHERE frame_id = frames.id))
-         ORDER BY id DESC LIMIT ?2",
-    )?;
+         WHERE run_id = ?1 AND {COUNTED_SQL}
+           AND (status = 'failed' OR EXISTS (SELECT 1 FROM flags WHERE frame_id = frames.id))
+         ORDER BY id DESC LIMIT ?2"
+    ))?;
     let mut flags_stmt = conn.prepare(
         "SELECT flag, value, limit_value, message FROM flags WHERE frame_id = ?1 ORDER BY id",
     )?;

@@ -45,6 +45,18 @@ pub const POSITION_SQL: &str = "TRIM(COALESCE(well, '') \
 /// uneven-illumination remedy ran, otherwise the first result's.
 pub const COUNT_USED_SQL: &str = "COALESCE(recount_object_count, object_count)";
 
+/// SQL ordering a run's frame rows in acquisition order: by the time point
+/// the file-name pattern names, then by when the file was first written
+/// (`acquired_ns`: the modification time of its first version), then by name.
+/// Every per-position sequence (status, the quality monitor) follows it, never
+/// the order rows were written in.
+pub const ACQUISITION_ORDER_SQL: &str = "COALESCE(time_point_index, -1), acquired_ns, file, id";
+
+/// SQL true for a frame row that counts in summaries: not replaced by a
+/// later version with other pixels, and not a re-save of an earlier version's
+/// pixels. Each frame of a run counts once.
+pub const COUNTED_SQL: &str = "superseded_by IS NULL AND same_pixels_as IS NULL";
+
 /// SQL selecting exactly one version of a file: bind [`FrameKey::sql_params`]
 /// as `?1`, `?2`, `?3`.
 pub const FRAME_KEY_SQL: &str = "file = ?1 AND size_bytes = ?2 AND mtime_ns = ?3";
@@ -375,20 +387,79 @@ pub fn open_for_writing(path: &Path) -> Result<Connection, StoreError> {
 
 /// Opens an existing database read-only, checking it is ours and not newer.
 ///
+/// A database in WAL mode is read through a shared-memory file beside it
+/// (`-shm`), which SQLite creates on first read. In a folder the reader cannot
+/// write (another user's, the service's own under systemd) that fails; a
+/// database stopped cleanly has no write-ahead log left to read, so it is then
+/// opened as immutable (SQLite's `immutable=1` URI parameter: no locks, no
+/// shared memory). With a log still there (a service running or killed) the
+/// error stands, since an immutable open would not see the log's frames.
+///
 /// # Errors
 /// [`StoreError::Missing`], [`StoreError::Foreign`], [`StoreError::TooNew`].
 pub fn open_read_only(path: &Path) -> Result<Connection, StoreError> {
     if !path.is_file() {
         return Err(StoreError::Missing(path.to_path_buf()));
     }
-    let conn = Connection::open_with_flags(
-        path,
-        OpenFlags::SQLITE_OPEN_READ_ONLY | OpenFlags::SQLITE_OPEN_NO_MUTEX,
+    let flags = OpenFlags::SQLITE_OPEN_READ_ONLY | OpenFlags::SQLITE_OPEN_NO_MUTEX;
+    let conn = Connection::open_with_flags(path, flags).map_err(StoreError::sqlite(path))?;
+    match check_ours(&conn, path) {
+        Err(StoreError::Sqlite { source, .. })
+            if cannot_share_memory(&source) && !has_write_ahead_log(path) =>
+        {
+            let conn = Connection::open_with_flags(
+                immutable_uri(path),
+                flags | OpenFlags::SQLITE_OPEN_URI,
+            )
+            .map_err(StoreError::sqlite(path))?;
+            check_ours(&conn, path)?;
+            Ok(conn)
+        }
+        checked => checked.map(|()| conn),
+    }
+}
+
+/// The errors SQLite gives when it cannot create or write a WAL database's
+/// shared-memory file.
+fn cannot_share_memory(e: &rusqlite::Error) -> bool {
+    matches!(
+        e.sqlite_error_code(),
+        Some(rusqlite::ErrorCode::CannotOpen | rusqlite::ErrorCode::ReadOnly)
     )
-    .map_err(StoreError::sqlite(path))?;
+}
+
+/// True when `<db>-wal` holds frames not yet copied into the database.
+fn has_write_ahead_log(db: &Path) -> bool {
+    let mut wal = db.as_os_str().to_owned();
+    wal.push("-wal");
+    std::fs::metadata(PathBuf::from(wal)).is_ok_and(|m| m.len() > 0)
+}
+
+/// `file:<absolute path>?immutable=1`, the path percent-encoded as SQLite's
+/// URI filenames require.
+fn immutable_uri(db: &Path) -> String {
+    let absolute = std::path::absolute(db).unwrap_or_else(|_| db.to_path_buf());
+    let text = absolute.to_string_lossy().replace('\\', "/");
+    let mut uri = String::from("file:");
+    if !text.starts_with('/') {
+        uri.push('/');
+    }
+    for b in text.bytes() {
+        if b.is_ascii_alphanumeric() || b"/-._~:".contains(&b) {
+            uri.push(char::from(b));
+        } else {
+            uri.push_str(&format!("%{b:02X}"));
+        }
+    }
+    uri.push_str("?immutable=1");
+    uri
+}
+
+/// Checks that `conn` reads a framewarden database this build understands.
+fn check_ours(conn: &Connection, path: &Path) -> Result<(), StoreError> {
     conn.busy_timeout(Duration::from_secs(10))
         .map_err(StoreError::sqlite(path))?;
-    let app_id = application_id(&conn, path)?;
+    let app_id = application_id(conn, path)?;
     if app_id != APPLICATION_ID {
         return Err(StoreError::Foreign(path.to_path_buf()));
     }
@@ -401,7 +472,7 @@ pub fn open_read_only(path: &Path) -> Result<Connection, StoreError> {
             found: version,
         });
     }
-    Ok(conn)
+    Ok(())
 }
 
 /// Reads run `run` (by default the current or last one) of the database at
@@ -862,5 +933,60 @@ mod tests {
             open_for_writing(&db),
             Err(StoreError::TooNew { .. })
         ));
+    }
+
+    #[test]
+    fn the_immutable_uri_escapes_what_a_uri_reserves() {
+        // RFC 3986 percent-encoding, as SQLite's URI filenames take it.
+        assert_eq!(
+            immutable_uri(Path::new("/var/lib/fw/run 1#?%.db")),
+            "file:/var/lib/fw/run%201%23%3F%25.db?immutable=1"
+        );
+    }
+
+    #[test]
+    fn v7_places_older_rows_in_acquisition_order() {
+        let dir = tempfile::tempdir().unwrap();
+        let db = dir.path().join("fw.db");
+        {
+            let mut conn = Connection::open(&db).unwrap();
+            let tx = conn.transaction().unwrap();
+            for sql in &MIGRATIONS[..6] {
+                tx.execute_batch(sql).unwrap();
+            }
+            tx.pragma_update(None, "user_version", 6).unwrap();
+            tx.pragma_update(None, "application_id", APPLICATION_ID)
+                .unwrap();
+            tx.execute_batch(
+                "INSERT INTO runs (folders, started_at_ms, last_frame_at_ms, settings) VALUES ('[]', 1, 1, '');
+                 INSERT INTO frames (run_id, file, size_bytes, mtime_ns, version, status, detected_at_ms,
+                                     ready_at_ms, time_point)
+                     VALUES (1, '/acq/a.tif', 10, 30, 1, 'done', 1, 1, '0013'),
+                            (1, '/acq/b.tif', 10, 20, 1, 'done', 1, 1, 't7'),
+                            (1, '/acq/c.tif', 10, 10, 1, 'done', 1, 1, NULL);",
+            )
+            .unwrap();
+            tx.commit().unwrap();
+        }
+        drop(open_for_writing(&db).unwrap());
+        let conn = open_read_only(&db).unwrap();
+        let rows: Vec<(String, Option<i64>, i64)> = conn
+            .prepare(&format!(
+                "SELECT file, time_point_index, acquired_ns FROM frames ORDER BY {ACQUISITION_ORDER_SQL}"
+            ))
+            .unwrap()
+            .query_map([], |r| Ok((r.get(0)?, r.get(1)?, r.get(2)?)))
+            .unwrap()
+            .collect::<Result<_, _>>()
+            .unwrap();
+        // The same numbers as `NameParts::time_point_index` gives.
+        assert_eq!(
+            rows,
+            [
+                ("/acq/c.tif".into(), None, 10),
+                ("/acq/b.tif".into(), Some(7), 20),
+                ("/acq/a.tif".into(), Some(13), 30)
+            ]
+        );
     }
 }

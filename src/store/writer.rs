@@ -3,7 +3,14 @@
 //!
 //! Every write is idempotent on the frame identity (file + size + mtime), so a
 //! crash and restart redoes at most the frames in flight and never duplicates a
-//! row. Deciding *what* to record is the watcher's job, and judging a recorded
+//! row.
+//!
+//! Results are recorded in acquisition order ([`ACQUISITION_ORDER_SQL`]):
+//! workers finish in any order, so a result whose run still has an earlier
+//! frame in flight (queued before it in this session) is held in memory and
+//! recorded, with its judgement, once that frame is finished. A held result
+//! that never gets recorded (a stop) leaves its row queued, and the next start
+//! redoes it. Deciding *what* to record is the watcher's job, and judging a recorded
 //! frame is the [`FrameObserver`]'s (quality control implements it); this file
 //! only records and calls the observer inside its transaction.
 
@@ -15,11 +22,10 @@ use crossbeam_channel::{Receiver, Sender};
 use rusqlite::{params, Connection, OptionalExtension, Transaction, TransactionBehavior};
 
 use crate::analysis::ObjectMeasures;
-use crate::encode::LabelRuns;
 use crate::naming::NameParts;
 use crate::pipeline::FileAnalysis;
 use crate::store::label_images::LabelImageWriter;
-use crate::store::{now_ms, FrameKey, FRAME_KEY_SQL};
+use crate::store::{now_ms, FrameKey, COUNTED_SQL, FRAME_KEY_SQL};
 use crate::text::shown;
 
 /// Why the writer could not start.
@@ -43,9 +49,12 @@ pub enum WriterError {
 pub trait FrameObserver: Send {
     /// A transaction is about to start.
     fn begin(&mut self);
-    /// Frame `frame_id` was just recorded as done with `analysis`. Returns
-    /// whether the frame got at least one flag (what `label_images =
-    /// "flagged"` keeps an image for).
+    /// Frame `frame_id` was just recorded as done with `analysis`; when
+    /// `supersedes`, it is a new version with other pixels of a frame already
+    /// recorded (the same file, or the same position and time point), whose
+    /// row is now marked superseded. A version with the same pixels as the
+    /// one recorded is not passed on at all. Returns whether the frame got at
+    /// least one flag (what `label_images = "flagged"` keeps an image for).
     ///
     /// # Errors
     /// SQLite errors (the transaction is rolled back and retried).
@@ -54,6 +63,7 @@ pub trait FrameObserver: Send {
         tx: &Transaction<'_>,
         frame_id: i64,
         analysis: &FileAnalysis,
+        supersedes: bool,
     ) -> rusqlite::Result<bool>;
     /// The frame `key` was just recorded as failed.
     ///
@@ -127,6 +137,15 @@ impl StoreOp {
             | StoreOp::Withdrawn { key } => Some(key),
         }
     }
+
+    /// The identity of a frame's outcome (done or failed): what may have to
+    /// wait for earlier frames.
+    fn outcome_key(&self) -> Option<&FrameKey> {
+        match self {
+            StoreOp::Done { key, .. } | StoreOp::Failed { key, .. } => Some(key),
+            StoreOp::Queued { .. } | StoreOp::Withdrawn { .. } => None,
+        }
+    }
 }
 
 /// How the writer picks the run that new frames belong to.
@@ -195,6 +214,8 @@ impl Writer {
             max_batch: setup.max_batch.max(1),
             observer: setup.observer,
             label_images: setup.label_images,
+            held: Vec::new(),
+            session_started_ms: now_ms(),
         };
         let run_id = state.run.id;
         let thread = std::thread::Builder::new()
@@ -202,12 +223,6 @@ impl Writer {
             .spawn(move || state.run_loop(&ops_rx))
             .map_err(WriterError::Thread)?;
         Ok((Writer { thread, run_id }, ops_tx))
-    }
-
-    /// True once the thread has ended: before every sender is dropped, only
-    /// by a panic.
-    pub fn is_finished(&self) -> bool {
-        self.thread.is_finished()
     }
 
     /// Waits for the thread to flush and end (after all senders are dropped).
@@ -226,11 +241,24 @@ struct WriterState {
     max_batch: usize,
     observer: Option<Box<dyn FrameObserver>>,
     label_images: Option<LabelImageWriter>,
+    /// Outcomes waiting for an earlier frame of their run (acquisition order).
+    held: Vec<StoreOp>,
+    /// Rows queued from this moment on are this session's: only they are
+    /// waited for (a row an earlier process left queued may never come back).
+    session_started_ms: i64,
 }
 
 /// A recorded frame whose label image is kept: its op's place in the batch
 /// and its row id.
 type KeptImage = (usize, i64);
+
+/// What one commit leaves: the places in the batch of the outcomes still
+/// waiting for earlier frames, and the frames whose label image is kept.
+#[derive(Default)]
+struct Committed {
+    waiting: Vec<usize>,
+    kept: Vec<KeptImage>,
+}
 
 /// How often the writer, when idle, lets the observer check for a stall.
 const OBSERVER_TICK: Duration = Duration::from_secs(5);
@@ -253,14 +281,17 @@ impl WriterState {
                 }
                 Err(crossbeam_channel::RecvTimeoutError::Disconnected) => break,
             };
-            let mut batch = vec![first];
-            while batch.len() < self.max_batch {
+            // Held outcomes first: they are older than anything new.
+            let mut batch = std::mem::take(&mut self.held);
+            let fresh = batch.len();
+            batch.push(first);
+            while batch.len() - fresh < self.max_batch {
                 match ops_rx.try_recv() {
                     Ok(op) => batch.push(op),
                     Err(_) => break,
                 }
             }
-            let kept = self.commit_with_retry(&batch);
+            let Committed { waiting, kept } = self.commit_with_retry(&batch);
             if let Some(images) = &self.label_images {
                 for (i, frame_id) in kept {
                     if let StoreOp::Done {
@@ -273,12 +304,21 @@ impl WriterState {
                     }
                 }
             }
-            let finished: Vec<FrameKey> = batch
-                .iter()
-                .filter_map(StoreOp::finished_key)
-                .cloned()
-                .collect();
+            let mut finished: Vec<FrameKey> = Vec::new();
+            for (i, op) in batch.into_iter().enumerate() {
+                if waiting.contains(&i) {
+                    self.held.push(op);
+                } else if let Some(key) = op.finished_key() {
+                    finished.push(key.clone());
+                }
+            }
             (self.on_commit)(&finished);
+        }
+        if !self.held.is_empty() {
+            tracing::info!(
+                "{} results waiting for earlier frames stay queued; the next start redoes them",
+                self.held.len()
+            );
         }
         let ended = self.conn.execute(
             "UPDATE runs SET ended_at_ms = ?1 WHERE id = ?2",
@@ -286,6 +326,19 @@ impl WriterState {
         );
         if let Err(e) = ended {
             tracing::error!("cannot mark run {} ended: {e}", self.run.id);
+        }
+        // Everything into the database file and the log emptied, so that a
+        // reader who cannot write the folder finds a database complete on its
+        // own (see `store::open_read_only`).
+        let checkpoint = self
+            .conn
+            .query_row("PRAGMA wal_checkpoint(TRUNCATE)", [], |r| {
+                r.get::<_, i64>(0)
+            });
+        match checkpoint {
+            Ok(0) => {}
+            Ok(_) => tracing::warn!("the final checkpoint was blocked by a reader; the log stays"),
+            Err(e) => tracing::warn!("the final checkpoint failed: {e}"),
         }
         if let Some(observer) = self.observer.take() {
             observer.close();
@@ -299,11 +352,13 @@ impl WriterState {
     /// is busy, locked, full or failing I/O (conditions that clear: another
     /// program's transaction ends, space is freed), so nothing is dropped and
     /// the bounded channel holds the pipeline back meanwhile; up to
-    /// `GIVE_UP_AFTER` attempts for any other error. Returns the frames whose
-    /// label image is kept (none when the batch was given up).
-    fn commit_with_retry(&mut self, batch: &[StoreOp]) -> Vec<KeptImage> {
+    /// `GIVE_UP_AFTER` attempts for any other error. Returns the positions in
+    /// `batch` of the outcomes still waiting for earlier frames.
+    fn commit_with_retry(&mut self, batch: &[StoreOp]) -> Committed {
         const GIVE_UP_AFTER: u32 = 5;
-        for attempt in 1u32.. {
+        let mut attempt = 0u32;
+        loop {
+            attempt += 1;
             if let Some(observer) = self.observer.as_mut() {
                 observer.begin();
             }
@@ -315,7 +370,7 @@ impl WriterState {
                 }
             }
             match result {
-                Ok(kept) => return kept,
+                Ok(committed) => return committed,
                 Err(e) if attempt < GIVE_UP_AFTER || clears_by_itself(&e) => {
                     tracing::warn!(
                         "store: commit of {} ops failed ({e}); retrying (attempt {attempt})",
@@ -327,20 +382,28 @@ impl WriterState {
                     // Nothing is lost for good: the frames stay unrecorded or
                     // queued, and the next start's catch-up scan redoes them.
                     tracing::error!("store: giving up on a batch of {} ops: {e}", batch.len());
-                    return Vec::new();
+                    return Committed::default();
                 }
             }
         }
-        Vec::new()
     }
 
-    fn commit(&mut self, batch: &[StoreOp]) -> rusqlite::Result<Vec<KeptImage>> {
+    fn commit(&mut self, batch: &[StoreOp]) -> rusqlite::Result<Committed> {
         let tx = self
             .conn
             .transaction_with_behavior(TransactionBehavior::Immediate)?;
         let mut run = self.run;
-        let mut kept = Vec::new();
+        let session = self.session_started_ms;
+        let observer = &mut self.observer;
+        let images = self.label_images.as_ref();
+        let mut done = Committed::default();
         for (i, op) in batch.iter().enumerate() {
+            if let Some(key) = op.outcome_key() {
+                if waits_for_earlier(&tx, key, session)? {
+                    done.waiting.push(i);
+                    continue;
+                }
+            }
             match op {
                 StoreOp::Queued {
                     key,
@@ -355,41 +418,20 @@ impl WriterState {
                     run.last_frame_at_ms = run.last_frame_at_ms.max(*detected_at_ms);
                     insert_queued(&tx, run.id, key, *detected_at_ms, *ready_at_ms, names)?;
                 }
-                StoreOp::Done {
-                    key,
-                    attempts,
-                    analysis,
-                    label_image,
-                } => {
-                    let Some(id) = record_done(&tx, key, *attempts, analysis)? else {
-                        continue;
-                    };
-                    let flagged = match self.observer.as_mut() {
-                        Some(observer) => observer.frame_done(&tx, id, analysis)?,
-                        None => false,
-                    };
-                    let keeps = |images: &LabelImageWriter| images.keeps(flagged);
-                    if label_image.is_some() && self.label_images.as_ref().is_some_and(keeps) {
-                        kept.push((i, id));
-                    }
-                }
-                StoreOp::Failed {
-                    key,
-                    attempts,
-                    reason,
-                } => {
-                    if record_failed(&tx, key, *attempts, reason)? {
-                        if let Some(observer) = self.observer.as_mut() {
-                            observer.frame_failed(&tx, key)?;
-                        }
-                    }
-                }
                 StoreOp::Withdrawn { key } => {
                     tx.prepare_cached(&format!(
                         "DELETE FROM frames WHERE {FRAME_KEY_SQL} AND status = 'queued'"
                     ))?
                     .execute(key.sql_params())?;
                 }
+                StoreOp::Done { .. } | StoreOp::Failed { .. } => {
+                    let recorded = record_outcome(&tx, op, observer.as_deref_mut())?;
+                    done.kept.extend(kept_image(op, recorded, images).map(|id| (i, id)));
+                }
+            }
+            // What this op finished may free held outcomes: before anything later.
+            if !done.waiting.is_empty() && op.finished_key().is_some() {
+                release_waiting(&tx, batch, &mut done, session, observer, images)?;
             }
         }
         tx.execute(
@@ -398,8 +440,136 @@ impl WriterState {
         )?;
         tx.commit()?;
         self.run = run;
-        Ok(kept)
+        Ok(done)
     }
+}
+
+/// Records the held outcomes (positions in `batch`) that no longer wait,
+/// until none moves; the others stay in `waiting`.
+fn release_waiting(
+    tx: &Transaction<'_>,
+    batch: &[StoreOp],
+    done: &mut Committed,
+    session_started_ms: i64,
+    observer: &mut Option<Box<dyn FrameObserver>>,
+    images: Option<&LabelImageWriter>,
+) -> rusqlite::Result<()> {
+    loop {
+        let before = done.waiting.len();
+        let mut still = Vec::with_capacity(before);
+        for &i in &done.waiting {
+            let Some(key) = batch[i].outcome_key() else {
+                continue;
+            };
+            if waits_for_earlier(tx, key, session_started_ms)? {
+                still.push(i);
+            } else {
+                let recorded = record_outcome(tx, &batch[i], observer.as_deref_mut())?;
+                done.kept.extend(kept_image(&batch[i], recorded, images).map(|id| (i, id)));
+            }
+        }
+        done.waiting = still;
+        if done.waiting.len() == before {
+            return Ok(());
+        }
+    }
+}
+
+/// The row id of a frame just recorded whose label image is kept: it carries
+/// one, and the writer keeps images for every frame or for flagged ones and
+/// this one was flagged.
+fn kept_image(
+    op: &StoreOp,
+    recorded: Option<(i64, bool)>,
+    images: Option<&LabelImageWriter>,
+) -> Option<i64> {
+    let (id, flagged) = recorded?;
+    let carries = matches!(op, StoreOp::Done { label_image: Some(_), .. });
+    (carries && images?.keeps(flagged)).then_some(id)
+}
+
+/// Records a frame's outcome and lets the observer judge it. Returns the row
+/// id of a frame recorded as done and judged, with whether it got a flag.
+fn record_outcome(
+    tx: &Transaction<'_>,
+    op: &StoreOp,
+    observer: Option<&mut (dyn FrameObserver + 'static)>,
+) -> rusqlite::Result<Option<(i64, bool)>> {
+    match op {
+        StoreOp::Done {
+            key,
+            attempts,
+            analysis,
+            ..
+        } => match record_done(tx, key, *attempts, analysis)? {
+            Some((_, Version::SamePixels(earlier))) => tracing::info!(
+                file = %shown(&key.path),
+                "unchanged: a new version with the pixels of frame {earlier}; counted once"
+            ),
+            Some((id, version)) => {
+                let flagged = match observer {
+                    Some(observer) => {
+                        observer.frame_done(tx, id, analysis, version == Version::Supersedes)?
+                    }
+                    None => false,
+                };
+                return Ok(Some((id, flagged)));
+            }
+            None => {}
+        },
+        StoreOp::Failed {
+            key,
+            attempts,
+            reason,
+        } => {
+            if record_failed(tx, key, *attempts, reason)? {
+                if let Some(observer) = observer {
+                    observer.frame_failed(tx, key)?;
+                }
+            }
+        }
+        StoreOp::Queued { .. } | StoreOp::Withdrawn { .. } => {}
+    }
+    Ok(None)
+}
+
+/// True while the run of frame `key` has a frame earlier in acquisition order
+/// that this session queued before it and that is not finished yet.
+fn waits_for_earlier(
+    tx: &Transaction<'_>,
+    key: &FrameKey,
+    session_started_ms: i64,
+) -> rusqlite::Result<bool> {
+    let order =
+        |t: &str| format!("(COALESCE({t}.time_point_index, -1), {t}.acquired_ns, {t}.file)");
+    tx.prepare_cached(&format!(
+        "SELECT EXISTS (SELECT 1 FROM frames AS f JOIN frames AS e ON e.run_id = f.run_id
+             WHERE f.file = ?1 AND f.size_bytes = ?2 AND f.mtime_ns = ?3
+               AND e.status = 'queued' AND e.id < f.id AND e.ready_at_ms >= ?4
+               AND {} < {})",
+        order("e"),
+        order("f")
+    ))?
+    .query_row(
+        params![
+            key.path,
+            key.size_bytes as i64,
+            key.mtime_ns,
+            session_started_ms
+        ],
+        |r| r.get(0),
+    )
+}
+
+/// A done frame compared with the version of it already recorded.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+enum Version {
+    /// No earlier version in the run.
+    First,
+    /// Other pixels than the earlier version, which it supersedes.
+    Supersedes,
+    /// The pixels of the frame with this id: recorded, not counted again.
+    SamePixels(i64),
 }
 
 /// SQLite errors that go away without anything changing in framewarden.
@@ -485,12 +655,14 @@ fn insert_queued(
     let name_parts =
         (!names.all.is_empty()).then(|| serde_json::to_string(&names.all).unwrap_or_default());
     // DO NOTHING on a known identity: re-queueing after a restart, or a second
-    // sighting of the same version, leaves the existing row alone.
+    // sighting of the same version, leaves the existing row alone. A new
+    // version of a file keeps the acquisition time of the run's first one.
     tx.prepare_cached(
         "INSERT INTO frames (run_id, file, size_bytes, mtime_ns, version, status, detected_at_ms, ready_at_ms,
-                             well, site, time_point, channel, name_parts)
+                             well, site, time_point, channel, name_parts, time_point_index, acquired_ns)
          VALUES (?1, ?2, ?3, ?4, (SELECT COALESCE(MAX(version), 0) + 1 FROM frames WHERE file = ?2),
-                 'queued', ?5, ?6, ?7, ?8, ?9, ?10, ?11)
+                 'queued', ?5, ?6, ?7, ?8, ?9, ?10, ?11, ?12,
+                 COALESCE((SELECT MIN(acquired_ns) FROM frames WHERE file = ?2 AND run_id = ?1), ?4))
          ON CONFLICT (file, size_bytes, mtime_ns) DO NOTHING",
     )?
     .execute(params![
@@ -505,20 +677,22 @@ fn insert_queued(
         names.time_point,
         names.channel,
         name_parts,
+        names.time_point_index(),
     ])?;
     Ok(())
 }
 
-/// Returns the frame's id, or `None` when there was no unfinished row to complete.
+/// Returns the frame's id and how it stands to an earlier version, or `None`
+/// when there was no unfinished row to complete.
 fn record_done(
     tx: &Transaction<'_>,
     key: &FrameKey,
     attempts: u32,
     analysis: &FileAnalysis,
-) -> rusqlite::Result<Option<i64>> {
+) -> rusqlite::Result<Option<(i64, Version)>> {
     let r = &analysis.result;
     let now = now_ms();
-    let frame_id: Option<i64> = tx
+    let frame_id: Option<(i64, i64, Position)> = tx
         .prepare_cached(&format!(
             "UPDATE frames SET status = 'done', error = NULL, attempts = ?4, analyzed_at_ms = ?5,
                  latency_ms = MAX(0, ?5 - ready_at_ms),
@@ -526,9 +700,9 @@ fn record_done(
                  object_count = ?12, foreground_fraction = ?13, background_level = ?14,
                  saturation_fraction = ?15, focus = ?16, illumination_change = ?17,
                  pixel_size_um = ?18, pixel_size_source = ?19, bimodality = ?20, size_filtered = ?21,
-                 merged_fraction = ?22
+                 merged_fraction = ?22, pixel_hash = ?23
              WHERE {FRAME_KEY_SQL} AND status <> 'done'
-             RETURNING id"
+             RETURNING id, run_id, time_point, well, site, channel"
         ))?
         .query_row(
             params![
@@ -554,24 +728,90 @@ fn record_done(
                 r.bimodality,
                 r.size_filtered as i64,
                 r.merged_fraction,
+                analysis.pixel_hash as i64,
             ],
-            |row| row.get(0),
+            |row| {
+                Ok((
+                    row.get(0)?,
+                    row.get(1)?,
+                    Position {
+                        time_point: row.get(2)?,
+                        well: row.get(3)?,
+                        site: row.get(4)?,
+                        channel: row.get(5)?,
+                    },
+                ))
+            },
         )
         .optional()?;
-    let Some(frame_id) = frame_id else {
+    let Some((frame_id, run_id, position)) = frame_id else {
         tracing::warn!(
             "store: {} has no queued row to complete; skipped",
             shown(&key.path)
         );
         return Ok(None);
     };
+    let version = compare_with_earlier(tx, frame_id, run_id, key, &position, analysis.pixel_hash)?;
     tx.prepare_cached("DELETE FROM objects WHERE frame_id = ?1")?
         .execute([frame_id])?;
-    insert_objects(tx, frame_id, "raw", &r.objects)?;
-    if let Some(recount) = &analysis.recount {
-        insert_objects(tx, frame_id, "recount", &recount.objects)?;
+    if !matches!(version, Version::SamePixels(_)) {
+        insert_objects(tx, frame_id, "raw", &r.objects)?;
+        if let Some(recount) = &analysis.recount {
+            insert_objects(tx, frame_id, "recount", &recount.objects)?;
+        }
     }
-    Ok(Some(frame_id))
+    Ok(Some((frame_id, version)))
+}
+
+/// A frame row's place: the parts of its name that make its position
+/// ([`crate::store::POSITION_SQL`]) and its time point.
+struct Position {
+    time_point: Option<String>,
+    well: Option<String>,
+    site: Option<String>,
+    channel: Option<String>,
+}
+
+/// Finds the version of frame `frame_id` already counted in the run (the same
+/// file, or the same position and time point when the pattern names one) and
+/// marks whichever row no longer counts: this one when its pixels are the
+/// same, the earlier one when they differ.
+fn compare_with_earlier(
+    tx: &Transaction<'_>,
+    frame_id: i64,
+    run_id: i64,
+    key: &FrameKey,
+    at: &Position,
+    pixel_hash: u64,
+) -> rusqlite::Result<Version> {
+    // Two indexed look-ups (by file; by well and time point), not one scan.
+    let earlier: Option<(i64, Option<i64>, String)> = tx
+        .prepare_cached(&format!(
+            "SELECT id, pixel_hash, status FROM frames
+             WHERE id IN (SELECT id FROM frames WHERE file = ?3
+                          UNION ALL
+                          SELECT id FROM frames WHERE ?4 IS NOT NULL AND well IS ?5 AND time_point = ?4
+                                                  AND site IS ?6 AND channel IS ?7)
+               AND run_id = ?1 AND id <> ?2 AND status IN ('done', 'failed') AND {COUNTED_SQL}
+             ORDER BY id DESC LIMIT 1"
+        ))?
+        .query_row(
+            params![run_id, frame_id, key.path, at.time_point, at.well, at.site, at.channel],
+            |r| Ok((r.get(0)?, r.get(1)?, r.get(2)?)),
+        )
+        .optional()?;
+    let Some((earlier, earlier_hash, status)) = earlier else {
+        return Ok(Version::First);
+    };
+    if status == "done" && earlier_hash == Some(pixel_hash as i64) {
+        tx.prepare_cached("UPDATE frames SET same_pixels_as = ?2 WHERE id = ?1")?
+            .execute([frame_id, earlier])?;
+        Ok(Version::SamePixels(earlier))
+    } else {
+        tx.prepare_cached("UPDATE frames SET superseded_by = ?2 WHERE id = ?1")?
+            .execute([earlier, frame_id])?;
+        Ok(Version::Supersedes)
+    }
 }
 
 /// Objects per INSERT statement: a multi-row statement costs far less per row
@@ -703,6 +943,7 @@ mod tests {
                 ..object.clone()
             })
             .collect();
+        let pixel_hash = objects.len() as u64;
         Box::new(FileAnalysis {
             result: FrameResult {
                 width: 4,
@@ -724,6 +965,7 @@ mod tests {
                 objects,
             },
             pixel_size_source: None,
+            pixel_hash,
             recount: None,
         })
     }
@@ -980,5 +1222,161 @@ mod tests {
         assert_ne!(w.run_id, run1, "a new run on request");
         drop(tx);
         w.join();
+    }
+
+    /// The files judged, in order, and whether each superseded a frame.
+    type JudgedLog = Arc<Mutex<Vec<(String, bool)>>>;
+
+    /// Records which frames the observer was asked to judge, in order.
+    struct Judged(JudgedLog);
+
+    impl FrameObserver for Judged {
+        fn begin(&mut self) {}
+        fn frame_done(
+            &mut self,
+            tx: &Transaction<'_>,
+            frame_id: i64,
+            _analysis: &FileAnalysis,
+            supersedes: bool,
+        ) -> rusqlite::Result<()> {
+            let file: String =
+                tx.query_row("SELECT file FROM frames WHERE id = ?1", [frame_id], |r| {
+                    r.get(0)
+                })?;
+            self.0.lock().unwrap().push((file, supersedes));
+            Ok(())
+        }
+        fn frame_failed(&mut self, _: &Transaction<'_>, key: &FrameKey) -> rusqlite::Result<()> {
+            self.0.lock().unwrap().push((key.path.clone(), false));
+            Ok(())
+        }
+        fn committed(&mut self) {}
+        fn rolled_back(&mut self) {}
+        fn tick(&mut self, _: &Connection) -> rusqlite::Result<()> {
+            Ok(())
+        }
+        fn close(self: Box<Self>) {}
+    }
+
+    fn start_judged(db: &std::path::Path) -> (Writer, Sender<StoreOp>, JudgedLog) {
+        let mut conn = open_for_writing(db).unwrap();
+        let run = open_run(&mut conn, &policy(false)).unwrap();
+        let judged = Arc::new(Mutex::new(Vec::new()));
+        let setup = WriterSetup {
+            capacity: 16,
+            max_batch: 16,
+            on_commit: Box::new(|_| {}),
+            observer: Some(Box::new(Judged(Arc::clone(&judged)))),
+            label_images: None,
+        };
+        let (w, tx) = Writer::start(conn, policy(false), run, setup).unwrap();
+        (w, tx, judged)
+    }
+
+    fn queued_at(k: &FrameKey, time_point: &str) -> StoreOp {
+        StoreOp::Queued {
+            key: k.clone(),
+            detected_at_ms: now_ms(),
+            ready_at_ms: now_ms(),
+            names: NameParts {
+                well: Some("A01".into()),
+                time_point: Some(time_point.into()),
+                ..NameParts::default()
+            },
+        }
+    }
+
+    fn done(k: &FrameKey, analysis: Box<FileAnalysis>) -> StoreOp {
+        StoreOp::Done {
+            key: k.clone(),
+            attempts: 1,
+            analysis,
+        }
+    }
+
+    /// Workers finish in any order; the observer judges in acquisition order:
+    /// time point 2's result waits (its row stays queued) until time point 1's
+    /// is in, and a file that shows up later never holds an earlier one back.
+    #[test]
+    fn results_are_judged_in_acquisition_order_whatever_order_they_finish_in() {
+        let dir = tempfile::tempdir().unwrap();
+        let db = dir.path().join("fw.db");
+        let (w, tx, judged) = start_judged(&db);
+        // Names in the opposite order to the time points: the time point rules.
+        let t1 = key("/acq/z_t1.tif", 10);
+        let t2 = key("/acq/y_t2.tif", 10);
+        let t0 = key("/acq/x_t0.tif", 10);
+        tx.send(queued_at(&t1, "t1")).unwrap();
+        tx.send(queued_at(&t2, "t2")).unwrap();
+        tx.send(done(&t2, analysis(2))).unwrap();
+        // Give the writer time to commit (and hold) time point 2 on its own.
+        std::thread::sleep(Duration::from_millis(300));
+        let reader = open_for_writing(&db).unwrap();
+        assert_eq!(lookup(&reader, &t2).unwrap(), Some(FrameStatus::Queued));
+        assert!(judged.lock().unwrap().is_empty());
+        tx.send(done(&t1, analysis(1))).unwrap();
+        // Queued after the others, earlier in time: not waited for by them,
+        // and judged when it comes.
+        tx.send(queued_at(&t0, "t0")).unwrap();
+        tx.send(done(&t0, analysis(3))).unwrap();
+        drop(tx);
+        w.join();
+        let order: Vec<String> = judged.lock().unwrap().iter().map(|j| j.0.clone()).collect();
+        assert_eq!(order, [t1.path.clone(), t2.path.clone(), t0.path.clone()]);
+        assert_eq!(lookup(&reader, &t2).unwrap(), Some(FrameStatus::Done));
+    }
+
+    /// A new version with the same pixels is recorded and not judged or
+    /// counted; one with other pixels supersedes the counted version.
+    #[test]
+    fn a_new_version_with_the_same_pixels_counts_once_and_other_pixels_supersede() {
+        let dir = tempfile::tempdir().unwrap();
+        let db = dir.path().join("fw.db");
+        let (w, tx, judged) = start_judged(&db);
+        let v1 = key("/acq/a_t1.tif", 10);
+        let touched = FrameKey {
+            mtime_ns: 8,
+            ..v1.clone()
+        };
+        let rewritten = key("/acq/a_t1.tif", 12);
+        for (k, objects) in [(&v1, 2), (&touched, 2), (&rewritten, 5)] {
+            tx.send(queued_at(k, "1")).unwrap();
+            // The test's analyses hash as their object count.
+            tx.send(done(k, analysis(objects))).unwrap();
+        }
+        drop(tx);
+        w.join();
+        assert_eq!(
+            *judged.lock().unwrap(),
+            [(v1.path.clone(), false), (v1.path.clone(), true)]
+        );
+        let conn = open_for_writing(&db).unwrap();
+        let rows: Vec<(i64, Option<i64>, Option<i64>, i64)> = conn
+            .prepare(
+                "SELECT id, same_pixels_as, superseded_by,
+                        (SELECT count(*) FROM objects WHERE frame_id = frames.id)
+                 FROM frames ORDER BY id",
+            )
+            .unwrap()
+            .query_map([], |r| Ok((r.get(0)?, r.get(1)?, r.get(2)?, r.get(3)?)))
+            .unwrap()
+            .collect::<Result<_, _>>()
+            .unwrap();
+        assert_eq!(
+            rows,
+            [
+                (1, None, Some(3), 2),
+                (2, Some(1), None, 0),
+                (3, None, None, 5)
+            ]
+        );
+        let counted: i64 = conn
+            .query_row(
+                &format!("SELECT count(*) FROM frames WHERE {COUNTED_SQL}"),
+                [],
+                |r| r.get(0),
+            )
+            .unwrap();
+        assert_eq!(counted, 1);
     }
 }

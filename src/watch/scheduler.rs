@@ -5,6 +5,12 @@
 //! File events are hints only; the rule is: size and mtime unchanged over at least
 //! two looks and the settle time. Decoding in full (the last part of the rule) is
 //! the worker's; a short read comes back here as [`SchedMsg::Retry`].
+//!
+//! Files that are due together (a catch-up scan, a burst, the rest of a full
+//! queue) are looked at and queued in acquisition order: by the time point the
+//! file-name pattern names, then by modification time, then by name. A scan
+//! hands over everything it found at once, so that a whole backlog is due
+//! together.
 
 use std::collections::HashMap;
 use std::path::{Path, PathBuf};
@@ -59,6 +65,19 @@ struct Candidate {
     attempts: u32,
     /// The identity a worker already tried (its row is `queued`).
     previous: Option<FrameKey>,
+    /// The time point the file-name pattern names, as a number.
+    time_point: Option<i64>,
+}
+
+impl Candidate {
+    /// Where the file stands in acquisition order, as far as known: time
+    /// point, then modification time at the last look (the name breaks ties).
+    fn order(&self) -> (i64, i64) {
+        (
+            self.time_point.unwrap_or(-1),
+            self.last.map_or(i64::MIN, |(_, mtime_ns)| mtime_ns),
+        )
+    }
 }
 
 /// Shortest pause between two looks at the same file.
@@ -107,8 +126,10 @@ impl Scheduler {
                     self.rescan_all();
                 }
                 Ok(SchedMsg::Found(paths)) => {
+                    // One moment for the whole list: its files are due together.
+                    let now = Instant::now();
                     for path in paths {
-                        hint(&mut pending, path, Instant::now());
+                        self.hint(&mut pending, path, now);
                     }
                 }
                 Ok(SchedMsg::Retry {
@@ -123,6 +144,7 @@ impl Scheduler {
                     let backoff = self.watch.retry_backoff
                         * 2u32.saturating_pow(attempts.saturating_sub(1).min(10));
                     let now = Instant::now();
+                    let time_point = self.time_point(&path);
                     pending.insert(
                         path,
                         Candidate {
@@ -133,6 +155,7 @@ impl Scheduler {
                             due: now + backoff,
                             attempts,
                             previous: Some(previous),
+                            time_point,
                         },
                     );
                 }
@@ -151,12 +174,17 @@ impl Scheduler {
                 self.rescan_all();
                 next_rescan = now + self.watch.rescan_interval;
             }
-            let due: Vec<PathBuf> = pending
+            let mut due: Vec<(i64, i64, PathBuf)> = pending
                 .iter()
                 .filter(|(_, c)| c.due <= now)
-                .map(|(p, _)| p.clone())
+                .map(|(p, c)| {
+                    let (time_point, mtime_ns) = c.order();
+                    (time_point, mtime_ns, p.clone())
+                })
                 .collect();
-            for path in due {
+            // Acquisition order: the earliest frame takes the queue's room first.
+            due.sort_unstable();
+            for (_, _, path) in due {
                 if let Some(mut c) = pending.remove(&path) {
                     if self.look(&path, &mut c, &mut in_flight, now) == Look::Again {
                         pending.insert(path, c);
@@ -194,7 +222,7 @@ impl Scheduler {
                         // produce no event: list the folder ourselves.
                         let _ = self.scan_tx.send(path.clone());
                     } else if self.watch.filter.accepts(path) {
-                        hint(pending, path.clone(), now);
+                        self.hint(pending, path.clone(), now);
                     }
                 }
             }
@@ -330,6 +358,33 @@ impl Scheduler {
         Look::Drop
     }
 
+    /// Something may have happened to `path`: look at it soon.
+    fn hint(&self, pending: &mut HashMap<PathBuf, Candidate>, path: PathBuf, now: Instant) {
+        if let Some(c) = pending.get_mut(&path) {
+            c.due = c.due.min(now + MIN_LOOK_GAP);
+            return;
+        }
+        let time_point = self.time_point(&path);
+        pending.insert(
+            path,
+            Candidate {
+                detected_at_ms: now_ms(),
+                last: None,
+                changed_at: now,
+                looks: 0,
+                due: now,
+                attempts: 0,
+                previous: None,
+                time_point,
+            },
+        );
+    }
+
+    /// The time point `path`'s name gives, as a number.
+    fn time_point(&self, path: &Path) -> Option<i64> {
+        self.watch.name_pattern.parts(path).time_point_index()
+    }
+
     fn send_store(&self, op: StoreOp) {
         if self.store_tx.send(op).is_err() {
             tracing::error!("the store writer has stopped; a record was not written");
@@ -343,23 +398,10 @@ enum Look {
     Drop,
 }
 
-fn hint(pending: &mut HashMap<PathBuf, Candidate>, path: PathBuf, now: Instant) {
-    pending
-        .entry(path)
-        .and_modify(|c| c.due = c.due.min(now + MIN_LOOK_GAP))
-        .or_insert_with(|| Candidate {
-            detected_at_ms: now_ms(),
-            last: None,
-            changed_at: now,
-            looks: 0,
-            due: now,
-            attempts: 0,
-            previous: None,
-        });
-}
-
 /// The scanner thread: lists a folder tree (catch-up, rescans, new subfolders)
-/// and reports the files whose current version is not recorded as finished.
+/// and reports the files whose current version is not recorded as finished,
+/// all in one list, so that the scheduler can queue a backlog in acquisition
+/// order.
 pub fn scan_loop(
     requests: &Receiver<PathBuf>,
     reader: &Connection,
@@ -367,7 +409,6 @@ pub fn scan_loop(
     sched_tx: &Sender<SchedMsg>,
     stopping: &AtomicBool,
 ) {
-    const CHUNK: usize = 256;
     while let Ok(root) = requests.recv() {
         let mut found = Vec::new();
         let mut listed = 0usize;
@@ -390,13 +431,6 @@ pub fn scan_loop(
                 // Unrecorded, queued by an earlier process, or a look-up error:
                 // hand it over; the scheduler checks again before queueing.
                 _ => found.push(entry.into_path()),
-            }
-            if found.len() >= CHUNK
-                && sched_tx
-                    .send(SchedMsg::Found(std::mem::take(&mut found)))
-                    .is_err()
-            {
-                return;
             }
         }
         tracing::debug!(
