@@ -15,7 +15,8 @@
 //! | judging | [`qc`] |
 //! | watching | [`watch`] |
 //! | configuration | [`settings`] (builds every layer's parameters) |
-//! | commands | [`daemon`], [`analyze`], [`status`], [`demo`] |
+//! | reading a run back | [`status`], then [`html_report`] (which uses it) |
+//! | commands | [`daemon`] (rewrites the report during a run), [`analyze`], [`demo`] |
 
 pub mod text;
 
@@ -37,7 +38,10 @@ pub mod watch;
 
 pub mod settings;
 
+pub mod status;
+
+pub mod html_report;
+
 pub mod analyze;
 pub mod daemon;
 pub mod demo;
-pub mod status;

@@ -19,8 +19,9 @@ use crate::qc::params::{
 };
 use crate::settings::document::{
     AlertsSection, CalibrationSection, FlatFieldFiles, FrameFile, LimitsSection, QualitySection,
-    SegmentSection, StoreSection, WatchSection,
+    ReportSection, SegmentSection, StoreSection, WatchSection,
 };
+use crate::settings::report::ReportSettings;
 use crate::store::StoreSettings;
 use crate::watch::{default_workers, BadPattern, PathFilter, WatchMode, WatchSettings};
 
@@ -319,6 +320,14 @@ pub fn store(s: StoreSection, base: &Path) -> Result<StoreSettings, ValueError> 
     Ok(StoreSettings {
         database: base.join(s.database),
         batch_max: positive("store.batch_max", s.batch_max)?,
+    })
+}
+
+/// `[report]`; a relative path is anchored at `base`.
+pub fn report(r: ReportSection, base: &Path) -> Result<ReportSettings, ValueError> {
+    Ok(ReportSettings {
+        path: (!r.path.as_os_str().is_empty()).then(|| base.join(r.path)),
+        every: Duration::from_secs(positive("report.every_min", r.every_min)?.saturating_mul(60)),
     })
 }
 

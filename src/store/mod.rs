@@ -51,6 +51,14 @@ pub fn iso_time_sql(column: &str) -> String {
     format!("strftime('%Y-%m-%dT%H:%M:%fZ', {column} / 1000.0, 'unixepoch')")
 }
 
+/// Where the label image of frame `frame_id` of the database `db` is kept:
+/// `<db dir>/<db file stem>-labels/frame-<id>.tif`.
+pub fn label_image_path(db: &Path, frame_id: i64) -> PathBuf {
+    let stem = db.file_stem().unwrap_or_default().to_string_lossy();
+    db.with_file_name(format!("{stem}-labels"))
+        .join(format!("frame-{frame_id}.tif"))
+}
+
 /// The `[store]` settings: where the database is and how much one
 /// transaction records.
 #[derive(Debug, Clone, PartialEq)]
