@@ -29,7 +29,7 @@ pub mod palette {
     pub const SERIES: [RGBColor; 5] = [BLUE, VERMILLION, GREEN, PURPLE, SKY_BLUE];
 }
 
-use palette::{BLACK, BLUE, ORANGE, PURPLE, SERIES, SKY_BLUE, VERMILLION};
+use palette::{BLACK, BLUE, GREEN, ORANGE, PURPLE, SERIES, SKY_BLUE, VERMILLION};
 
 /// The time axis: milliseconds since the Unix epoch to minutes or hours since
 /// the run's start.
@@ -46,10 +46,13 @@ pub struct TimeAxis {
 }
 
 impl TimeAxis {
-    /// Minutes for a run shorter than three hours, hours otherwise.
+    /// Seconds for a run shorter than three minutes, minutes for one shorter
+    /// than three hours, hours otherwise.
     pub fn new(start_ms: i64, end_ms: i64) -> TimeAxis {
         let span = (end_ms - start_ms).max(1) as f64;
-        let (unit_ms, unit) = if span < 3.0 * 3_600_000.0 {
+        let (unit_ms, unit) = if span < 180_000.0 {
+            (1000.0, "s")
+        } else if span < 3.0 * 3_600_000.0 {
             (60_000.0, "min")
         } else {
             (3_600_000.0, "h")
@@ -65,6 +68,15 @@ impl TimeAxis {
     /// `at_ms` on the axis.
     pub fn at(&self, at_ms: i64) -> f64 {
         (at_ms - self.start_ms) as f64 / self.unit_ms
+    }
+
+    /// A tick label: whole units, or tenths on a short axis.
+    fn tick(&self, x: f64) -> String {
+        if self.end >= 5.0 {
+            format!("{x:.0}")
+        } else {
+            format!("{x:.1}")
+        }
     }
 
     fn label(&self) -> String {
@@ -83,6 +95,17 @@ fn svg(size: (u32, u32), draw: impl FnOnce(&Area) -> Result<(), String>) -> Resu
         root.present().map_err(|e| e.to_string())?;
     }
     Ok(out)
+}
+
+/// A tick label for a metric's value: whole numbers from 100 up, three
+/// significant digits below.
+fn value_tick(v: f64) -> String {
+    if v.abs() >= 100.0 {
+        format!("{v:.0}")
+    } else {
+        let decimals = (2 - v.abs().max(1e-9).log10().floor() as i32).clamp(0, 6) as usize;
+        format!("{v:.decimals$}")
+    }
 }
 
 fn err(e: impl std::fmt::Display) -> String {
@@ -121,6 +144,8 @@ pub fn count_plot(points: &[CountPoint], axis: &TimeAxis, y_max: f64) -> Result<
             .y_labels(4)
             .x_desc(axis.label())
             .y_desc("objects")
+            .y_label_formatter(&|y| format!("{y:.0}"))
+            .x_label_formatter(&|x| axis.tick(*x))
             .label_style(("sans-serif", 10))
             .axis_desc_style(("sans-serif", 10))
             .draw()
@@ -216,6 +241,7 @@ pub fn metric_overview(
             .configure_mesh()
             .disable_mesh()
             .x_desc(axis.label())
+            .x_label_formatter(&|x| axis.tick(*x))
             .y_desc("EWMA of (value - baseline) [baseline sigma]")
             .label_style(("sans-serif", 11))
             .axis_desc_style(("sans-serif", 11))
@@ -332,6 +358,8 @@ pub fn metric_position(
             .x_labels(5)
             .y_labels(5)
             .x_desc(axis.label())
+            .x_label_formatter(&|x| axis.tick(*x))
+            .y_label_formatter(&|y| value_tick(*y))
             .y_desc(unit)
             .label_style(("sans-serif", 10))
             .axis_desc_style(("sans-serif", 10))
@@ -368,13 +396,11 @@ pub fn metric_position(
             }))
             .map_err(err)?;
         chart
-            .draw_series(LineSeries::new(ewma, GREEN_LINE.stroke_width(2)))
+            .draw_series(LineSeries::new(ewma, GREEN.stroke_width(2)))
             .map_err(err)?;
         Ok(())
     })
 }
-
-const GREEN_LINE: RGBColor = palette::GREEN;
 
 /// Every alert episode as a bar on its condition's row (open ones to the end
 /// of the axis), notices as a tick.
@@ -399,6 +425,7 @@ pub fn alert_timeline(episodes: &[Episode], axis: &TimeAxis) -> Result<String, S
             .configure_mesh()
             .disable_mesh()
             .x_desc(axis.label())
+            .x_label_formatter(&|x| axis.tick(*x))
             .y_labels(rows * 2 + 1)
             .y_label_formatter(&move |y: &f64| {
                 let i = (*y - 0.5).round();

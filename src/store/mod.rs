@@ -515,6 +515,18 @@ mod tests {
     use super::*;
 
     #[test]
+    fn label_images_live_in_a_folder_named_after_the_database() {
+        assert_eq!(
+            label_image_path(Path::new("/data/night.db"), 42),
+            PathBuf::from("/data/night-labels/frame-42.tif")
+        );
+        assert_eq!(
+            label_image_path(Path::new("fw.db"), 7),
+            PathBuf::from("fw-labels/frame-7.tif")
+        );
+    }
+
+    #[test]
     fn an_older_database_is_migrated_forward_keeping_its_rows() {
         let dir = tempfile::tempdir().unwrap();
         let db = dir.path().join("fw.db");
