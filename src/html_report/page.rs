@@ -23,6 +23,10 @@ use crate::store::{self, StoreError};
 /// Flagged frames shown with pictures; the rest are listed.
 pub const MAX_PICTURED: usize = 48;
 
+/// Positions that left control drawn one by one per metric; the rest are
+/// counted (the overview plot shows them all).
+pub const MAX_MULTIPLES: usize = 24;
+
 /// Why the report could not be made.
 #[derive(Debug, thiserror::Error)]
 pub enum ReportError {
@@ -194,13 +198,13 @@ dl.summary dt{font-weight:600}dl.summary dd{margin:0}
 .cell{border:1px solid #ddd;border-radius:4px;padding:2px;min-width:0}
 .cell.empty{background:#f4f4f4}
 .cell svg,.list svg{width:100%;height:auto;display:block}
-.cell .name{font-size:.8em;font-weight:600;text-align:center}
+.cell .name{font-size:.75em;font-weight:600;text-align:center;white-space:nowrap;overflow:hidden;text-overflow:ellipsis}
 .list{display:grid;grid-template-columns:repeat(auto-fill,minmax(220px,1fr));gap:6px}
 svg{max-width:100%;height:auto}
 .multiples{display:grid;grid-template-columns:repeat(auto-fill,minmax(370px,1fr));gap:6px}
 table{border-collapse:collapse;font-size:.92em}td,th{border:1px solid #ccc;padding:.25em .5em;vertical-align:top;text-align:left}
 .pair{display:flex;gap:1em;flex-wrap:wrap;border:1px solid #ddd;border-radius:4px;padding:.6em;margin:.8em 0}
-.pair figure{margin:0}.pair img{image-rendering:pixelated;width:320px;height:auto;border:1px solid #999}
+.pair figure{margin:0;width:322px}.pair figcaption{font-size:.85em}.pair img{image-rendering:pixelated;width:320px;height:auto;border:1px solid #999}
 .pair .flags{flex:1;min-width:280px}
 .key span{display:inline-block;width:1em;height:.8em;margin:0 .3em 0 .8em;vertical-align:middle}
 pre{background:#f6f6f6;padding:.6em;overflow-x:auto;font-size:.85em}
@@ -397,7 +401,7 @@ impl Page<'_> {
                 let cols = wells.values().map(|c| c.1).max().unwrap_or(1);
                 let _ = writeln!(
                     h,
-                    "<div class=\"plate\" style=\"grid-template-columns:2em repeat({cols},minmax(150px,1fr))\"><div></div>"
+                    "<div class=\"plate\" style=\"grid-template-columns:2em repeat({cols},minmax(108px,1fr))\"><div></div>"
                 );
                 for c in 1..=cols {
                     let _ = write!(h, "<div class=\"head\">{c}</div>");
@@ -485,20 +489,36 @@ impl Page<'_> {
                 list = if drifting.is_empty() {
                     String::new()
                 } else {
-                    format!(
-                        " ({})",
-                        esc(&drifting.iter().map(|t| t.position.as_str()).collect::<Vec<_>>().join(", "))
-                    )
+                    let names: Vec<&str> = drifting
+                        .iter()
+                        .take(MAX_MULTIPLES)
+                        .map(|t| t.position.as_str())
+                        .collect();
+                    let more = drifting.len().saturating_sub(MAX_MULTIPLES);
+                    let more = if more > 0 {
+                        format!(" and {more} more")
+                    } else {
+                        String::new()
+                    };
+                    format!(" ({}{more})", esc(&names.join(", ")))
                 }
             );
             h.push_str(&plots::metric_overview(&traces, &episodes, axis)?);
             if !drifting.is_empty() {
                 let _ = writeln!(
                     h,
-                    "<details open><summary>the positions that left control, in {}</summary><div class=\"multiples\">",
+                    "<details open><summary>the positions that left control, in {}</summary>",
                     unit(metric)
                 );
-                for t in drifting {
+                if drifting.len() > MAX_MULTIPLES {
+                    let _ = writeln!(
+                        h,
+                        "<p class=\"note\">The first {MAX_MULTIPLES} of {} are shown.</p>",
+                        drifting.len()
+                    );
+                }
+                h.push_str("<div class=\"multiples\">");
+                for t in drifting.iter().take(MAX_MULTIPLES) {
                     h.push_str(&plots::metric_position(
                         t,
                         &format!("{} [{}]", metric.as_str(), unit(metric)),

@@ -260,7 +260,7 @@ pub fn metric_overview(
                     limit_at.iter().map(|&(x, l)| (x, sign * l)),
                     6,
                     4,
-                    SKY_BLUE.stroke_width(2).into(),
+                    SKY_BLUE.stroke_width(2),
                 ))
                 .map_err(err)?;
         }
@@ -281,23 +281,31 @@ pub fn metric_overview(
                 ))
                 .map_err(err)?;
         }
+        // Few drifting positions get a colour each and a legend; many share
+        // vermillion (the page lists them).
+        let legend = traces.iter().filter(|t| t.drifted).count() <= SERIES.len();
         for t in traces.iter().filter(|t| t.drifted) {
-            let colour = SERIES[drifting % SERIES.len()];
+            let colour = if legend {
+                SERIES[drifting % SERIES.len()]
+            } else {
+                VERMILLION
+            };
             drifting += 1;
-            chart
+            let series = chart
                 .draw_series(LineSeries::new(
                     t.points
                         .iter()
                         .filter_map(|p| p.ewma.map(|e| (axis.at(p.at_ms), e))),
-                    colour.stroke_width(2),
+                    colour.stroke_width(if legend { 2 } else { 1 }),
                 ))
-                .map_err(err)?
-                .label(t.position.clone())
-                .legend(move |(x, y)| {
+                .map_err(err)?;
+            if legend {
+                series.label(t.position.clone()).legend(move |(x, y)| {
                     PathElement::new([(x, y), (x + 14, y)], colour.stroke_width(2))
                 });
+            }
         }
-        if drifting > 0 {
+        if drifting > 0 && legend {
             chart
                 .configure_series_labels()
                 .background_style(WHITE.mix(0.85))
@@ -385,7 +393,7 @@ pub fn metric_position(
                         .map(|&(x, a, b)| (x, if upper { b } else { a })),
                     5,
                     3,
-                    SKY_BLUE.stroke_width(2).into(),
+                    SKY_BLUE.stroke_width(2),
                 ))
                 .map_err(err)?;
         }
