@@ -252,7 +252,7 @@ fn the_report_opens_offline_in_chromium_with_the_status_numbers() {
 }
 
 #[test]
-fn watch_writes_the_report_when_it_stops() {
+fn watch_rewrites_the_report_every_interval_and_when_it_stops() {
     let mut bench =
         watch_support::Bench::new("[report]\npath = \"night/report.html\"\nevery_min = 1\n");
     bench.start();
@@ -266,6 +266,13 @@ fn watch_writes_the_report_when_it_stops() {
         !report.exists(),
         "written before the first interval or the end"
     );
+    // The first rewrite, a minute after the start (the shortest interval).
+    watch_support::wait_for("the first report", Duration::from_secs(120), || {
+        report.exists()
+    });
+    assert!(std::fs::read_to_string(&report)
+        .unwrap()
+        .contains("<dd data-key=\"ended\">still being watched</dd>"));
     bench.signal("TERM");
     assert_eq!(bench.wait_exit(Duration::from_secs(60)), Some(0));
     let html = std::fs::read_to_string(&report)
@@ -275,6 +282,8 @@ fn watch_writes_the_report_when_it_stops() {
         "{html}"
     );
     assert!(html.ends_with("</html>\n"));
+    // The last one knows the run has ended.
+    assert!(!html.contains("still being watched"));
     // Only the report itself: the temporary file was renamed over it.
     let names: Vec<_> = std::fs::read_dir(report.parent().unwrap())
         .unwrap()
