@@ -15,7 +15,8 @@
 //! | judging | [`qc`] |
 //! | watching | [`watch`] |
 //! | configuration | [`settings`] (builds every layer's parameters) |
-//! | commands | [`daemon`], [`analyze`], [`status`], [`export`], [`demo`] |
+//! | reading a run back | [`status`], [`export`], then [`html_report`] (which uses `status`) |
+//! | commands | [`daemon`] (rewrites the report during a run), [`analyze`], [`demo`] |
 
 pub mod text;
 
@@ -37,8 +38,11 @@ pub mod watch;
 
 pub mod settings;
 
+pub mod status;
+
+pub mod export;
+pub mod html_report;
+
 pub mod analyze;
 pub mod daemon;
 pub mod demo;
-pub mod export;
-pub mod status;

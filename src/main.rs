@@ -99,6 +99,25 @@ enum Command {
         #[arg(short = 'o', long = "output", value_name = "FILE")]
         output: Option<PathBuf>,
     },
+    /// Write one self-contained HTML report of a run (opens offline in any browser).
+    Report {
+        /// Configuration file whose [store] database to read.
+        #[arg(long)]
+        config: Option<PathBuf>,
+        /// Database file (overrides the config).
+        #[arg(long)]
+        db: Option<PathBuf>,
+        /// Report this run (by number) instead of the current or last one.
+        #[arg(long)]
+        run: Option<i64>,
+        /// The HTML file to write (default: framewarden-report.html).
+        #[arg(
+            short = 'o',
+            long = "output",
+            default_value = "framewarden-report.html"
+        )]
+        output: PathBuf,
+    },
     /// Replay an invented overnight plate time-lapse into a new folder while the
     /// watch service records it, then tell what happened (a few seconds). The
     /// folder (frames, database, log) is kept; the summary names it.
@@ -214,6 +233,33 @@ fn main() -> ExitCode {
                 }
                 Err(e) => {
                     eprintln!("framewarden export: {e}");
+                    ExitCode::from(FAILURE)
+                }
+            }
+        }
+        Command::Report {
+            config,
+            db,
+            run,
+            output,
+        } => {
+            let settings = match load_settings(config.as_deref()) {
+                Ok(s) => s,
+                Err(code) => return code,
+            };
+            let db = db.unwrap_or(settings.store.database);
+            match framewarden::html_report::write(&db, run, &output) {
+                Ok(w) => {
+                    println!(
+                        "wrote the report of run {} to {} ({} kB)",
+                        w.run_id,
+                        output.display(),
+                        w.bytes.div_ceil(1000)
+                    );
+                    ExitCode::SUCCESS
+                }
+                Err(e) => {
+                    eprintln!("framewarden report: {e}");
                     ExitCode::from(FAILURE)
                 }
             }

@@ -53,12 +53,26 @@ pub fn shown_path(path: &std::path::Path) -> String {
 /// ```
 pub fn shown_time(utc: &str, zone: &jiff::tz::TimeZone) -> String {
     match utc.parse::<jiff::Timestamp>() {
-        Ok(t) => t
-            .to_zoned(zone.clone())
-            .strftime("%Y-%m-%d %H:%M:%S %:z")
-            .to_string(),
+        Ok(t) => zoned(t, zone),
         Err(_) => shown(utc).into_owned(),
     }
+}
+
+/// [`shown_time`] of a time in milliseconds since the Unix epoch.
+///
+/// ```
+/// use framewarden::text::shown_time_ms;
+/// let paris = jiff::tz::TimeZone::get("Europe/Paris").unwrap();
+/// assert_eq!(shown_time_ms(1_764_669_845_250, &paris), "2025-12-02 11:04:05 +01:00");
+/// ```
+pub fn shown_time_ms(ms: i64, zone: &jiff::tz::TimeZone) -> String {
+    jiff::Timestamp::from_millisecond(ms).map_or_else(|_| format!("{ms} ms"), |t| zoned(t, zone))
+}
+
+fn zoned(t: jiff::Timestamp, zone: &jiff::tz::TimeZone) -> String {
+    t.to_zoned(zone.clone())
+        .strftime("%Y-%m-%d %H:%M:%S %:z")
+        .to_string()
 }
 
 #[cfg(test)]

@@ -12,8 +12,24 @@ use std::path::{Path, PathBuf};
 
 /// Top-level modules from the bottom up.
 const LAYERS: &[&str] = &[
-    "text", "frame", "synth", "decode", "encode", "analysis", "naming", "pipeline", "store", "qc",
-    "watch", "settings", "daemon", "analyze", "status", "export", "demo",
+    "text",
+    "frame",
+    "synth",
+    "decode",
+    "encode",
+    "analysis",
+    "naming",
+    "pipeline",
+    "store",
+    "qc",
+    "watch",
+    "settings",
+    "status",
+    "export",
+    "html_report",
+    "daemon",
+    "analyze",
+    "demo",
 ];
 
 /// The non-test code of a file with comments removed, one entry per line.

@@ -23,7 +23,7 @@ use crate::settings::Settings;
 use crate::store::label_images::LabelImageWriter;
 use crate::store::writer::{open_run, RunPolicy, StoreOp, Writer, WriterError, WriterSetup};
 use crate::store::{self, FrameKey, LabelImages, StoreError};
-use crate::text::shown;
+use crate::text::{shown, shown_path};
 use crate::watch::scheduler::{scan_loop, SchedMsg, Scheduler};
 use crate::watch::watcher::{start_watcher, WatcherError};
 use crate::watch::{Job, Progress};
@@ -117,6 +117,10 @@ pub struct Service {
     /// The database's one writer is this service; released once the writer
     /// has finished.
     claim: store::WriterClaim,
+    /// The thread rewriting the HTML report, and the sender whose drop stops it.
+    reporter: Option<(Sender<()>, JoinHandle<()>)>,
+    /// Where the report goes, and the database it reads.
+    report: Option<(PathBuf, PathBuf)>,
 }
 
 impl Service {
@@ -249,6 +253,24 @@ impl Service {
             progress: Arc::clone(&progress),
         };
         let scheduler = spawn("scheduler", move || sched.run())?;
+        let run_id = writer.run_id;
+        let report = settings.report.path.clone().map(|path| (path, db.clone()));
+        let reporter = match &report {
+            Some((path, db)) => {
+                let (stop_tx, stop_rx) = crossbeam_channel::bounded::<()>(0);
+                let (path, db, every) = (path.clone(), db.clone(), settings.report.every);
+                let handle = spawn("report", move || {
+                    // Rewritten every `every` until the service stops (the sender drops).
+                    while let Err(crossbeam_channel::RecvTimeoutError::Timeout) =
+                        stop_rx.recv_timeout(every)
+                    {
+                        write_report(&db, run_id, &path);
+                    }
+                })?;
+                Some((stop_tx, handle))
+            }
+            None => None,
+        };
         tracing::info!(
             "watching {} ({} mode, settle {} ms, {} workers), database {}",
             watch
@@ -273,6 +295,8 @@ impl Service {
             progress,
             shutdown_timeout: watch.shutdown_timeout,
             claim,
+            reporter,
+            report,
         })
     }
 
@@ -321,6 +345,14 @@ impl Service {
         }
         self.writer.join();
         drop(self.claim);
+        if let Some((stop_tx, handle)) = self.reporter {
+            drop(stop_tx);
+            join("report", handle);
+        }
+        // The run's last word: the report with every frame recorded.
+        if let Some((path, db)) = &self.report {
+            write_report(db, run_id, path);
+        }
         WatchSummary {
             run_id,
             done: self.progress.done.load(Ordering::Relaxed),
@@ -349,6 +381,19 @@ impl Service {
                 }
             }
         }
+    }
+}
+
+/// Rewrites the HTML report of run `run_id` (atomically: a temporary file
+/// renamed over it); a failure is logged and the service goes on.
+fn write_report(db: &Path, run_id: i64, path: &Path) {
+    match crate::html_report::write(db, Some(run_id), path) {
+        Ok(w) => tracing::info!(
+            "report of run {run_id} written to {} ({} kB)",
+            shown_path(path),
+            w.bytes.div_ceil(1000)
+        ),
+        Err(e) => tracing::warn!("report not written: {}", shown(&e.to_string())),
     }
 }
 

@@ -14,6 +14,7 @@ use crate::analysis::{Background, Method, SegmentParams, Split};
 use crate::decode::DecodeLimits;
 use crate::pipeline::{Calibration, CalibrationPreference};
 use crate::qc::params::{AlertSettings, CommandSink, QualitySettings, WebhookSink};
+use crate::settings::report::ReportSettings;
 use crate::store::StoreSettings;
 use crate::watch::{WatchMode, WatchSettings};
 
@@ -64,6 +65,9 @@ pub struct Document {
     /// `[alerts]`
     #[serde(default)]
     pub alerts: AlertsSection,
+    /// `[report]`
+    #[serde(default)]
+    pub report: ReportSection,
 }
 
 /// `[segment]`: thresholding and object filters.
@@ -297,6 +301,31 @@ impl From<&StoreSettings> for StoreSection {
 impl Default for StoreSection {
     fn default() -> Self {
         StoreSection::from(&StoreSettings::default())
+    }
+}
+
+/// `[report]`: the HTML report `watch` keeps up to date.
+#[derive(Debug, Deserialize, Serialize)]
+#[serde(deny_unknown_fields, default)]
+#[allow(missing_docs)] // each key is documented in config/framewarden.toml
+pub struct ReportSection {
+    /// "" for none.
+    pub path: PathBuf,
+    pub every_min: u64,
+}
+
+impl From<&ReportSettings> for ReportSection {
+    fn from(r: &ReportSettings) -> Self {
+        ReportSection {
+            path: r.path.clone().unwrap_or_default(),
+            every_min: r.every.as_secs() / 60,
+        }
+    }
+}
+
+impl Default for ReportSection {
+    fn default() -> Self {
+        ReportSection::from(&ReportSettings::default())
     }
 }
 

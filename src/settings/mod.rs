@@ -9,7 +9,10 @@
 //! ([`validate`]) and writes them back ([`document`]).
 
 pub mod document;
+pub mod report;
 pub mod validate;
+
+pub use report::ReportSettings;
 
 use std::path::{Path, PathBuf};
 use std::sync::Arc;
@@ -22,7 +25,7 @@ use crate::qc::params::{AlertSettings, QualitySettings};
 use crate::qc::sinks::{CaFile, SinkError};
 use crate::settings::document::{
     AlertsSection, CalibrationSection, Document, FlatFieldFiles, FrameFile, LimitsSection,
-    MeasureSection, QualitySection, SegmentSection, StoreSection, WatchSection,
+    MeasureSection, QualitySection, ReportSection, SegmentSection, StoreSection, WatchSection,
 };
 use crate::settings::validate::ValueError;
 use crate::store::StoreSettings;
@@ -113,6 +116,8 @@ pub struct Settings {
     pub quality: QualitySettings,
     /// `[alerts]`: where alerts are sent.
     pub alerts: AlertSettings,
+    /// `[report]`: the HTML report `watch` keeps up to date.
+    pub report: ReportSettings,
     /// The flat-field frames' files and content hashes, when
     /// `segment.background = "flat-field"` (the frames themselves are in
     /// `pipeline.segment.background`).
@@ -211,6 +216,7 @@ impl Settings {
             store: StoreSection::from(&self.store),
             quality: QualitySection::from_settings(&self.quality, p.recount.map(|r| r.radius_px)),
             alerts: AlertsSection::from(&self.alerts),
+            report: ReportSection::from(&self.report),
         };
         // Plain data with finite numbers: serialising cannot fail.
         toml::to_string(&document)
@@ -285,6 +291,7 @@ fn parse_anchored(text: &str, path: &Path, base: &Path) -> Result<Parsed, Config
         store: validate::store(document.store, base).map_err(invalid)?,
         quality,
         alerts: validate::alerts(document.alerts, base).map_err(invalid)?,
+        report: validate::report(document.report, base).map_err(invalid)?,
         flat_field,
     };
     Ok(Parsed {
@@ -552,6 +559,9 @@ webhook_retries = 5
 webhook_backoff_s = 3
 webhook_ca_file = "lab-ca.pem"
 file = "alerts.jsonl"
+[report]
+path = "results/night.html"
+every_min = 5
 "#;
 
     #[test]

@@ -19,8 +19,9 @@ use crate::qc::params::{
 };
 use crate::settings::document::{
     AlertsSection, CalibrationSection, FlatFieldFiles, FrameFile, LimitsSection, QualitySection,
-    SegmentSection, StoreSection, WatchSection,
+    ReportSection, SegmentSection, StoreSection, WatchSection,
 };
+use crate::settings::report::ReportSettings;
 use crate::store::{LabelImages, StoreSettings};
 use crate::watch::{default_workers, BadPattern, PathFilter, WatchMode, WatchSettings};
 
@@ -350,6 +351,14 @@ pub fn store(s: StoreSection, base: &Path) -> Result<StoreSettings, ValueError> 
         database: base.join(s.database),
         batch_max: within("store.batch_max", s.batch_max, 1, 100_000)?,
         label_images,
+    })
+}
+
+/// `[report]`; a relative path is anchored at `base`.
+pub fn report(r: ReportSection, base: &Path) -> Result<ReportSettings, ValueError> {
+    Ok(ReportSettings {
+        path: (!r.path.as_os_str().is_empty()).then(|| base.join(r.path)),
+        every: Duration::from_secs(within("report.every_min", r.every_min, 1, 1_440)? * 60),
     })
 }
 

@@ -22,6 +22,7 @@ use crossbeam_channel::{Receiver, Sender};
 use rusqlite::{params, Connection, OptionalExtension, Transaction, TransactionBehavior};
 
 use crate::analysis::ObjectMeasures;
+use crate::encode::LabelRuns;
 use crate::naming::NameParts;
 use crate::pipeline::FileAnalysis;
 use crate::store::label_images::LabelImageWriter;
@@ -225,6 +226,12 @@ impl Writer {
         Ok((Writer { thread, run_id }, ops_tx))
     }
 
+    /// True once the thread has ended: before every sender is dropped, only
+    /// by a panic.
+    pub fn is_finished(&self) -> bool {
+        self.thread.is_finished()
+    }
+
     /// Waits for the thread to flush and end (after all senders are dropped).
     pub fn join(self) {
         if self.thread.join().is_err() {
@@ -426,7 +433,8 @@ impl WriterState {
                 }
                 StoreOp::Done { .. } | StoreOp::Failed { .. } => {
                     let recorded = record_outcome(&tx, op, observer.as_deref_mut())?;
-                    done.kept.extend(kept_image(op, recorded, images).map(|id| (i, id)));
+                    done.kept
+                        .extend(kept_image(op, recorded, images).map(|id| (i, id)));
                 }
             }
             // What this op finished may free held outcomes: before anything later.
@@ -465,7 +473,8 @@ fn release_waiting(
                 still.push(i);
             } else {
                 let recorded = record_outcome(tx, &batch[i], observer.as_deref_mut())?;
-                done.kept.extend(kept_image(&batch[i], recorded, images).map(|id| (i, id)));
+                done.kept
+                    .extend(kept_image(&batch[i], recorded, images).map(|id| (i, id)));
             }
         }
         done.waiting = still;
@@ -484,7 +493,13 @@ fn kept_image(
     images: Option<&LabelImageWriter>,
 ) -> Option<i64> {
     let (id, flagged) = recorded?;
-    let carries = matches!(op, StoreOp::Done { label_image: Some(_), .. });
+    let carries = matches!(
+        op,
+        StoreOp::Done {
+            label_image: Some(_),
+            ..
+        }
+    );
     (carries && images?.keeps(flagged)).then_some(id)
 }
 
