@@ -84,6 +84,22 @@ pub enum StoreOp {
         /// The parts of its name (well, site, time point, channel) the pattern found.
         names: NameParts,
     },
+    /// A worker is about to analyze a queued frame: from now until its
+    /// outcome, an unclean stop counts as an interruption of this frame
+    /// ([`crate::store::settle_interrupted`]).
+    InHand {
+        /// The file version.
+        key: FrameKey,
+        /// Told once the mark is committed; dropped unsent when the writer
+        /// gives up on the batch.
+        committed: Sender<()>,
+    },
+    /// A worker put a queued frame back (read short, or changed while read)
+    /// for the scheduler to look at again: it is no longer in hand.
+    Released {
+        /// The file version.
+        key: FrameKey,
+    },
     /// The analysis of a queued frame.
     Done {
         /// The file version.
@@ -114,7 +130,7 @@ impl StoreOp {
     /// The identity this op finishes, if it takes a frame out of the pipeline.
     fn finished_key(&self) -> Option<&FrameKey> {
         match self {
-            StoreOp::Queued { .. } => None,
+            StoreOp::Queued { .. } | StoreOp::InHand { .. } | StoreOp::Released { .. } => None,
             StoreOp::Done { key, .. }
             | StoreOp::Failed { key, .. }
             | StoreOp::Withdrawn { key } => Some(key),
@@ -245,7 +261,14 @@ impl WriterState {
                     Err(_) => break,
                 }
             }
-            self.commit_with_retry(&batch);
+            if self.commit_with_retry(&batch) {
+                for op in &batch {
+                    if let StoreOp::InHand { committed, .. } = op {
+                        // The worker may have stopped waiting (shutdown).
+                        let _ = committed.send(());
+                    }
+                }
+            }
             let finished: Vec<FrameKey> = batch
                 .iter()
                 .filter_map(StoreOp::finished_key)
@@ -269,8 +292,8 @@ impl WriterState {
     /// is busy, locked, full or failing I/O (conditions that clear: another
     /// program's transaction ends, space is freed), so nothing is dropped and
     /// the bounded channel holds the pipeline back meanwhile; up to
-    /// `GIVE_UP_AFTER` attempts for any other error.
-    fn commit_with_retry(&mut self, batch: &[StoreOp]) {
+    /// `GIVE_UP_AFTER` attempts for any other error. True once committed.
+    fn commit_with_retry(&mut self, batch: &[StoreOp]) -> bool {
         const GIVE_UP_AFTER: u32 = 5;
         for attempt in 1u32.. {
             if let Some(observer) = self.observer.as_mut() {
@@ -284,7 +307,7 @@ impl WriterState {
                 }
             }
             match result {
-                Ok(()) => return,
+                Ok(()) => return true,
                 Err(e) if attempt < GIVE_UP_AFTER || clears_by_itself(&e) => {
                     tracing::warn!(
                         "store: commit of {} ops failed ({e}); retrying (attempt {attempt})",
@@ -296,10 +319,11 @@ impl WriterState {
                     // Nothing is lost for good: the frames stay unrecorded or
                     // queued, and the next start's catch-up scan redoes them.
                     tracing::error!("store: giving up on a batch of {} ops: {e}", batch.len());
-                    return;
+                    return false;
                 }
             }
         }
+        false
     }
 
     fn commit(&mut self, batch: &[StoreOp]) -> rusqlite::Result<()> {
@@ -322,6 +346,8 @@ impl WriterState {
                     run.last_frame_at_ms = run.last_frame_at_ms.max(*detected_at_ms);
                     insert_queued(&tx, run.id, key, *detected_at_ms, *ready_at_ms, names)?;
                 }
+                StoreOp::InHand { key, .. } => set_in_hand(&tx, key, true)?,
+                StoreOp::Released { key } => set_in_hand(&tx, key, false)?,
                 StoreOp::Done {
                     key,
                     attempts,
@@ -468,6 +494,20 @@ fn insert_queued(
     Ok(())
 }
 
+/// Marks a queued frame as in a worker's hand, or no longer.
+fn set_in_hand(tx: &Transaction<'_>, key: &FrameKey, in_hand: bool) -> rusqlite::Result<()> {
+    tx.prepare_cached(&format!(
+        "UPDATE frames SET in_hand = ?4 WHERE {FRAME_KEY_SQL} AND status = 'queued'"
+    ))?
+    .execute(params![
+        key.path,
+        key.size_bytes as i64,
+        key.mtime_ns,
+        in_hand
+    ])?;
+    Ok(())
+}
+
 /// Returns the frame's id, or `None` when there was no unfinished row to complete.
 fn record_done(
     tx: &Transaction<'_>,
@@ -479,7 +519,7 @@ fn record_done(
     let now = now_ms();
     let frame_id: Option<i64> = tx
         .prepare_cached(&format!(
-            "UPDATE frames SET status = 'done', error = NULL, attempts = ?4, analyzed_at_ms = ?5,
+            "UPDATE frames SET status = 'done', in_hand = 0, error = NULL, attempts = ?4, analyzed_at_ms = ?5,
                  latency_ms = MAX(0, ?5 - ready_at_ms),
                  width = ?6, height = ?7, bit_depth = ?8, method = ?9, threshold = ?10, separability = ?11,
                  object_count = ?12, foreground_fraction = ?13, background_level = ?14,
@@ -598,7 +638,7 @@ fn record_failed(
 ) -> rusqlite::Result<bool> {
     let changed = tx
         .prepare_cached(&format!(
-            "UPDATE frames SET status = 'failed', error = ?4, attempts = ?5, analyzed_at_ms = ?6,
+            "UPDATE frames SET status = 'failed', in_hand = 0, error = ?4, attempts = ?5, analyzed_at_ms = ?6,
              latency_ms = MAX(0, ?6 - ready_at_ms)
              WHERE {FRAME_KEY_SQL} AND status <> 'done'"
         ))?
