@@ -754,6 +754,58 @@ mod tests {
     }
 
     #[test]
+    fn a_frame_is_in_hand_from_its_committed_mark_until_released_or_finished() {
+        let dir = tempfile::tempdir().unwrap();
+        let db = dir.path().join("fw.db");
+        let (writer, tx) = start(
+            open_for_writing(&db).unwrap(),
+            policy(false),
+            16,
+            Box::new(|_| {}),
+        );
+        let reader = crate::store::open_read_only(&db).unwrap();
+        let in_hand = |k: &FrameKey| -> i64 {
+            reader
+                .query_row(
+                    &format!("SELECT in_hand FROM frames WHERE {FRAME_KEY_SQL}"),
+                    k.sql_params(),
+                    |r| r.get(0),
+                )
+                .unwrap()
+        };
+        let (a, b, waiting) = (
+            key("/acq/a.tif", 10),
+            key("/acq/b.tif", 10),
+            key("/acq/w.tif", 10),
+        );
+        for k in [&a, &b, &waiting] {
+            tx.send(queued(k)).unwrap();
+        }
+        for k in [&a, &b] {
+            let (committed, on_commit) = crossbeam_channel::bounded(1);
+            tx.send(StoreOp::InHand {
+                key: k.clone(),
+                committed,
+            })
+            .unwrap();
+            // Told only once the mark is stored: it is there when the answer comes.
+            on_commit.recv().unwrap();
+            assert_eq!(in_hand(k), 1);
+        }
+        assert_eq!(in_hand(&waiting), 0, "a frame only waiting is not in hand");
+        tx.send(StoreOp::Released { key: a.clone() }).unwrap();
+        tx.send(StoreOp::Done {
+            key: b.clone(),
+            attempts: 1,
+            analysis: analysis(1),
+        })
+        .unwrap();
+        drop(tx);
+        writer.join();
+        assert_eq!((in_hand(&a), in_hand(&b)), (0, 0));
+    }
+
+    #[test]
     fn records_are_idempotent_and_finished_keys_are_reported() {
         let dir = tempfile::tempdir().unwrap();
         let db = dir.path().join("fw.db");
