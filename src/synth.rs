@@ -482,15 +482,19 @@ fn gaussian_blur_mut(img: &mut [f32], w: usize, h: usize, sigma: f64) {
 }
 
 /// SplitMix64 (Steele, Lea & Flood 2014, "Fast splittable pseudorandom number
-/// generators"): tiny, fast and good enough for test scenes.
-struct SplitMix64(u64);
+/// generators"): tiny, fast and good enough for test scenes, and for the
+/// fixed-seed schedules of the fault tests.
+#[derive(Debug, Clone)]
+pub struct SplitMix64(u64);
 
 impl SplitMix64 {
-    fn new(seed: u64) -> Self {
+    /// The generator started from `seed`; the same seed gives the same sequence.
+    pub fn new(seed: u64) -> Self {
         Self(seed)
     }
 
-    fn next_u64(&mut self) -> u64 {
+    /// The next 64 random bits.
+    pub fn next_u64(&mut self) -> u64 {
         self.0 = self.0.wrapping_add(0x9e37_79b9_7f4a_7c15);
         let mut z = self.0;
         z = (z ^ (z >> 30)).wrapping_mul(0xbf58_476d_1ce4_e5b9);
@@ -499,7 +503,7 @@ impl SplitMix64 {
     }
 
     /// Uniform in `[0, 1)` with 53 random bits.
-    fn next_f64(&mut self) -> f64 {
+    pub fn next_f64(&mut self) -> f64 {
         (self.next_u64() >> 11) as f64 * (1.0 / (1u64 << 53) as f64)
     }
 }

@@ -256,7 +256,7 @@ fn status_shows_a_drift_alert_its_recovery_the_flags_and_failures() {
 fn low_free_space_on_a_watched_volume_raises_an_alert() {
     // A limit no disk meets (about 10^12 MiB): the idle writer's periodic check
     // must open one alert per watched volume and say how much is free.
-    let mut bench = Bench::new("[quality]\nmin_free_space_mib = 1000000000000\n");
+    let mut bench = Bench::new("[quality]\nmin_free_space_mib = 1000000000\n");
     bench.start();
     let mut status = serde_json::Value::Null;
     for _ in 0..300 {

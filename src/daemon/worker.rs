@@ -64,6 +64,7 @@ impl Worker {
                 // Released: the row stays queued; the next start redoes it.
                 break;
             }
+            self.mark_in_hand(&job.key);
             let outcome = catch_unwind(AssertUnwindSafe(|| self.analyze(&job.path)));
             let unchanged = FrameKey::of(&job.path).is_ok_and(|k| k == job.key);
             let limit = self.retry_limit;
@@ -104,6 +105,9 @@ impl Worker {
             };
             match next {
                 Next::Retry(retry) => {
+                    let _ = self.store_tx.send(StoreOp::Released {
+                        key: job.key.clone(),
+                    });
                     tracing::debug!(
                         "{} not complete yet; will look again",
                         shown_path(&job.path)
@@ -140,6 +144,25 @@ impl Worker {
             .map_err(|e| tracing::error!(file = %shown_path(path), "no label image: {e}"))
             .ok();
         Ok((analysis, image))
+    }
+}
+
+impl Worker {
+    /// Records that this frame is being analyzed, and waits until that is
+    /// committed: a file that takes the whole process down at once is still
+    /// counted against, so it cannot stop the run by being retried at every
+    /// restart. Frames that only wait in the queue are never counted.
+    fn mark_in_hand(&self, key: &FrameKey) {
+        let (committed, on_commit) = crossbeam_channel::bounded(1);
+        let op = StoreOp::InHand {
+            key: key.clone(),
+            committed,
+        };
+        if self.store_tx.send(op).is_ok() {
+            // An error means the writer gave the batch up or stopped: the
+            // analysis goes on, its outcome is recorded as usual.
+            let _ = on_commit.recv();
+        }
     }
 }
 

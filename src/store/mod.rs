@@ -604,9 +604,12 @@ pub const MAX_INTERRUPTIONS: i64 = 3;
 
 /// At start, after an unclean stop (the last run was never marked ended: a
 /// crash, a kill, a hang ended by the watchdog), counts one interruption for
-/// every frame still queued, and records as failed those interrupted
-/// [`MAX_INTERRUPTIONS`] times: a file that crashes or hangs the analysis must
-/// not stop the run by being retried at every restart. Returns those frames.
+/// every frame a worker had in hand (`in_hand`, set before its analysis
+/// begins), and records as failed those interrupted [`MAX_INTERRUPTIONS`]
+/// times: a file that crashes or hangs the analysis must not stop the run by
+/// being retried at every restart. Frames only waiting in the queue are not
+/// counted. After any stop, clean or not, no frame is in hand any more.
+/// Returns the frames recorded as failed.
 ///
 /// # Errors
 /// SQLite errors.
@@ -620,29 +623,31 @@ pub fn settle_interrupted(conn: &mut Connection) -> rusqlite::Result<Vec<FrameKe
         )
         .optional()?
         .unwrap_or(false);
-    if !unclean {
-        return Ok(Vec::new());
+    let mut given_up = Vec::new();
+    if unclean {
+        tx.execute(
+            "UPDATE frames SET interruptions = interruptions + 1
+             WHERE status = 'queued' AND in_hand = 1",
+            [],
+        )?;
+        given_up = tx
+            .prepare(
+                "UPDATE frames SET status = 'failed', analyzed_at_ms = ?1,
+                     latency_ms = MAX(0, ?1 - ready_at_ms),
+                     error = 'the analysis was interrupted ' || interruptions || ' times (the service stopped uncleanly while this file was being analyzed: a crash, a kill, or a hang ended by the watchdog); recorded as failed so the run goes on; check the file with framewarden analyze'
+                 WHERE status = 'queued' AND in_hand = 1 AND interruptions >= ?2
+                 RETURNING file, size_bytes, mtime_ns",
+            )?
+            .query_map(params![now_ms(), MAX_INTERRUPTIONS], |r| {
+                Ok(FrameKey {
+                    path: r.get(0)?,
+                    size_bytes: r.get::<_, i64>(1)? as u64,
+                    mtime_ns: r.get(2)?,
+                })
+            })?
+            .collect::<rusqlite::Result<Vec<_>>>()?;
     }
-    tx.execute(
-        "UPDATE frames SET interruptions = interruptions + 1 WHERE status = 'queued'",
-        [],
-    )?;
-    let given_up = tx
-        .prepare(
-            "UPDATE frames SET status = 'failed', analyzed_at_ms = ?1,
-                 latency_ms = MAX(0, ?1 - ready_at_ms),
-                 error = 'the analysis was interrupted ' || interruptions || ' times (the service stopped uncleanly while this file was queued or in hand: a crash, a kill, or a hang ended by the watchdog); recorded as failed so the run goes on; check the file with framewarden analyze'
-             WHERE status = 'queued' AND interruptions >= ?2
-             RETURNING file, size_bytes, mtime_ns",
-        )?
-        .query_map(params![now_ms(), MAX_INTERRUPTIONS], |r| {
-            Ok(FrameKey {
-                path: r.get(0)?,
-                size_bytes: r.get::<_, i64>(1)? as u64,
-                mtime_ns: r.get(2)?,
-            })
-        })?
-        .collect::<rusqlite::Result<Vec<_>>>()?;
+    tx.execute("UPDATE frames SET in_hand = 0 WHERE in_hand = 1", [])?;
     tx.commit()?;
     Ok(given_up)
 }
@@ -721,15 +726,15 @@ mod tests {
             .unwrap();
         assert_eq!(runs, 1);
         // Columns of later versions exist (v2: remedy, v3: bimodality, v5:
-        // interruptions, 0 for the old rows).
-        let interruptions: i64 = conn
+        // interruptions, v7: in hand; 0 for the old rows).
+        let (interruptions, in_hand): (i64, i64) = conn
             .query_row(
-                "SELECT count_source IS NULL AND bimodality IS NULL, interruptions FROM frames",
+                "SELECT count_source IS NULL AND bimodality IS NULL, interruptions, in_hand FROM frames",
                 [],
-                |r| r.get(1),
+                |r| Ok((r.get(1)?, r.get(2)?)),
             )
             .unwrap();
-        assert_eq!(interruptions, 0);
+        assert_eq!((interruptions, in_hand), (0, 0));
         // v4: the old objects are the raw result's, every measure kept.
         let object: (i64, String, i64, i64, f64, Option<String>) = conn
             .query_row(
@@ -824,7 +829,7 @@ mod tests {
     }
 
     #[test]
-    fn a_frame_caught_in_three_unclean_stops_is_failed_and_clean_stops_do_not_count() {
+    fn a_frame_in_hand_at_three_unclean_stops_is_failed_and_waiting_frames_never_count() {
         let dir = tempfile::tempdir().unwrap();
         let db = dir.path().join("fw.db");
         let mut conn = open_for_writing(&db).unwrap();
@@ -832,43 +837,60 @@ mod tests {
             "INSERT INTO runs (folders, started_at_ms, last_frame_at_ms, settings) VALUES ('[]', 1, 1, '{}');
              INSERT INTO frames (run_id, file, size_bytes, mtime_ns, version, status, detected_at_ms, ready_at_ms)
                  VALUES (1, '/acq/poison.tif', 10, 1, 1, 'queued', 1, 1),
+                        (1, '/acq/waiting.tif', 10, 1, 1, 'queued', 1, 1),
                         (1, '/acq/done.tif', 10, 1, 1, 'done', 1, 1);",
         )
         .unwrap();
-        let state = |conn: &Connection| -> (String, i64, Option<String>) {
+        let state = |conn: &Connection, file: &str| -> (String, i64, Option<String>) {
             conn.query_row(
-                "SELECT status, interruptions, error FROM frames WHERE file = '/acq/poison.tif'",
-                [],
+                "SELECT status, interruptions, error FROM frames WHERE file = ?1",
+                [file],
                 |r| Ok((r.get(0)?, r.get(1)?, r.get(2)?)),
             )
             .unwrap()
         };
+        // What a worker's mark does (the writer's `InHand`): only the poison
+        // file is taken again after each restart.
+        let take = |conn: &Connection| {
+            conn.execute(
+                "UPDATE frames SET in_hand = 1 WHERE file = '/acq/poison.tif'",
+                [],
+            )
+            .unwrap();
+        };
         // The run was never marked ended: two unclean stops, still queued.
         for n in 1..MAX_INTERRUPTIONS {
+            take(&conn);
             assert!(settle_interrupted(&mut conn).unwrap().is_empty());
-            assert_eq!(state(&conn), ("queued".into(), n, None));
+            assert_eq!(state(&conn, "/acq/poison.tif"), ("queued".into(), n, None));
         }
-        // A clean stop in between counts nothing.
+        // Not taken since the last start: an unclean stop does not count.
+        assert!(settle_interrupted(&mut conn).unwrap().is_empty());
+        assert_eq!(state(&conn, "/acq/poison.tif").1, MAX_INTERRUPTIONS - 1);
+        // A clean stop with the frame in hand counts nothing either.
+        take(&conn);
         conn.execute("UPDATE runs SET ended_at_ms = 5", []).unwrap();
         assert!(settle_interrupted(&mut conn).unwrap().is_empty());
-        assert_eq!(state(&conn).1, MAX_INTERRUPTIONS - 1);
-        // The third unclean stop: failed, with the reason; the done frame untouched.
+        assert_eq!(state(&conn, "/acq/poison.tif").1, MAX_INTERRUPTIONS - 1);
+        // The third unclean stop in hand: failed, with the reason.
+        take(&conn);
         conn.execute("UPDATE runs SET ended_at_ms = NULL", [])
             .unwrap();
         let given_up = settle_interrupted(&mut conn).unwrap();
         assert_eq!(given_up.len(), 1);
         assert_eq!(given_up[0].path, "/acq/poison.tif");
-        let (status, n, error) = state(&conn);
+        let (status, n, error) = state(&conn, "/acq/poison.tif");
         assert_eq!((status.as_str(), n), ("failed", MAX_INTERRUPTIONS));
         assert!(error.unwrap().contains("interrupted 3 times"));
-        let done: String = conn
-            .query_row(
-                "SELECT status FROM frames WHERE file = '/acq/done.tif'",
-                [],
-                |r| r.get(0),
-            )
+        // The frame that only waited in the queue through all five stops: untouched.
+        assert_eq!(state(&conn, "/acq/waiting.tif"), ("queued".into(), 0, None));
+        assert_eq!(state(&conn, "/acq/done.tif").0, "done");
+        let in_hand: i64 = conn
+            .query_row("SELECT count(*) FROM frames WHERE in_hand = 1", [], |r| {
+                r.get(0)
+            })
             .unwrap();
-        assert_eq!(done, "done");
+        assert_eq!(in_hand, 0, "after a start no frame is in hand");
     }
 
     #[test]

@@ -99,6 +99,22 @@ pub enum StoreOp {
         /// The parts of its name (well, site, time point, channel) the pattern found.
         names: NameParts,
     },
+    /// A worker is about to analyze a queued frame: from now until its
+    /// outcome, an unclean stop counts as an interruption of this frame
+    /// ([`crate::store::settle_interrupted`]).
+    InHand {
+        /// The file version.
+        key: FrameKey,
+        /// Told once the mark is committed; dropped unsent when the writer
+        /// gives up on the batch.
+        committed: Sender<()>,
+    },
+    /// A worker put a queued frame back (read short, or changed while read)
+    /// for the scheduler to look at again: it is no longer in hand.
+    Released {
+        /// The file version.
+        key: FrameKey,
+    },
     /// The analysis of a queued frame.
     Done {
         /// The file version.
@@ -132,7 +148,7 @@ impl StoreOp {
     /// The identity this op finishes, if it takes a frame out of the pipeline.
     fn finished_key(&self) -> Option<&FrameKey> {
         match self {
-            StoreOp::Queued { .. } => None,
+            StoreOp::Queued { .. } | StoreOp::InHand { .. } | StoreOp::Released { .. } => None,
             StoreOp::Done { key, .. }
             | StoreOp::Failed { key, .. }
             | StoreOp::Withdrawn { key } => Some(key),
@@ -144,7 +160,10 @@ impl StoreOp {
     fn outcome_key(&self) -> Option<&FrameKey> {
         match self {
             StoreOp::Done { key, .. } | StoreOp::Failed { key, .. } => Some(key),
-            StoreOp::Queued { .. } | StoreOp::Withdrawn { .. } => None,
+            StoreOp::Queued { .. }
+            | StoreOp::Withdrawn { .. }
+            | StoreOp::InHand { .. }
+            | StoreOp::Released { .. } => None,
         }
     }
 }
@@ -263,6 +282,8 @@ type KeptImage = (usize, i64);
 /// waiting for earlier frames, and the frames whose label image is kept.
 #[derive(Default)]
 struct Committed {
+    /// False when the batch was given up.
+    done: bool,
     waiting: Vec<usize>,
     kept: Vec<KeptImage>,
 }
@@ -298,7 +319,19 @@ impl WriterState {
                     Err(_) => break,
                 }
             }
-            let Committed { waiting, kept } = self.commit_with_retry(&batch);
+            let Committed {
+                done,
+                waiting,
+                kept,
+            } = self.commit_with_retry(&batch);
+            if done {
+                for op in &batch {
+                    if let StoreOp::InHand { committed, .. } = op {
+                        // The worker may have stopped waiting (shutdown).
+                        let _ = committed.send(());
+                    }
+                }
+            }
             if let Some(images) = &self.label_images {
                 for (i, frame_id) in kept {
                     if let StoreOp::Done {
@@ -403,7 +436,10 @@ impl WriterState {
         let session = self.session_started_ms;
         let observer = &mut self.observer;
         let images = self.label_images.as_ref();
-        let mut done = Committed::default();
+        let mut done = Committed {
+            done: true,
+            ..Committed::default()
+        };
         for (i, op) in batch.iter().enumerate() {
             if let Some(key) = op.outcome_key() {
                 if waits_for_earlier(&tx, key, session)? {
@@ -431,6 +467,8 @@ impl WriterState {
                     ))?
                     .execute(key.sql_params())?;
                 }
+                StoreOp::InHand { key, .. } => set_in_hand(&tx, key, true)?,
+                StoreOp::Released { key } => set_in_hand(&tx, key, false)?,
                 StoreOp::Done { .. } | StoreOp::Failed { .. } => {
                     let recorded = record_outcome(&tx, op, observer.as_deref_mut())?;
                     done.kept
@@ -543,7 +581,10 @@ fn record_outcome(
                 }
             }
         }
-        StoreOp::Queued { .. } | StoreOp::Withdrawn { .. } => {}
+        StoreOp::Queued { .. }
+        | StoreOp::Withdrawn { .. }
+        | StoreOp::InHand { .. }
+        | StoreOp::Released { .. } => {}
     }
     Ok(None)
 }
@@ -697,6 +738,20 @@ fn insert_queued(
     Ok(())
 }
 
+/// Marks a queued frame as in a worker's hand, or no longer.
+fn set_in_hand(tx: &Transaction<'_>, key: &FrameKey, in_hand: bool) -> rusqlite::Result<()> {
+    tx.prepare_cached(&format!(
+        "UPDATE frames SET in_hand = ?4 WHERE {FRAME_KEY_SQL} AND status = 'queued'"
+    ))?
+    .execute(params![
+        key.path,
+        key.size_bytes as i64,
+        key.mtime_ns,
+        in_hand
+    ])?;
+    Ok(())
+}
+
 /// Returns the frame's id and how it stands to an earlier version, or `None`
 /// when there was no unfinished row to complete.
 fn record_done(
@@ -709,7 +764,7 @@ fn record_done(
     let now = now_ms();
     let frame_id: Option<(i64, i64, Position)> = tx
         .prepare_cached(&format!(
-            "UPDATE frames SET status = 'done', error = NULL, attempts = ?4, analyzed_at_ms = ?5,
+            "UPDATE frames SET status = 'done', in_hand = 0, error = NULL, attempts = ?4, analyzed_at_ms = ?5,
                  latency_ms = MAX(0, ?5 - ready_at_ms),
                  width = ?6, height = ?7, bit_depth = ?8, method = ?9, threshold = ?10, separability = ?11,
                  object_count = ?12, foreground_fraction = ?13, background_level = ?14,
@@ -894,7 +949,7 @@ fn record_failed(
 ) -> rusqlite::Result<bool> {
     let changed = tx
         .prepare_cached(&format!(
-            "UPDATE frames SET status = 'failed', error = ?4, attempts = ?5, analyzed_at_ms = ?6,
+            "UPDATE frames SET status = 'failed', in_hand = 0, error = ?4, attempts = ?5, analyzed_at_ms = ?6,
              latency_ms = MAX(0, ?6 - ready_at_ms)
              WHERE {FRAME_KEY_SQL} AND status <> 'done'"
         ))?
@@ -1010,6 +1065,58 @@ mod tests {
             label_images: None,
         };
         Writer::start(conn, policy, run, setup).unwrap()
+    }
+
+    #[test]
+    fn a_frame_is_in_hand_from_its_committed_mark_until_released_or_finished() {
+        let dir = tempfile::tempdir().unwrap();
+        let db = dir.path().join("fw.db");
+        let (writer, tx) = start(
+            open_for_writing(&db).unwrap(),
+            policy(false),
+            16,
+            Box::new(|_| {}),
+        );
+        let reader = crate::store::open_read_only(&db).unwrap();
+        let in_hand = |k: &FrameKey| -> i64 {
+            reader
+                .query_row(
+                    &format!("SELECT in_hand FROM frames WHERE {FRAME_KEY_SQL}"),
+                    k.sql_params(),
+                    |r| r.get(0),
+                )
+                .unwrap()
+        };
+        let (a, b, waiting) = (
+            key("/acq/a.tif", 10),
+            key("/acq/b.tif", 10),
+            key("/acq/w.tif", 10),
+        );
+        for k in [&a, &b, &waiting] {
+            tx.send(queued(k)).unwrap();
+        }
+        for k in [&a, &b] {
+            let (committed, on_commit) = crossbeam_channel::bounded(1);
+            tx.send(StoreOp::InHand {
+                key: k.clone(),
+                committed,
+            })
+            .unwrap();
+            // Told only once the mark is stored: it is there when the answer comes.
+            on_commit.recv().unwrap();
+            assert_eq!(in_hand(k), 1);
+        }
+        assert_eq!(in_hand(&waiting), 0, "a frame only waiting is not in hand");
+        tx.send(StoreOp::Released { key: a.clone() }).unwrap();
+        tx.send(StoreOp::Done {
+            key: b.clone(),
+            attempts: 1,
+            analysis: analysis(1),
+        })
+        .unwrap();
+        drop(tx);
+        writer.join();
+        assert_eq!((in_hand(&a), in_hand(&b)), (0, 0));
     }
 
     #[test]
