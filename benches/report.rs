@@ -18,23 +18,34 @@ fn main() {
     let wells: Vec<String> = ('A'..='H')
         .flat_map(|r| (1..=12).map(move |c| format!("\"{r}{c:02}\"")))
         .collect();
+    // Four doses, 24 wells each; the lamp dims over the last third; one file
+    // cut off. No pauses: the service records as fast as it can.
+    let doses = ["vehicle", "0.3 uM", "3 uM", "30 uM"];
+    let growth = [1.03, 1.02, 1.0, 0.97];
+    let treatments: String = wells
+        .chunks(24)
+        .zip(doses.iter().zip(growth))
+        .map(|(w, (dose, g))| {
+            format!(
+                "[[treatment]]\ndose = \"{dose}\"\nwells = [{}]\ngrowth_per_step = {g}\n",
+                w.join(", ")
+            )
+        })
+        .collect();
     let scenario = format!(
-        "wells = [{}]\nchannel = \"nuclei\"\ntime_points = 48\ninterval_ms = 0\nsize_px = {size}\n\
-         bit_depth = 16\nstart_objects = 18\ngrowth_per_step = 1.03\ndecline_from = 36\n\
-         lamp_end = 0.55\ngradient_end = 0.45\nchunks = 1\nchunk_pause_ms = 0\n\
-         temp_name_every = 0\ntemp_suffix = \".part\"\ncorrupt = {{ well = \"B03\", time_point = 6 }}\n",
-        wells.join(", ")
+        "compound = \"FW-117\"\nchannel = \"nuclei\"\ntime_points = 48\ninterval_ms = 0\n\
+         size_px = {size}\nbit_depth = 16\nstart_objects = 18\nobject_level = 0.45\n\
+         object_level_spread = 0.3\nchunks = 1\nchunk_pause_ms = 0\ntemp_name_every = 0\n\
+         temp_suffix = \".part\"\ncorrupt = {{ well = \"B03\", time_point = 6 }}\n\
+         {treatments}[lamp]\nfrom = 32\nend = 0.55\n"
     );
     let scenario = framewarden::demo::Scenario::parse(&scenario).expect("the scenario");
     let dir = tempfile::tempdir().unwrap();
+    let paths = framewarden::demo::DemoPaths::new(dir.path());
     let recorded = Instant::now();
-    let status = framewarden::demo::run(&scenario, dir.path(), &mut std::io::sink())
-        .expect("the run is recorded");
+    framewarden::demo::run(&scenario, &paths, &mut std::io::sink()).expect("the run is recorded");
     println!(
-        "recorded {} frames ({} done, {} failed) of {size} x {size} px in {:.0} s",
-        status.frames_seen,
-        status.frames_done,
-        status.frames_failed,
+        "recorded 96 wells x 48 time points of {size} x {size} px in {:.0} s",
         recorded.elapsed().as_secs_f64()
     );
     let db = dir.path().join("framewarden.db");

@@ -16,6 +16,7 @@ use std::time::{Duration, Instant};
 use serde::Deserialize;
 
 use crate::daemon::{Service, WatchError, WatchOptions};
+use crate::html_report::ReportError;
 use crate::qc::report::AlertRow;
 use crate::settings::Settings;
 use crate::status;
@@ -150,6 +151,9 @@ pub enum DemoError {
     /// The database could not be read for the summary.
     #[error(transparent)]
     Store(#[from] StoreError),
+    /// The report could not be written.
+    #[error(transparent)]
+    Report(#[from] ReportError),
 }
 
 impl Scenario {
@@ -287,6 +291,8 @@ pub struct DemoPaths {
     pub log: PathBuf,
     /// The alerts, one JSON document per line.
     pub alerts: PathBuf,
+    /// The morning report of the run (HTML).
+    pub report: PathBuf,
 }
 
 impl DemoPaths {
@@ -298,6 +304,7 @@ impl DemoPaths {
             database: folder.join("framewarden.db"),
             log: folder.join("framewarden.log"),
             alerts: folder.join("alerts.jsonl"),
+            report: folder.join("report.html"),
         }
     }
 }
@@ -389,6 +396,7 @@ pub fn run(scenario: &Scenario, paths: &DemoPaths, out: &mut dyn Write) -> Resul
     );
     let night = Night::read(&paths.database, summary.run_id)?;
     let _ = write!(out, "{}", night.render(scenario));
+    crate::html_report::write(&paths.database, Some(summary.run_id), &paths.report)?;
     let _ = write!(out, "{}", where_things_are(paths));
     Ok(())
 }
@@ -401,11 +409,13 @@ fn where_things_are(paths: &DemoPaths) -> String {
          frames    {}\n  \
          database  {db}   (framewarden status --db {db})\n  \
          log       {}   (one line per frame)\n  \
-         alerts    {}\n",
+         alerts    {}\n  \
+         report    {}   (open it in a browser: counts, charts, flagged frames)\n",
         paths.folder.display(),
         paths.acquisition.display(),
         paths.log.display(),
-        paths.alerts.display()
+        paths.alerts.display(),
+        paths.report.display()
     )
 }
 

@@ -1,5 +1,5 @@
 //! `framewarden report` on a run recorded by the real binary (a short
-//! `demo --keep`): the outlines in its pictures are the object borders of the
+//! `demo`): the outlines in its pictures are the object borders of the
 //! frame's label image at the picture's scale (scikit-image's
 //! `find_boundaries` as the outside reference), and the page opens in a real
 //! browser (the Debian Chromium, driven by playwright) with the network cut
@@ -40,7 +40,7 @@ fn run_ok(cmd: &mut Command) -> String {
     stdout
 }
 
-/// The built-in demo, shortened (10 time points, 0.4 s apart), recorded into
+/// The built-in demo, faster (time points 0.1 s apart), recorded into
 /// a temporary folder; the first flagged frame gets the label image
 /// `analyze --labels` writes for it, the others have none (re-segmented).
 fn run() -> &'static Run {
@@ -51,19 +51,18 @@ fn run() -> &'static Run {
             Path::new(env!("CARGO_MANIFEST_DIR")).join("demo-data/plate-timelapse.toml"),
         )
         .unwrap()
-        .replace("time_points = 12", "time_points = 10")
-        .replace("interval_ms = 2500", "interval_ms = 400");
+        .replace("interval_ms = 300", "interval_ms = 100");
         let scenario_file = dir.path().join("scenario.toml");
         std::fs::write(&scenario_file, scenario).unwrap();
         let stdout = run_ok(
             Command::new(BIN)
-                .args(["demo", "--keep", "--scenario"])
+                .args(["demo", "--scenario"])
                 .arg(&scenario_file)
                 .env("TMPDIR", dir.path()),
         );
         let kept = stdout
             .lines()
-            .find_map(|l| l.strip_prefix("kept "))
+            .find_map(|l| l.strip_prefix("kept (delete it when done): "))
             .unwrap_or_else(|| panic!("no kept folder:\n{stdout}"));
         let db = PathBuf::from(kept).join("framewarden.db");
         let conn = rusqlite::Connection::open(&db).unwrap();

@@ -1112,6 +1112,7 @@ mod tests {
             key: b.clone(),
             attempts: 1,
             analysis: analysis(1),
+            label_image: None,
         })
         .unwrap();
         drop(tx);
@@ -1360,13 +1361,13 @@ mod tests {
             frame_id: i64,
             _analysis: &FileAnalysis,
             supersedes: bool,
-        ) -> rusqlite::Result<()> {
+        ) -> rusqlite::Result<bool> {
             let file: String =
                 tx.query_row("SELECT file FROM frames WHERE id = ?1", [frame_id], |r| {
                     r.get(0)
                 })?;
             self.0.lock().unwrap().push((file, supersedes));
-            Ok(())
+            Ok(false)
         }
         fn frame_failed(&mut self, _: &Transaction<'_>, key: &FrameKey) -> rusqlite::Result<()> {
             self.0.lock().unwrap().push((key.path.clone(), false));
@@ -1413,6 +1414,7 @@ mod tests {
             key: k.clone(),
             attempts: 1,
             analysis,
+            label_image: None,
         }
     }
 
