@@ -443,6 +443,9 @@ impl WriterState {
         for (i, op) in batch.iter().enumerate() {
             if let Some(key) = op.outcome_key() {
                 if waits_for_earlier(&tx, key, session)? {
+                    // Its analysis is over (a stop now is not its doing); only
+                    // its recording waits for earlier frames.
+                    set_in_hand(&tx, key, false)?;
                     done.waiting.push(i);
                     continue;
                 }
