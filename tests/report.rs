@@ -24,7 +24,7 @@ struct Run {
     _dir: tempfile::TempDir,
     db: PathBuf,
     report: PathBuf,
-    /// Frame id -> the label image placed for it.
+    /// Frame id -> its label image (flagged frames, but one).
     label_images: Vec<(i64, PathBuf)>,
 }
 
@@ -41,8 +41,8 @@ fn run_ok(cmd: &mut Command) -> String {
 }
 
 /// The built-in demo, faster (time points 0.1 s apart), recorded into
-/// a temporary folder; the first flagged frame gets the label image
-/// `analyze --labels` writes for it, the others have none (re-segmented).
+/// a temporary folder with the label images the service keeps for flagged
+/// frames, but one (re-segmented for its picture).
 fn run() -> &'static Run {
     static RUN: OnceLock<Run> = OnceLock::new();
     RUN.get_or_init(|| {
@@ -65,27 +65,32 @@ fn run() -> &'static Run {
             .find_map(|l| l.strip_prefix("kept (delete it when done): "))
             .unwrap_or_else(|| panic!("no kept folder:\n{stdout}"));
         let db = PathBuf::from(kept).join("framewarden.db");
+        // The service wrote a label image for each flagged frame (the default
+        // `label_images = "flagged"`); one is removed, so that its picture's
+        // outlines come from segmenting the file again.
         let conn = rusqlite::Connection::open(&db).unwrap();
-        let (id, file): (i64, String) = conn
-            .query_row(
-                "SELECT id, file FROM frames WHERE EXISTS (SELECT 1 FROM flags WHERE frame_id = frames.id) ORDER BY id LIMIT 1",
-                [],
-                |r| Ok((r.get(0)?, r.get(1)?)),
-            )
-            .expect("the demo flags frames");
-        let labels = dir.path().join("labels");
-        run_ok(Command::new(BIN).arg("analyze").arg("--labels").arg(&labels).arg(&file));
-        let stem = Path::new(&file).file_stem().unwrap().to_string_lossy().into_owned();
-        let placed = framewarden::store::label_image_path(&db, id);
-        std::fs::create_dir_all(placed.parent().unwrap()).unwrap();
-        std::fs::copy(labels.join(format!("{stem}.labels.tif")), &placed).unwrap();
+        let flagged: Vec<i64> = conn
+            .prepare("SELECT id FROM frames WHERE EXISTS (SELECT 1 FROM flags WHERE frame_id = frames.id) ORDER BY id")
+            .unwrap()
+            .query_map([], |r| r.get(0))
+            .unwrap()
+            .map(Result::unwrap)
+            .collect();
+        let mut label_images: Vec<(i64, PathBuf)> = flagged
+            .iter()
+            .map(|&id| (id, framewarden::store::label_image_path(&db, id)))
+            .filter(|(_, p)| p.exists())
+            .collect();
+        assert!(label_images.len() >= 2, "the demo flags frames and keeps their label images");
+        let (_, removed) = label_images.pop().unwrap();
+        std::fs::remove_file(removed).unwrap();
         let report = dir.path().join("report.html");
         run_ok(Command::new(BIN).arg("report").arg("--db").arg(&db).arg("-o").arg(&report));
         Run {
             _dir: dir,
             db,
             report,
-            label_images: vec![(id, placed)],
+            label_images,
         }
     })
 }
@@ -102,9 +107,13 @@ fn script(name: &str, input: Value) -> Value {
 fn outlines_lie_on_the_object_borders_of_the_label_image() {
     let run = run();
     let html = std::fs::read_to_string(&run.report).unwrap();
-    // The frame with a label image uses it; the others are segmented again
-    // from their files with the run's stored settings, and the page says so.
-    assert_eq!(html.matches("data-outlines=\"label-image\"").count(), 1);
+    // The frames with a label image use it; the others (the removed one and
+    // the unflagged frames shown for comparison) are segmented again from
+    // their files with the run's stored settings, and the page says so.
+    assert_eq!(
+        html.matches("data-outlines=\"label-image\"").count(),
+        run.label_images.len()
+    );
     assert!(html.contains("data-outlines=\"resegmented\""));
     assert!(
         html.contains("outlines from segmenting the file again with the run&#39;s stored settings")
@@ -119,8 +128,13 @@ fn outlines_lie_on_the_object_borders_of_the_label_image() {
         json!({"report": run.report, "label_images": images}),
     );
     let checked = result["checked"].as_array().unwrap();
-    assert_eq!(checked.len(), 1, "{result}");
-    assert!(checked[0]["outline_px"].as_u64().unwrap() > 100, "{result}");
+    assert_eq!(checked.len(), run.label_images.len(), "{result}");
+    assert!(
+        checked
+            .iter()
+            .all(|c| c["outline_px"].as_u64().unwrap() > 20),
+        "{result}"
+    );
     let mismatches: Vec<String> = result["mismatches"]
         .as_array()
         .unwrap()
