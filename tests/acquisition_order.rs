@@ -66,12 +66,23 @@ fn meaning(status: &serde_json::Value, folder: &Path) -> serde_json::Value {
         .unwrap()
         .iter()
         .map(|a| {
+            // One alert per cause names every position it holds at. Which
+            // position of a time point opened it (and which one its message
+            // calls the newest) follows the order files of one time point were
+            // written in, which acquisition order does not fix across
+            // positions: compare the opening time point and the positions.
+            let frame = strip(&a["frame"]).as_str().unwrap_or_default().to_string();
+            let time_point = frame.split_once('_').map_or(frame.clone(), |(_, t)| t.to_string());
+            let mut positions: Vec<String> = a["positions"]
+                .as_array()
+                .map(|p| p.iter().map(|v| v.to_string()).collect())
+                .unwrap_or_default();
+            positions.sort();
             serde_json::json!({
                 "condition": a["condition"],
                 "open": a["closed_at"].is_null(),
-                "frame": strip(&a["frame"]),
-                "message": strip(&a["message"]),
-                "closed_message": strip(&a["closed_message"]),
+                "opened_at_time_point": time_point,
+                "positions": positions,
             })
         })
         .collect();

@@ -6,8 +6,9 @@
 //! row.
 //!
 //! Results are recorded in acquisition order ([`ACQUISITION_ORDER_SQL`]):
-//! workers finish in any order, so a result whose run still has an earlier
-//! frame in flight (queued before it in this session) is held in memory and
+//! workers finish in any order, so a result whose position (well, site,
+//! channel) still has an earlier frame in flight (queued before it in this
+//! session) is held in memory and
 //! recorded, with its judgement, once that frame is finished. A held result
 //! that never gets recorded (a stop) leaves its row queued, and the next start
 //! redoes it. Deciding *what* to record is the watcher's job, and judging a recorded
@@ -267,7 +268,7 @@ struct WriterState {
     max_batch: usize,
     observer: Option<Box<dyn FrameObserver>>,
     label_images: Option<LabelImageWriter>,
-    /// Outcomes waiting for an earlier frame of their run (acquisition order).
+    /// Outcomes waiting for an earlier frame of their position (acquisition order).
     held: Vec<StoreOp>,
     /// Rows queued from this moment on are this session's: only they are
     /// waited for (a row an earlier process left queued may never come back).
@@ -592,8 +593,10 @@ fn record_outcome(
     Ok(None)
 }
 
-/// True while the run of frame `key` has a frame earlier in acquisition order
-/// that this session queued before it and that is not finished yet.
+/// True while frame `key`'s position (well, site and channel) in its run has
+/// a frame earlier in acquisition order that this session queued before it
+/// and that is not finished yet. Per position, as the charts and baselines
+/// are: a file another position is still retrying holds nobody else back.
 fn waits_for_earlier(
     tx: &Transaction<'_>,
     key: &FrameKey,
@@ -605,6 +608,7 @@ fn waits_for_earlier(
         "SELECT EXISTS (SELECT 1 FROM frames AS f JOIN frames AS e ON e.run_id = f.run_id
              WHERE f.file = ?1 AND f.size_bytes = ?2 AND f.mtime_ns = ?3
                AND e.status = 'queued' AND e.id < f.id AND e.ready_at_ms >= ?4
+               AND e.well IS f.well AND e.site IS f.site AND e.channel IS f.channel
                AND {} < {})",
         order("e"),
         order("f")
