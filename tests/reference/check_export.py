@@ -1,5 +1,5 @@
 """Reads the tables `framewarden export` wrote with general-purpose readers
-(pandas for CSV, pyarrow and pandas for Parquet) and compares them, row for
+(pandas for CSV; pyarrow, pandas and DuckDB for Parquet) and compares them, row for
 row and value for value, with what Python's own sqlite3 module reads from the
 same database through joins written here independently of the Rust code.
 
@@ -16,6 +16,7 @@ import sys
 from pathlib import Path
 
 import pandas as pd
+import duckdb
 import pyarrow as pa
 import pyarrow.parquet as pq
 
@@ -195,6 +196,9 @@ for name, expected in tables.items():
     compare(f"{name}.parquet (pyarrow)", table.to_pylist(), table.column_names, want)
     df = pd.read_parquet(DIR / f"{name}.parquet")
     compare(f"{name}.parquet (pandas)", df.to_dict("records"), list(df.columns), want)
+    # DuckDB reads the Parquet file on its own (its own reader, not pyarrow's).
+    rel = duckdb.sql(f"SELECT * FROM read_parquet('{DIR / f'{name}.parquet'}')")
+    compare(f"{name}.parquet (duckdb)", [dict(zip(rel.columns, r)) for r in rel.fetchall()], rel.columns, want)
     # Types a reader can rely on: integers, doubles, text.
     for field in table.schema:
         kinds = {type(r[field.name]) for r in want} - {type(None)}
