@@ -72,7 +72,9 @@ fn meaning(status: &serde_json::Value, folder: &Path) -> serde_json::Value {
             // written in, which acquisition order does not fix across
             // positions: compare the opening time point and the positions.
             let frame = strip(&a["frame"]).as_str().unwrap_or_default().to_string();
-            let time_point = frame.split_once('_').map_or(frame.clone(), |(_, t)| t.to_string());
+            let time_point = frame
+                .split_once('_')
+                .map_or(frame.clone(), |(_, t)| t.to_string());
             let mut positions: Vec<String> = a["positions"]
                 .as_array()
                 .map(|p| p.iter().map(|v| v.to_string()).collect())

@@ -1,5 +1,5 @@
 //! `framewarden export` on the real binary: every table of a small database,
-//! in CSV and Parquet, read back by pandas and pyarrow and compared row for
+//! in CSV and Parquet, read back by pandas, pyarrow and DuckDB and compared row for
 //! row with what Python's sqlite3 module reads from the same file
 //! (`tests/reference/check_export.py`); standard output; and the bad cases
 //! (missing database, unknown run, Parquet without a file, an empty database).
@@ -131,7 +131,7 @@ fn every_table_reads_back_in_pandas_and_pyarrow_equal_to_the_database() {
         "-o",
         run1.to_str().unwrap(),
     ]));
-    // pandas and pyarrow against Python's sqlite3 (fails on any mismatch).
+    // pandas, pyarrow and DuckDB against Python's sqlite3 (fails on any mismatch).
     common::run_reference_script("check_export.py", dir.path());
 
     // Without -o, CSV goes to standard output, the same bytes as the file.
