@@ -164,6 +164,11 @@ fn esc(text: &str) -> String {
     out
 }
 
+/// What a picture's outlines show: the first segmentation, as the label
+/// images hold it, also where the count used is the recount's.
+const FIRST_SEGMENTATION: &str =
+    "the first segmentation; where the count is the recount's, its extra objects are not outlined";
+
 /// A time in the computer's time zone with its UTC offset.
 fn local(ms: i64) -> String {
     crate::text::shown_time_ms(ms, &jiff::tz::TimeZone::system())
@@ -581,13 +586,16 @@ impl Page<'_> {
         let (labels, source, kind) = match thumbs::read_label_image(&label_path) {
             Ok((labels, w, h)) if w == pixels.width && h == pixels.height => (
                 Some(labels),
-                format!("outlines from the label image {}", label_path.display()),
+                format!(
+                    "outlines from the label image {} ({FIRST_SEGMENTATION})",
+                    label_path.display()
+                ),
                 "label-image",
             ),
             _ => match analyze_file_with_labels(path, &settings.pipeline) {
                 Ok((_, labels)) => (
                     Some(labels),
-                    "no label image kept: outlines from segmenting the file again with the run's stored settings".into(),
+                    format!("no label image kept: outlines from segmenting the file again with the run's stored settings ({FIRST_SEGMENTATION})"),
                     "resegmented",
                 ),
                 Err(e) => (None, format!("no outlines: {e}"), "none"),
