@@ -331,7 +331,10 @@ pub fn run(scenario: &Scenario, paths: &DemoPaths, out: &mut dyn Write) -> Resul
     // purpose (that is the experiment) and a blurred frame is judged against its
     // well's baseline focus by the out_of_focus flag, so counts, focus, threshold
     // and separability (which blur and dimming move too) stay off the charts.
-    let config = demo_config(acq, &paths.database, &paths.alerts);
+    // The run completes with its last frame: alerts still open then are closed
+    // with a final message, as at the end of a real plate run.
+    let expected_frames = scenario.wells().len() * scenario.time_points;
+    let config = demo_config(acq, &paths.database, &paths.alerts, expected_frames);
     let settings: Settings = crate::settings::from_text(&config, &paths.folder.join("demo.toml"))
         .map_err(|e| DemoError::Scenario(format!("demo settings: {e}")))?;
     let service = Service::start(&settings, &WatchOptions { new_run: true })?;
@@ -695,15 +698,16 @@ pub fn fresh_folder(parent: &Path) -> Result<PathBuf, String> {
     ))
 }
 
-/// The demo's settings as TOML. Paths are written as escaped TOML strings:
-/// Windows paths are full of backslashes.
-fn demo_config(acq: &Path, db: &Path, alerts: &Path) -> String {
+/// The demo's settings as TOML, the run complete at `expected_frames`. Paths
+/// are written as escaped TOML strings: Windows paths are full of backslashes.
+fn demo_config(acq: &Path, db: &Path, alerts: &Path, expected_frames: usize) -> String {
     let quoted = |p: &Path| toml::Value::String(p.display().to_string()).to_string();
     format!(
         "[watch]\nfolders = [{}]\nsettle_ms = 300\nretry_limit = 3\nretry_backoff_ms = 200\n\
          name_pattern = '^(?P<well>[A-P]\\d{{2}})_t(?P<time_point>\\d+)_(?P<channel>[^.]+)\\.tif$'\n\
          [store]\ndatabase = {}\n\
-         [quality]\nbaseline_frames = 4\non_uneven_illumination = \"flatten\"\n\
+         [quality]\nbaseline_frames = 4\nexpected_frames = {expected_frames}\n\
+         on_uneven_illumination = \"flatten\"\n\
          charted_metrics = [\"background_level\", \"illumination_change\"]\n\
          [alerts]\nfile = {}\n",
         quoted(acq),
@@ -730,11 +734,12 @@ mod tests {
     fn demo_settings_keep_paths_with_backslashes_and_quotes() {
         let dir = Path::new("/tmp/night \\ \"run\" 'A'");
         let (acq, db, alerts) = (dir.join("acq"), dir.join("fw.db"), dir.join("a.jsonl"));
-        let text = demo_config(&acq, &db, &alerts);
+        let text = demo_config(&acq, &db, &alerts, 128);
         let settings = crate::settings::parse(&text, &dir.join("demo.toml"))
             .unwrap()
             .read_files()
             .unwrap();
+        assert_eq!(settings.quality.expected_frames, Some(128));
         assert_eq!(settings.watch.folders, vec![acq]);
         assert_eq!(settings.store.database, db);
         assert_eq!(settings.alerts.file, Some(alerts));
