@@ -747,15 +747,11 @@ fn insert_queued(
 
 /// Marks a queued frame as in a worker's hand, or no longer.
 fn set_in_hand(tx: &Transaction<'_>, key: &FrameKey, in_hand: bool) -> rusqlite::Result<()> {
+    let (path, size, mtime) = key.sql_params();
     tx.prepare_cached(&format!(
         "UPDATE frames SET in_hand = ?4 WHERE {FRAME_KEY_SQL} AND status = 'queued'"
     ))?
-    .execute(params![
-        key.path,
-        key.size_bytes as i64,
-        key.mtime_ns,
-        in_hand
-    ])?;
+    .execute(params![path, size, mtime, in_hand])?;
     Ok(())
 }
 
