@@ -133,12 +133,16 @@ fn run(
     }
     let components = match params.split {
         Split::None => components,
-        Split::Distance { min_depth_px } => split::split(
+        Split::Distance {
+            min_depth_px,
+            min_separation_px,
+        } => split::split(
             components,
             frame.width,
             frame.height,
             params.connectivity,
             min_depth_px,
+            min_separation_px,
         ),
     };
     if components.count > params.max_objects {
