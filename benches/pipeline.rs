@@ -231,12 +231,10 @@ fn time_stages(files: &[PathBuf], reps: usize) -> [f64; 7] {
             ));
             times[6].push(ms(t));
             let t = Instant::now();
-            let measured =
-                std::hint::black_box(measure::measure(&frame, &[], &comps, &filter, None));
+            std::hint::black_box(measure::measure(&frame, &[], &comps, &filter, None));
             times[4].push(ms(t));
-            let boundary: f64 = measured.objects.iter().map(|o| o.perimeter_px).sum();
             let t = Instant::now();
-            std::hint::black_box(quality::assess(&frame, &hist, None, level, boundary));
+            std::hint::black_box(quality::assess(&frame, &hist, None, level));
             times[5].push(ms(t));
         }
     }

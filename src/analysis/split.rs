@@ -523,6 +523,12 @@ pub fn split(
         }) else {
             continue;
         };
+        // No two pixels of an object whose box diagonal is shorter than the
+        // separation are that far apart: one marker, nothing to transform.
+        let diagonal = f64::from(x1 - x0 - 1).hypot(f64::from(y1 - y0 - 1));
+        if diagonal < min_separation_px {
+            continue;
+        }
         // The box widened by one pixel on every side (`px = x - x0 + 1`);
         // the widening is background inside the frame and, for the distance
         // only, not background outside it. The flooding's mask is the
