@@ -21,7 +21,7 @@ use crossbeam_channel::{Receiver, Sender};
 
 use crate::encode::{write_label_file, LabelRuns, PARTIAL_SUFFIX};
 use crate::store::{label_folder, label_image_path, LabelImages};
-use crate::text::{shown, shown_path};
+use crate::text::{shown, shown_path, Repeats};
 
 /// Label images waiting to be written before the writer waits in turn: a
 /// bound on the memory they hold (each held as runs, mostly far smaller than
@@ -99,14 +99,19 @@ impl LabelImageWriter {
 
 fn write_loop(db: &Path, rx: &Receiver<Pending>) {
     remove_partial_files(&label_folder(db));
+    // A full volume fails every image: one line per kind and window.
+    let repeats = Repeats::default();
     for p in rx {
         let path = label_image_path(db, p.frame_id);
         if let Err(cause) = encode_and_write(&path, &p.runs) {
-            tracing::error!(
-                file = %shown(&p.file),
-                "label image of frame {} not written ({}); the frame's row is recorded",
-                p.frame_id,
-                shown(&cause)
+            repeats.error(
+                "label image not written",
+                format_args!(
+                    "{}: label image of frame {} not written ({}); the frame's row is recorded",
+                    shown(&p.file),
+                    p.frame_id,
+                    shown(&cause)
+                ),
             );
         }
     }
