@@ -29,12 +29,30 @@ fn bench_with_sinks(quality: &str) -> Bench {
         &bench.config,
         format!(
             "{text}\n[quality]\n{quality}\n[alerts]\nfile = {}\ncommand = [\"/bin/sh\", \"-c\", \"cat >> '{}'\"]\n",
-            watch_support::toml_string(&file),
+            toml_string(&file),
             command.display()
         ),
     )
     .unwrap();
     bench
+}
+
+/// `path` as a TOML basic string (quotes and backslashes escaped).
+fn toml_string(path: &Path) -> String {
+    toml::Value::String(path.to_string_lossy().into_owned()).to_string()
+}
+
+/// Makes `bench` record into the database `db` instead of `fw.db` beside
+/// its config (before the first start).
+fn database_at(bench: &mut Bench, db: &Path) {
+    let text = std::fs::read_to_string(&bench.config).unwrap();
+    let moved = text.replace(
+        "database = \"fw.db\"",
+        &format!("database = {}", toml_string(db)),
+    );
+    assert_ne!(moved, text, "the config names fw.db");
+    std::fs::write(&bench.config, moved).unwrap();
+    bench.db = db.to_path_buf();
 }
 
 /// Where the file sink and the command sink of [`bench_with_sinks`] write.
@@ -169,7 +187,7 @@ fn the_free_space_check_runs_while_frames_keep_coming() {
 fn a_full_database_volume_is_announced_waited_out_and_nothing_is_lost() {
     let mut bench = bench_with_sinks("min_free_space_mib = 1");
     let volume = Tmpfs::mount(&bench.dir.path().join("dbvol"), "4m");
-    bench.database_at(&volume.dir.join("fw.db"));
+    database_at(&mut bench, &volume.dir.join("fw.db"));
     bench.start();
     for i in 0..2 {
         put(&bench, i);

@@ -42,6 +42,8 @@ pub struct LabelImageWriter {
     keep: LabelImages,
     tx: Sender<Pending>,
     thread: JoinHandle<()>,
+    /// Images that could not be queued, logged limited.
+    repeats: Repeats,
 }
 
 impl LabelImageWriter {
@@ -60,7 +62,12 @@ impl LabelImageWriter {
         let thread = std::thread::Builder::new()
             .name("label-images".into())
             .spawn(move || write_loop(&db, &rx))?;
-        Ok(Some(LabelImageWriter { keep, tx, thread }))
+        Ok(Some(LabelImageWriter {
+            keep,
+            tx,
+            thread,
+            repeats: Repeats::default(),
+        }))
     }
 
     /// Whether a frame's image is kept, given whether it got a flag.
@@ -81,9 +88,12 @@ impl LabelImageWriter {
             runs,
         };
         if self.tx.send(pending).is_err() {
-            tracing::error!(
-                file = %shown(file),
-                "the label image thread has stopped; no label image for frame {frame_id}"
+            self.repeats.error(
+                "label image thread stopped",
+                format_args!(
+                    "{}: the label image thread has stopped; no label image for frame {frame_id}",
+                    shown(file)
+                ),
             );
         }
     }

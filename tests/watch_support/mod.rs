@@ -84,24 +84,6 @@ impl Bench {
         }
     }
 
-    /// Records into the database `db` instead of `fw.db` beside the config
-    /// (before the first start).
-    pub fn database_at(&mut self, db: &Path) {
-        let text = std::fs::read_to_string(&self.config).unwrap();
-        let moved = text.replace(
-            "database = \"fw.db\"",
-            &format!("database = {}", toml_string(db)),
-        );
-        assert_ne!(moved, text, "the config names fw.db");
-        std::fs::write(&self.config, moved).unwrap();
-        self.db = db.to_path_buf();
-    }
-
-    /// The path of the log of the current (last) start.
-    pub fn log_path(&self) -> PathBuf {
-        self.dir.path().join(format!("watch-{}.log", self.starts))
-    }
-
     /// Starts `framewarden watch` with stderr logged to a file.
     pub fn start(&mut self) {
         self.start_with_env(&[]);
@@ -230,11 +212,6 @@ impl Drop for Bench {
             let _ = child.wait();
         }
     }
-}
-
-/// `path` as a TOML basic string (quotes and backslashes escaped).
-pub fn toml_string(path: &Path) -> String {
-    toml::Value::String(path.to_string_lossy().into_owned()).to_string()
 }
 
 #[derive(Debug, Clone, PartialEq)]
