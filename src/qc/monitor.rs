@@ -885,6 +885,26 @@ mod tests {
         assert_eq!(back.state, AlertState::Recovered);
     }
 
+    /// Failed writes open one episode, however many fail; the first write
+    /// that succeeds closes it; the sentences name the database.
+    #[test]
+    fn failed_writes_for_lack_of_space_are_one_episode() {
+        let mut m = RunMonitor::new(QualitySettings::default());
+        assert_eq!(m.set_database_full("/d/fw.db", None, 0), None, "never full");
+        let full = m
+            .set_database_full("/d/fw.db", Some("database or disk is full"), 1)
+            .unwrap();
+        assert_eq!(
+            (full.condition.as_str(), full.state),
+            (DATABASE_FULL, AlertState::Opened)
+        );
+        assert!(full.message.contains("/d/fw.db (database or disk is full)"));
+        assert_eq!(m.set_database_full("/d/fw.db", Some("again"), 2), None);
+        let back = m.set_database_full("/d/fw.db", None, 3).unwrap();
+        assert_eq!((back.state, back.opened_at_ms), (AlertState::Recovered, 1));
+        assert_eq!(back.message, "the database /d/fw.db is written again");
+    }
+
     #[test]
     fn no_stall_before_the_first_frame_and_the_limit_on_both_sides() {
         let mut m = RunMonitor::new(QualitySettings::default());
