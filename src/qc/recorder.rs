@@ -19,9 +19,10 @@ use crate::qc::metrics::FrameMetrics;
 use crate::qc::monitor::{RunMonitor, Verdict};
 use crate::qc::params::{AlertSettings, QualitySettings};
 use crate::qc::sinks::{AlertDispatcher, SinkError};
+use crate::store::health::DatabaseFault;
 use crate::store::writer::FrameObserver;
 use crate::store::{now_ms, FrameKey, ACQUISITION_ORDER_SQL, FRAME_KEY_SQL, POSITION_SQL};
-use crate::text::shown;
+use crate::text::{shown, shown_path, Repeats};
 
 /// Why quality control could not start.
 #[derive(Debug, thiserror::Error)]
@@ -46,6 +47,8 @@ pub struct QcSetup {
     pub alerts: AlertSettings,
     /// Folders whose volumes' free space is watched (watched folders, database folder).
     pub volumes: Vec<PathBuf>,
+    /// The database (named in the alerts about it).
+    pub database: PathBuf,
 }
 
 /// The monitor of the writer's current run, and the sinks.
@@ -62,6 +65,11 @@ pub struct QcRecorder {
     /// The state before the open transaction, restored if it rolls back, so a
     /// retried batch is judged once.
     checkpoint: Option<(i64, RunMonitor)>,
+    /// Events raised outside a transaction and announced, not stored yet (the
+    /// database's volume was full): stored, in order, at the next try.
+    unstored: Vec<AlertEvent>,
+    /// Repeated warnings (alerts that cannot be stored yet), limited.
+    repeats: Repeats,
 }
 
 /// One frame's log line: what was recorded and how it was judged.
@@ -90,6 +98,8 @@ impl QcRecorder {
             pending: Vec::new(),
             pending_lines: Vec::new(),
             checkpoint: None,
+            unstored: Vec::new(),
+            repeats: Repeats::default(),
         };
         let replayed = recorder.replay(conn)?;
         recorder.close_earlier_runs(conn)?;
@@ -216,7 +226,7 @@ impl FrameObserver for QcRecorder {
 
     /// Periodic checks that need no frame: the stall, and free space on the
     /// watched and database volumes.
-    fn tick(&mut self, conn: &Connection) -> rusqlite::Result<()> {
+    fn tick(&mut self, conn: &Connection) {
         let now = now_ms();
         let mut events: Vec<AlertEvent> = self.monitor.check_stall(now).into_iter().collect();
         for volume in &self.setup.volumes {
@@ -225,12 +235,21 @@ impl FrameObserver for QcRecorder {
                 events.extend(self.monitor.check_free_space(&name, free, now));
             }
         }
-        for event in &events {
-            self.store_event(conn, event, None)?;
-        }
-        // Outside a transaction each statement is already committed.
-        self.announce_pending();
-        Ok(())
+        self.record_now(conn, events);
+    }
+
+    /// Writes to the database fail for lack of space, or succeed again: the
+    /// `database_full` episode.
+    fn out_of_space(&mut self, conn: &Connection, cause: Option<&str>) {
+        let db = shown_path(&self.setup.database);
+        let event = self.monitor.set_database_full(&db, cause, now_ms());
+        self.record_now(conn, event.into_iter().collect());
+    }
+
+    /// Announces the fault (log and sinks) as a notice; it cannot be stored.
+    fn database_failed(&mut self, fault: &DatabaseFault) {
+        let event = AlertEvent::notice(fault.condition(), now_ms(), None, fault.to_string());
+        self.announce(&event);
     }
 
     /// Waits for the sinks to deliver what is queued.
@@ -240,6 +259,33 @@ impl FrameObserver for QcRecorder {
 }
 
 impl QcRecorder {
+    /// Announces `events`, raised outside a transaction, and stores them
+    /// (each statement commits by itself). One that cannot be stored now (the
+    /// database's volume is full) has been announced all the same; it is
+    /// kept, with those after it, and stored at the next call, in order, so a
+    /// recovery never comes before the opening it closes.
+    fn record_now(&mut self, conn: &Connection, events: Vec<AlertEvent>) {
+        for event in &events {
+            self.announce(event);
+        }
+        self.unstored.extend(events);
+        let mut stored = 0;
+        for event in &self.unstored {
+            if let Err(e) = store_rows(conn, self.run_id, event, None) {
+                self.repeats.warn(
+                    "alert not stored",
+                    format_args!(
+                        "alert {} not stored yet ({e}); it is stored at the next check",
+                        shown(&event.condition)
+                    ),
+                );
+                break;
+            }
+            stored += 1;
+        }
+        self.unstored.drain(..stored);
+    }
+
     /// Logs the recorded frames' lines and announces the stored alerts.
     fn announce_pending(&mut self) {
         for line in self.pending_lines.drain(..) {
@@ -323,66 +369,7 @@ impl QcRecorder {
         event: &AlertEvent,
         frame_id: Option<i64>,
     ) -> rusqlite::Result<()> {
-        // The open episode the event is about: its condition and opening.
-        const EPISODE: &str =
-            "run_id = ?1 AND condition = ?2 AND opened_at_ms = ?3 AND closed_at_ms IS NULL";
-        let alert_id: Option<i64> = match event.state {
-            AlertState::Opened | AlertState::Notice => {
-                // A notice is an episode closed as it opens.
-                let notice = event.state == AlertState::Notice;
-                conn.prepare_cached(
-                    "INSERT INTO alerts (run_id, opened_at_ms, condition, message, frame_id, file, closed_at_ms, closed_state)
-                     VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8)",
-                )?
-                .execute(params![
-                    run_id,
-                    event.at_ms,
-                    event.condition,
-                    event.message,
-                    frame_id,
-                    event.file,
-                    notice.then_some(event.at_ms),
-                    notice.then_some(AlertState::Notice.as_str())
-                ])?;
-                Some(conn.last_insert_rowid())
-            }
-            AlertState::Updated => conn
-                .prepare_cached(&format!(
-                    "UPDATE alerts SET message = ?4 WHERE {EPISODE} RETURNING id"
-                ))?
-                .query_row(
-                    params![run_id, event.condition, event.opened_at_ms, event.message],
-                    |r| r.get(0),
-                )
-                .optional()?,
-            AlertState::Recovered | AlertState::Closed => {
-                conn.prepare_cached(&format!(
-                    "UPDATE alerts SET closed_at_ms = ?4, closed_message = ?5, closed_state = ?6 WHERE {EPISODE}"
-                ))?
-                .execute(params![
-                    run_id,
-                    event.condition,
-                    event.opened_at_ms,
-                    event.at_ms,
-                    event.message,
-                    event.state.as_str()
-                ])?;
-                None
-            }
-        };
-        if let (Some(alert_id), Some(evidence)) = (alert_id, &event.evidence) {
-            conn.prepare_cached(
-                "INSERT OR REPLACE INTO alert_positions (alert_id, position, joined_at_ms, frame_id, message)
-                 VALUES (?1, ?2, ?3, ?4, ?5)",
-            )?
-            .execute(params![
-                alert_id,
-                evidence.position,
-                event.at_ms,
-                frame_id,
-                evidence.message
-            ])?;
-        }
+        store_rows(conn, run_id, event, frame_id)?;
         self.pending.push(event.clone());
         Ok(())
     }
@@ -484,6 +471,79 @@ impl QcRecorder {
     }
 }
 
+/// Stores one event of run `run_id` in `conn`: an opening or a notice is a
+/// new row; an update rewrites the open alert's sentence; a recovery or a
+/// run's end closes it. Each position an event brings in is stored with its
+/// evidence.
+fn store_rows(
+    conn: &Connection,
+    run_id: i64,
+    event: &AlertEvent,
+    frame_id: Option<i64>,
+) -> rusqlite::Result<()> {
+    // The open episode the event is about: its condition and opening.
+    const EPISODE: &str =
+        "run_id = ?1 AND condition = ?2 AND opened_at_ms = ?3 AND closed_at_ms IS NULL";
+    let alert_id: Option<i64> = match event.state {
+        AlertState::Opened | AlertState::Notice => {
+            // A notice is an episode closed as it opens.
+            let notice = event.state == AlertState::Notice;
+            conn.prepare_cached(
+                "INSERT INTO alerts (run_id, opened_at_ms, condition, message, frame_id, file, closed_at_ms, closed_state)
+                 VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8)",
+            )?
+            .execute(params![
+                run_id,
+                event.at_ms,
+                event.condition,
+                event.message,
+                frame_id,
+                event.file,
+                notice.then_some(event.at_ms),
+                notice.then_some(AlertState::Notice.as_str())
+            ])?;
+            Some(conn.last_insert_rowid())
+        }
+        AlertState::Updated => conn
+            .prepare_cached(&format!(
+                "UPDATE alerts SET message = ?4 WHERE {EPISODE} RETURNING id"
+            ))?
+            .query_row(
+                params![run_id, event.condition, event.opened_at_ms, event.message],
+                |r| r.get(0),
+            )
+            .optional()?,
+        AlertState::Recovered | AlertState::Closed => {
+            conn.prepare_cached(&format!(
+                "UPDATE alerts SET closed_at_ms = ?4, closed_message = ?5, closed_state = ?6 WHERE {EPISODE}"
+            ))?
+            .execute(params![
+                run_id,
+                event.condition,
+                event.opened_at_ms,
+                event.at_ms,
+                event.message,
+                event.state.as_str()
+            ])?;
+            None
+        }
+    };
+    if let (Some(alert_id), Some(evidence)) = (alert_id, &event.evidence) {
+        conn.prepare_cached(
+            "INSERT OR REPLACE INTO alert_positions (alert_id, position, joined_at_ms, frame_id, message)
+             VALUES (?1, ?2, ?3, ?4, ?5)",
+        )?
+        .execute(params![
+            alert_id,
+            evidence.position,
+            event.at_ms,
+            frame_id,
+            evidence.message
+        ])?;
+    }
+    Ok(())
+}
+
 /// SQL for the positions an alert row names, as a JSON array in order.
 pub const POSITIONS_JSON_SQL: &str = "(SELECT json_group_array(position) FROM
     (SELECT position FROM alert_positions WHERE alert_id = alerts.id ORDER BY position))";
@@ -540,6 +600,7 @@ mod tests {
                 ..AlertSettings::default()
             },
             volumes: Vec::new(),
+            database: dir.path().join("fw.db"),
         };
         let mut conn = crate::store::open_for_writing(&dir.path().join("fw.db")).unwrap();
         conn.execute(
@@ -600,6 +661,7 @@ mod tests {
                 ..AlertSettings::default()
             },
             volumes: Vec::new(),
+            database: dir.path().join("fw.db"),
         };
         let conn = crate::store::open_for_writing(&dir.path().join("fw.db")).unwrap();
         conn.execute_batch(

@@ -22,6 +22,7 @@ use rustls::pki_types::{pem::PemObject, CertificateDer};
 
 use crate::qc::alerts::AlertEvent;
 use crate::qc::params::{AlertSettings, CommandSink, WebhookSink};
+use crate::text::Repeats;
 
 /// What went wrong with a sink: a delivery that failed, or (when the
 /// configuration loads) a webhook URL or CA file that cannot be used. Each
@@ -155,6 +156,8 @@ const QUEUE_CAPACITY: usize = 256;
 pub struct AlertDispatcher {
     queues: Vec<(&'static str, Sender<AlertEvent>)>,
     threads: Vec<JoinHandle<()>>,
+    /// Events dropped for a sink, logged limited.
+    repeats: Repeats,
 }
 
 enum Sink {
@@ -203,6 +206,7 @@ impl AlertDispatcher {
         let mut dispatcher = AlertDispatcher {
             queues: Vec::new(),
             threads: Vec::new(),
+            repeats: Repeats::default(),
         };
         for sink in sinks {
             let (event_tx, event_rx) = crossbeam_channel::bounded(QUEUE_CAPACITY);
@@ -222,16 +226,20 @@ impl AlertDispatcher {
         for (name, queue) in &self.queues {
             match queue.try_send(event.clone()) {
                 Ok(()) => {}
-                Err(TrySendError::Full(_)) => tracing::warn!(
-                    "alert sink {name} is {QUEUE_CAPACITY} events behind; dropped {} for it",
-                    event.condition
+                Err(TrySendError::Full(_)) => self.repeats.warn(
+                    "sink queue full",
+                    format_args!(
+                        "alert sink {name} is {QUEUE_CAPACITY} events behind; dropped {} for it",
+                        event.condition
+                    ),
                 ),
-                Err(TrySendError::Disconnected(_)) => {
-                    tracing::error!(
+                Err(TrySendError::Disconnected(_)) => self.repeats.error(
+                    "sink stopped",
+                    format_args!(
                         "alert sink {name} has stopped; {} not sent",
                         event.condition
-                    )
-                }
+                    ),
+                ),
             }
         }
     }
@@ -249,13 +257,18 @@ impl AlertDispatcher {
 }
 
 fn deliver_loop(sink: &Sink, event_rx: &Receiver<AlertEvent>) {
+    // A sink that is down fails every event: one line per window.
+    let repeats = Repeats::default();
     while let Ok(event) = event_rx.recv() {
         match sink.deliver(&event) {
             Ok(()) => tracing::debug!("alert {} sent to {}", event.condition, sink.name()),
-            Err(e) => tracing::warn!(
-                "alert {} could not be sent to the {} sink: {e}",
-                event.condition,
-                sink.name()
+            Err(e) => repeats.warn(
+                "delivery failed",
+                format_args!(
+                    "alert {} could not be sent to the {} sink: {e}",
+                    event.condition,
+                    sink.name()
+                ),
             ),
         }
     }

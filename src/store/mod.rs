@@ -6,6 +6,7 @@
 //! [`read_run`]. This file only opens connections, migrates, and
 //! answers the watcher's "is this version of this file already recorded?".
 
+pub mod health;
 pub mod label_images;
 pub mod writer;
 

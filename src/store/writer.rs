@@ -16,8 +16,9 @@
 //! only records and calls the observer inside its transaction.
 
 use std::path::PathBuf;
+use std::sync::Arc;
 use std::thread::JoinHandle;
-use std::time::Duration;
+use std::time::{Duration, Instant};
 
 use crossbeam_channel::{Receiver, Sender};
 use rusqlite::{params, Connection, OptionalExtension, Transaction, TransactionBehavior};
@@ -26,9 +27,10 @@ use crate::analysis::ObjectMeasures;
 use crate::encode::LabelRuns;
 use crate::naming::NameParts;
 use crate::pipeline::FileAnalysis;
+use crate::store::health::{is_out_of_space, DatabaseFault, DatabaseHealth};
 use crate::store::label_images::LabelImageWriter;
 use crate::store::{now_ms, FrameKey, COUNTED_SQL, FRAME_KEY_SQL};
-use crate::text::shown;
+use crate::text::{shown, Repeats};
 
 /// Why the writer could not start.
 #[derive(Debug, thiserror::Error)]
@@ -76,12 +78,18 @@ pub trait FrameObserver: Send {
     fn committed(&mut self);
     /// The transaction failed and was rolled back.
     fn rolled_back(&mut self);
-    /// Periodic checks that need no frame, outside any transaction (the
-    /// writer calls this while idle).
-    ///
-    /// # Errors
-    /// SQLite errors.
-    fn tick(&mut self, conn: &Connection) -> rusqlite::Result<()>;
+    /// Periodic checks that need no frame, outside any transaction: the
+    /// writer calls this on a clock, busy or idle, also while a commit waits
+    /// to be tried again.
+    fn tick(&mut self, conn: &Connection);
+    /// A commit failed for lack of space on the database's volume (`cause`
+    /// says how), or, with `None`, one succeeded again after such failures.
+    /// Called outside any transaction, once per change.
+    fn out_of_space(&mut self, conn: &Connection, cause: Option<&str>);
+    /// The database cannot be used any more (damaged, deleted or replaced):
+    /// the writer stops without writing anything more into it, so nothing
+    /// about it can be stored; called once, before [`FrameObserver::close`].
+    fn database_failed(&mut self, fault: &DatabaseFault);
     /// The writer is ending: finish what is queued.
     fn close(self: Box<Self>);
 }
@@ -213,6 +221,9 @@ pub struct WriterSetup {
     pub observer: Option<Box<dyn FrameObserver>>,
     /// Writes the kept label images after each commit; `None` = off.
     pub label_images: Option<LabelImageWriter>,
+    /// The database's file and faults, shared with the service's other
+    /// connections; checked on the writer's clock.
+    pub health: Arc<DatabaseHealth>,
 }
 
 impl Writer {
@@ -237,6 +248,11 @@ impl Writer {
             label_images: setup.label_images,
             held: Vec::new(),
             session_started_ms: now_ms(),
+            health: setup.health,
+            out_of_space: false,
+            next_check: Instant::now(),
+            next_tick: Instant::now() + OBSERVER_TICK,
+            repeats: Repeats::default(),
         };
         let run_id = state.run.id;
         let thread = std::thread::Builder::new()
@@ -247,7 +263,7 @@ impl Writer {
     }
 
     /// True once the thread has ended: before every sender is dropped, only
-    /// by a panic.
+    /// by a database fault ([`DatabaseHealth::fault`] says which) or a panic.
     pub fn is_finished(&self) -> bool {
         self.thread.is_finished()
     }
@@ -273,6 +289,15 @@ struct WriterState {
     /// Rows queued from this moment on are this session's: only they are
     /// waited for (a row an earlier process left queued may never come back).
     session_started_ms: i64,
+    health: Arc<DatabaseHealth>,
+    /// Whether the last commit failed for lack of space.
+    out_of_space: bool,
+    /// When the database's file is looked at next.
+    next_check: Instant,
+    /// When the observer's periodic checks run next.
+    next_tick: Instant,
+    /// The writer's repeated warnings (retries), limited.
+    repeats: Repeats,
 }
 
 /// A recorded frame whose label image is kept: its op's place in the batch
@@ -289,8 +314,12 @@ struct Committed {
     kept: Vec<KeptImage>,
 }
 
-/// How often the writer, when idle, lets the observer check for a stall.
+/// How often the writer lets the observer check for a stall and free space,
+/// busy or idle.
 const OBSERVER_TICK: Duration = Duration::from_secs(5);
+
+/// How often the writer looks at its database file (deleted or replaced).
+const HEALTH_CHECK: Duration = Duration::from_secs(1);
 
 impl WriterState {
     fn run_loop(&mut self, ops_rx: &Receiver<StoreOp>) {
@@ -298,16 +327,16 @@ impl WriterState {
         // waiting. Under load batches grow; when quiet a frame commits at once,
         // so batching never adds latency.
         loop {
-            let first = match ops_rx.recv_timeout(OBSERVER_TICK) {
+            if self.on_clock().is_some() {
+                break;
+            }
+            let wait = self
+                .next_check
+                .min(self.next_tick)
+                .saturating_duration_since(Instant::now());
+            let first = match ops_rx.recv_timeout(wait) {
                 Ok(op) => op,
-                Err(crossbeam_channel::RecvTimeoutError::Timeout) => {
-                    if let Some(observer) = self.observer.as_mut() {
-                        if let Err(e) = observer.tick(&self.conn) {
-                            tracing::error!("quality control: {e}");
-                        }
-                    }
-                    continue;
-                }
+                Err(crossbeam_channel::RecvTimeoutError::Timeout) => continue,
                 Err(crossbeam_channel::RecvTimeoutError::Disconnected) => break,
             };
             // Held outcomes first: they are older than anything new.
@@ -325,6 +354,11 @@ impl WriterState {
                 waiting,
                 kept,
             } = self.commit_with_retry(&batch);
+            if self.health.fault().is_some() {
+                // Nothing of this batch is recorded; its frames are redone
+                // at the next start.
+                break;
+            }
             if done {
                 for op in &batch {
                     if let StoreOp::InHand { committed, .. } = op {
@@ -354,6 +388,10 @@ impl WriterState {
                 }
             }
             (self.on_commit)(&finished);
+        }
+        if let Some(fault) = self.health.fault() {
+            self.stop_on(&fault);
+            return;
         }
         if !self.held.is_empty() {
             tracing::info!(
@@ -389,12 +427,68 @@ impl WriterState {
         }
     }
 
+    /// The writer's clock, busy or idle: the database's file every
+    /// [`HEALTH_CHECK`], the observer's periodic checks every
+    /// [`OBSERVER_TICK`]. Returns the fault that ends the writer, if any
+    /// (found here or by another connection).
+    fn on_clock(&mut self) -> Option<DatabaseFault> {
+        let now = Instant::now();
+        if now >= self.next_check {
+            self.next_check = now + HEALTH_CHECK;
+            if let Some(fault) = self.health.check() {
+                return Some(fault);
+            }
+        }
+        if now >= self.next_tick {
+            self.next_tick = now + OBSERVER_TICK;
+            if let Some(observer) = self.observer.as_mut() {
+                observer.tick(&self.conn);
+            }
+        }
+        self.health.fault()
+    }
+
+    /// Waits `pause` before a commit is tried again, keeping the clock;
+    /// returns early with a fault.
+    fn wait_to_retry(&mut self, pause: Duration) -> Option<DatabaseFault> {
+        let until = Instant::now() + pause;
+        loop {
+            if let Some(fault) = self.on_clock() {
+                return Some(fault);
+            }
+            let now = Instant::now();
+            if now >= until {
+                return None;
+            }
+            let next = self.next_check.min(self.next_tick).min(until);
+            std::thread::sleep(next.saturating_duration_since(now));
+        }
+    }
+
+    /// Ends the writer on a fault: nothing more is written into the
+    /// database (not even the run's end), the observer announces the fault,
+    /// and the kept label images already queued are written.
+    fn stop_on(&mut self, fault: &DatabaseFault) {
+        tracing::error!("{fault}");
+        if let Some(mut observer) = self.observer.take() {
+            observer.database_failed(fault);
+            observer.close();
+        }
+        if let Some(images) = self.label_images.take() {
+            images.finish();
+        }
+    }
+
     /// Commits `batch`, retrying: for as long as it takes while the database
     /// is busy, locked, full or failing I/O (conditions that clear: another
     /// program's transaction ends, space is freed), so nothing is dropped and
     /// the bounded channel holds the pipeline back meanwhile; up to
-    /// `GIVE_UP_AFTER` attempts for any other error. Returns the positions in
-    /// `batch` of the outcomes still waiting for earlier frames.
+    /// `GIVE_UP_AFTER` attempts for any other error. A damaged database is
+    /// not retried: it is a fault ([`DatabaseHealth::report`]), and so is a
+    /// fault found on the clock while waiting to retry. A commit that fails
+    /// for lack of space, and the first that succeeds after, are told to the
+    /// observer. Returns the positions in `batch` of the outcomes still
+    /// waiting for earlier frames.
     fn commit_with_retry(&mut self, batch: &[StoreOp]) -> Committed {
         const GIVE_UP_AFTER: u32 = 5;
         let mut attempt = 0u32;
@@ -411,18 +505,41 @@ impl WriterState {
                 }
             }
             match result {
-                Ok(committed) => return committed,
+                Ok(committed) => {
+                    if std::mem::take(&mut self.out_of_space) {
+                        if let Some(observer) = self.observer.as_mut() {
+                            observer.out_of_space(&self.conn, None);
+                        }
+                    }
+                    return committed;
+                }
+                Err(e) if self.health.report(&e) => return Committed::default(),
                 Err(e) if attempt < GIVE_UP_AFTER || clears_by_itself(&e) => {
-                    tracing::warn!(
-                        "store: commit of {} ops failed ({e}); retrying (attempt {attempt})",
-                        batch.len()
+                    if is_out_of_space(&e, self.health.database()) && !self.out_of_space {
+                        self.out_of_space = true;
+                        if let Some(observer) = self.observer.as_mut() {
+                            observer.out_of_space(&self.conn, Some(&e.to_string()));
+                        }
+                    }
+                    self.repeats.warn(
+                        "commit failed",
+                        format_args!(
+                            "store: commit of {} ops failed ({e}); retrying (attempt {attempt})",
+                            batch.len()
+                        ),
                     );
-                    std::thread::sleep(Duration::from_millis(200 * u64::from(attempt.min(25))));
+                    let pause = Duration::from_millis(200 * u64::from(attempt.min(25)));
+                    if self.wait_to_retry(pause).is_some() {
+                        return Committed::default();
+                    }
                 }
                 Err(e) => {
                     // Nothing is lost for good: the frames stay unrecorded or
                     // queued, and the next start's catch-up scan redoes them.
-                    tracing::error!("store: giving up on a batch of {} ops: {e}", batch.len());
+                    self.repeats.error(
+                        "batch given up",
+                        format_args!("store: giving up on a batch of {} ops: {e}", batch.len()),
+                    );
                     return Committed::default();
                 }
             }
@@ -1060,12 +1177,14 @@ mod tests {
         on_commit: CommitHook,
     ) -> (Writer, Sender<StoreOp>) {
         let run = open_run(&mut conn, &policy).unwrap();
+        let db = std::path::PathBuf::from(conn.path().unwrap());
         let setup = WriterSetup {
             capacity,
             max_batch: capacity,
             on_commit,
             observer: None,
             label_images: None,
+            health: Arc::new(DatabaseHealth::new(&db)),
         };
         Writer::start(conn, policy, run, setup).unwrap()
     }
@@ -1203,6 +1322,7 @@ mod tests {
                 // Without an observer no frame is flagged.
                 observer: None,
                 label_images: LabelImageWriter::start(&db, keep).unwrap(),
+                health: Arc::new(DatabaseHealth::new(&db)),
             };
             let (w, tx) = Writer::start(conn, policy, run, setup).unwrap();
             let a = key("/acq/a.tif", 10);
@@ -1378,9 +1498,9 @@ mod tests {
         }
         fn committed(&mut self) {}
         fn rolled_back(&mut self) {}
-        fn tick(&mut self, _: &Connection) -> rusqlite::Result<()> {
-            Ok(())
-        }
+        fn tick(&mut self, _: &Connection) {}
+        fn out_of_space(&mut self, _: &Connection, _: Option<&str>) {}
+        fn database_failed(&mut self, _: &DatabaseFault) {}
         fn close(self: Box<Self>) {}
     }
 
@@ -1394,6 +1514,7 @@ mod tests {
             on_commit: Box::new(|_| {}),
             observer: Some(Box::new(Judged(Arc::clone(&judged)))),
             label_images: None,
+            health: Arc::new(DatabaseHealth::new(db)),
         };
         let (w, tx) = Writer::start(conn, policy(false), run, setup).unwrap();
         (w, tx, judged)
