@@ -260,8 +260,8 @@ impl Page<'_> {
         let _ = writeln!(
             h,
             "<p class=\"note\">Written {} by framewarden {} from <code>{}</code>. Times are local, with their offset from UTC. \
-             The plots' time axes are acquisition times (when each file was first written), counted from the run's start \
-             or from the first acquisition when that is earlier, so a run recorded after the fact plots as it was acquired.</p>",
+             The plots' time axes are acquisition times \
+             (when each file was first written), so a run recorded after the fact plots as it was acquired.</p>",
             local(store::now_ms()),
             env!("CARGO_PKG_VERSION"),
             esc(&self.db.display().to_string())
