@@ -89,11 +89,11 @@ enum Command {
         /// Export this run (by number) instead of the current or last one.
         #[arg(long)]
         run: Option<i64>,
-        /// frames, objects, alerts or flags.
-        #[arg(long)]
+        /// Which table.
+        #[arg(long, value_enum)]
         table: framewarden::export::Table,
-        /// csv or parquet (Parquet needs -o).
-        #[arg(long, default_value = "csv")]
+        /// The file format (Parquet needs -o).
+        #[arg(long, value_enum, default_value = "csv")]
         format: framewarden::export::Format,
         /// Output file (default: standard output, CSV only).
         #[arg(short = 'o', long = "output", value_name = "FILE")]

@@ -136,8 +136,8 @@ impl Worker {
         }
     }
 
-    /// The file's analysis and, when label images are on, its first result's
-    /// label image as runs (encoded later, only if kept). Labels that do not
+    /// The file's analysis and, when label images are on, the label image of
+    /// its count used (the recount's where there is one) as runs (encoded later, only if kept). Labels that do not
     /// fit the frame are logged and left out; the frame is still recorded.
     fn analyze(&self, path: &Path) -> Result<(FileAnalysis, Option<LabelRuns>), FileError> {
         if !self.label_images {

@@ -164,10 +164,9 @@ fn esc(text: &str) -> String {
     out
 }
 
-/// What a picture's outlines show: the first segmentation, as the label
-/// images hold it, also where the count used is the recount's.
-const FIRST_SEGMENTATION: &str =
-    "the first segmentation; where the count is the recount's, its extra objects are not outlined";
+/// What a picture's outlines show: the objects counted, as the label images
+/// hold them.
+const COUNTED: &str = "the objects counted: the recount's where it ran";
 
 /// A time in the computer's time zone with its UTC offset.
 fn local(ms: i64) -> String {
@@ -231,17 +230,20 @@ impl Page<'_> {
         self.settings.and_then(|s| s.as_ref().ok())
     }
 
+    /// The plots' time axis, in acquisition time: from the run's start (or
+    /// the first acquisition, when earlier: a run recorded after the fact) to
+    /// the last acquisition or alert.
     fn axis(&self) -> TimeAxis {
-        let last = self
-            .data
-            .frames
-            .iter()
-            .map(|f| f.at_ms)
-            .chain(self.data.episodes.iter().map(|e| e.opened_ms))
-            .chain(self.run.ended_ms)
-            .max()
+        let acquired = || self.data.frames.iter().map(|f| f.acquired_ms);
+        let start = acquired()
+            .chain([self.run.started_ms])
+            .min()
             .unwrap_or(self.run.started_ms);
-        TimeAxis::new(self.run.started_ms, last)
+        let last = acquired()
+            .chain(self.data.episodes.iter().map(|e| e.opened_acquired_ms))
+            .max()
+            .unwrap_or(start);
+        TimeAxis::new(start, last)
     }
 
     fn html(&self) -> Result<String, String> {
@@ -257,7 +259,9 @@ impl Page<'_> {
         );
         let _ = writeln!(
             h,
-            "<p class=\"note\">Written {} by framewarden {} from <code>{}</code>. Times are local, with their offset from UTC.</p>",
+            "<p class=\"note\">Written {} by framewarden {} from <code>{}</code>. Times are local, with their offset from UTC. \
+             The plots' time axes are acquisition times \
+             (when each file was first written), so a run recorded after the fact plots as it was acquired.</p>",
             local(store::now_ms()),
             env!("CARGO_PKG_VERSION"),
             esc(&self.db.display().to_string())
@@ -365,14 +369,14 @@ impl Page<'_> {
             .unwrap_or(1)
             .max(1) as f64
             * 1.08;
-        h.push_str("<section id=\"positions\"><h2>Counts per position</h2>\n<p class=\"note key\">Objects counted (the recount where the uneven-illumination remedy ran) against time since the run started; the same scale on every plot.\
+        h.push_str("<section id=\"positions\"><h2>Counts per position</h2>\n<p class=\"note key\">Objects counted (the recount where the uneven-illumination remedy ran) against the time each file was acquired; the same scale on every plot.\
             <span style=\"background:#0072b2\"></span>count<span style=\"background:#e69f00;border-radius:50%\"></span>flagged frame<span style=\"background:#d55e00\"></span>failed frame (× on the time axis)</p>\n");
         let mut plots: BTreeMap<&str, String> = BTreeMap::new();
         for (position, frames) in &by_position {
             let points: Vec<CountPoint> = frames
                 .iter()
                 .map(|f| CountPoint {
-                    at_ms: f.at_ms,
+                    acquired_ms: f.acquired_ms,
                     count: f.count,
                     flagged: !f.flags.is_empty(),
                 })
@@ -587,7 +591,7 @@ impl Page<'_> {
             Ok((labels, w, h)) if w == pixels.width && h == pixels.height => (
                 Some(labels),
                 format!(
-                    "outlines from the label image {} ({FIRST_SEGMENTATION})",
+                    "outlines from the label image {} ({COUNTED})",
                     label_path.display()
                 ),
                 "label-image",
@@ -595,7 +599,7 @@ impl Page<'_> {
             _ => match analyze_file_with_labels(path, &settings.pipeline) {
                 Ok((_, labels)) => (
                     Some(labels),
-                    format!("no label image kept: outlines from segmenting the file again with the run's stored settings ({FIRST_SEGMENTATION})"),
+                    format!("no label image kept: outlines from segmenting the file again with the run's stored settings ({COUNTED})"),
                     "resegmented",
                 ),
                 Err(e) => (None, format!("no outlines: {e}"), "none"),
@@ -625,9 +629,9 @@ impl Page<'_> {
         }
         let _ = write!(
             h,
-            "<figcaption><b>{caption}</b> <code>{}</code><br><small>{}; {}</small></figcaption></figure>",
+            "<figcaption><b>{caption}</b> <code>{}</code><br><small>acquired {}; {}</small></figcaption></figure>",
             esc(&file_name(&frame.file)),
-            local(frame.at_ms),
+            local(frame.acquired_ms),
             esc(&pic.source)
         );
     }
@@ -662,7 +666,7 @@ impl Page<'_> {
                 .frames
                 .iter()
                 .filter(|g| g.position == f.position && g.status == "done" && g.flags.is_empty())
-                .min_by_key(|g| (g.at_ms - f.at_ms).abs());
+                .min_by_key(|g| (g.acquired_ms - f.acquired_ms).abs());
             match good {
                 Some(g) => self.figure(h, g, "good frame of the same position", "comparison"),
                 None => h.push_str("<p>No unflagged frame of this position to compare with.</p>"),

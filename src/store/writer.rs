@@ -132,7 +132,8 @@ pub enum StoreOp {
         attempts: u32,
         /// The result (and recount) to record.
         analysis: Box<FileAnalysis>,
-        /// The first result's label image when label images are on; encoded
+        /// The label image of the count used (the recount's where there is
+        /// one) when label images are on; encoded
         /// and written once the row commits, if the frame's image is kept.
         label_image: Option<LabelRuns>,
     },
