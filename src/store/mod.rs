@@ -6,6 +6,7 @@
 //! [`read_run`]. This file only opens connections, migrates, and
 //! answers the watcher's "is this version of this file already recorded?".
 
+pub mod analyses;
 pub mod label_images;
 pub mod writer;
 
@@ -28,6 +29,7 @@ const MIGRATIONS: &[&str] = &[
     include_str!("schema_v5.sql"),
     include_str!("schema_v6.sql"),
     include_str!("schema_v7.sql"),
+    include_str!("schema_v8.sql"),
 ];
 
 /// The schema version this build writes and reads.
@@ -177,6 +179,18 @@ pub enum StoreError {
         path: PathBuf,
         /// The run number asked for.
         run: i64,
+    },
+    /// The run has no analysis with the number asked for.
+    #[error("run {run} of {path} has no analysis {analysis} (it has {count}: 1 is the watch service's, each reprocess adds one)")]
+    NoAnalysis {
+        /// The database.
+        path: PathBuf,
+        /// The run.
+        run: i64,
+        /// The analysis number asked for.
+        analysis: i64,
+        /// How many analyses the run has.
+        count: i64,
     },
     /// Another process holds the writer's lock on the database.
     #[error("another framewarden watch is recording into {db} (it holds {lock}); one service per database")]
@@ -476,19 +490,24 @@ fn check_ours(conn: &Connection, path: &Path) -> Result<(), StoreError> {
 }
 
 /// Reads run `run` (by default the current or last one) of the database at
-/// `db` in one read-only snapshot: opens it with [`open_read_only`], picks the
-/// run and calls `read` with the snapshot and the run's number (`None` when the
-/// database has no run yet and none was asked for). The readers (`status`,
-/// `export`) share it, so they open, check and pick runs alike; a running
-/// `watch` is never disturbed (WAL: readers do not block the writer).
+/// `db`, as analysis `analysis` gave it (by default the newest), in one
+/// read-only snapshot: opens it with [`open_read_only`], picks the run and
+/// the analysis, lays the analysis under the usual table names
+/// ([`analyses::present`]) and calls `read` with the snapshot and what it
+/// shows (`None` when the database has no run yet and none was asked for).
+/// The readers (`status`, `export`, the report) share it, so they open, check
+/// and pick runs alike; a running `watch` is never disturbed (WAL: readers do
+/// not block the writer).
 ///
 /// # Errors
 /// [`open_read_only`]'s errors, [`StoreError::NoRun`] for a run number the
-/// database does not have, and whatever `read` returns.
+/// database does not have, [`StoreError::NoAnalysis`] for an analysis number
+/// the run does not have, and whatever `read` returns.
 pub fn read_run<T, E: From<StoreError>>(
     db: &Path,
     run: Option<i64>,
-    read: impl FnOnce(&Connection, Option<i64>) -> Result<T, E>,
+    analysis: Option<i64>,
+    read: impl FnOnce(&Connection, Option<analyses::Shown>) -> Result<T, E>,
 ) -> Result<T, E> {
     let mut conn = open_read_only(db)?;
     let tx = conn.transaction().map_err(StoreError::sqlite(db))?;
@@ -507,7 +526,31 @@ pub fn read_run<T, E: From<StoreError>>(
         }
         .into());
     }
-    let out = read(&tx, run_id)?;
+    let shown = match run_id {
+        None => None,
+        Some(run_id) => {
+            let picked = analyses::pick(&tx, run_id, analysis).map_err(StoreError::sqlite(db))?;
+            let Some((id, number, count)) = picked else {
+                let count = analyses::pick(&tx, run_id, None)
+                    .map_err(StoreError::sqlite(db))?
+                    .map_or(1, |p| p.2);
+                return Err(StoreError::NoAnalysis {
+                    path: db.to_path_buf(),
+                    run: run_id,
+                    analysis: analysis.unwrap_or(1),
+                    count,
+                }
+                .into());
+            };
+            analyses::present(&tx, id, number).map_err(StoreError::sqlite(db))?;
+            Some(analyses::Shown {
+                run_id,
+                analysis: number,
+                analyses: count,
+            })
+        }
+    };
+    let out = read(&tx, shown)?;
     tx.finish().map_err(StoreError::sqlite(db))?;
     Ok(out)
 }
