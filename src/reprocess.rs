@@ -674,3 +674,63 @@ impl Progress {
         }
     }
 }
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::analysis::ObjectFilter;
+
+    /// `changed_settings` with a `--with` file holding `text`.
+    fn with(text: &str) -> Result<Settings, ReprocessError> {
+        let dir = tempfile::tempdir().unwrap();
+        let path = dir.path().join("with.toml");
+        std::fs::write(&path, text).unwrap();
+        changed_settings(&Settings::default().to_toml(), Some(&path), 4)
+    }
+
+    #[test]
+    fn with_changes_only_its_own_keys_and_keeps_the_rest_of_the_run() {
+        let changed =
+            with("[segment]\nmin_area_px = 80\n[quality]\nbaseline_frames = 7\n").unwrap();
+        let text = changed.to_toml();
+        assert!(text.contains("min_area_px = 80"), "{text}");
+        assert!(text.contains("baseline_frames = 7"), "{text}");
+        // Every other key is the run's: putting the two changed keys back
+        // gives the stored settings.
+        let back = text
+            .replace(
+                "min_area_px = 80",
+                &format!("min_area_px = {}", ObjectFilter::DEFAULT_MIN_AREA_PX),
+            )
+            .replace(
+                "baseline_frames = 7",
+                &format!(
+                    "baseline_frames = {}",
+                    Settings::default().quality.charts.baseline_frames
+                ),
+            );
+        assert_eq!(
+            Settings::from_toml(&back, "back").unwrap(),
+            Settings::default()
+        );
+    }
+
+    #[test]
+    fn with_refuses_keys_outside_segment_measure_and_quality_by_name() {
+        for (text, key) in [
+            ("[store]\nbatch_max = 3\n", "`store.batch_max`"),
+            ("workers = 3\n", "`workers`"),
+            (
+                "[segment]\nmin_area_px = 80\n[watch]\nsettle_ms = 5\n",
+                "`watch.settle_ms`",
+            ),
+        ] {
+            let e = with(text).unwrap_err();
+            assert!(e.is_usage() && e.to_string().contains(key), "{text}: {e}");
+            assert!(e.to_string().contains("with.toml"), "{e}");
+        }
+        // A misspelt key inside [segment] is named by the settings' own check.
+        let e = with("[segment]\nmin_area = 80\n").unwrap_err();
+        assert!(e.is_usage() && e.to_string().contains("min_area"), "{e}");
+    }
+}

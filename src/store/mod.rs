@@ -1010,6 +1010,72 @@ mod tests {
     }
 
     #[test]
+    fn v8_makes_the_recorded_results_analysis_1_of_their_run() {
+        let dir = tempfile::tempdir().unwrap();
+        let db = dir.path().join("fw.db");
+        {
+            let mut conn = Connection::open(&db).unwrap();
+            let tx = conn.transaction().unwrap();
+            for sql in &MIGRATIONS[..7] {
+                tx.execute_batch(sql).unwrap();
+            }
+            tx.pragma_update(None, "user_version", 7).unwrap();
+            tx.pragma_update(None, "application_id", APPLICATION_ID)
+                .unwrap();
+            tx.execute_batch(
+                "INSERT INTO runs (folders, started_at_ms, last_frame_at_ms, settings) VALUES ('[]', 5, 5, 'a'), ('[]', 9, 9, 'b');",
+            )
+            .unwrap();
+            tx.commit().unwrap();
+        }
+        let shown = |analysis: Option<i64>| {
+            read_run(&db, None, analysis, |_, shown| Ok::<_, StoreError>(shown))
+        };
+        let only_the_first = analyses::Shown {
+            run_id: 2,
+            analysis: 1,
+            analyses: 1,
+        };
+        // Read as it is (no migration: a reader never writes): the watch
+        // service's results are analysis 1 of 1, and there is no other.
+        assert_eq!(shown(None).unwrap(), Some(only_the_first));
+        assert!(matches!(
+            shown(Some(2)),
+            Err(StoreError::NoAnalysis {
+                analysis: 2,
+                count: 1,
+                ..
+            })
+        ));
+        let conn = open_for_writing(&db).unwrap();
+        let rows = |conn: &Connection| -> Vec<(i64, i64, String, String, i64)> {
+            conn.prepare(
+                "SELECT run_id, number, settings, source, finished_at_ms FROM analyses ORDER BY run_id",
+            )
+            .unwrap()
+            .query_map([], |r| Ok((r.get(0)?, r.get(1)?, r.get(2)?, r.get(3)?, r.get(4)?)))
+            .unwrap()
+            .collect::<Result<_, _>>()
+            .unwrap()
+        };
+        assert_eq!(
+            rows(&conn),
+            [
+                (1, 1, "a".into(), "watch".into(), 5),
+                (2, 1, "b".into(), "watch".into(), 9)
+            ]
+        );
+        assert_eq!(shown(None).unwrap(), Some(only_the_first));
+        // A run started later has its analysis 1 from the start.
+        conn.execute(
+            "INSERT INTO runs (folders, started_at_ms, last_frame_at_ms, settings) VALUES ('[]', 12, 12, 'c')",
+            [],
+        )
+        .unwrap();
+        assert_eq!(rows(&conn)[2], (3, 1, "c".into(), "watch".into(), 12));
+    }
+
+    #[test]
     fn v7_places_older_rows_in_acquisition_order() {
         let dir = tempfile::tempdir().unwrap();
         let db = dir.path().join("fw.db");
