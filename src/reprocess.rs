@@ -610,6 +610,8 @@ pub fn render(c: &Comparison) -> String {
     if !c.not_reread.is_empty() {
         let _ = writeln!(out, "not re-read ({}):", c.not_reread.len());
         for (file, cause) in &c.not_reread {
+            // A decoding error names the file already.
+            let cause = cause.strip_prefix(&format!("{file}: ")).unwrap_or(cause);
             let _ = writeln!(out, "  {}: {}", shown(file), shown(cause));
         }
     }

@@ -60,8 +60,8 @@ pub fn pick(
 /// Makes the analysis `analysis_id` (numbered `number`) what the usual table
 /// names read on `conn`. Number 1 is the tables themselves: nothing to do. For
 /// a reprocess: `frames` is the run's frame rows that analysis re-read, each
-/// with its identity and name parts from the row and its result (status,
-/// measures, counts) from `analysis_frames`; `objects` and `flags` are that
+/// with its identity, name parts and times from the row and its result
+/// (status, error, measures, counts) from `analysis_frames`; `objects` and `flags` are that
 /// analysis's; a reprocess sends and records no alert, so `alerts` and
 /// `alert_positions` are empty. The views take their columns from the tables
 /// they stand for, so a column added to `frames` later is carried through.
@@ -76,7 +76,9 @@ pub fn present(conn: &Connection, analysis_id: i64, number: i64) -> rusqlite::Re
     let frames = columns(conn, "frames")?
         .into_iter()
         .map(|c| {
-            let from = if c != "frame_id" && result_columns.contains(&c) {
+            // The frame's own times stay (a run's plots and rates are the
+            // night's, not the morning's).
+            let from = if c != "frame_id" && c != "analyzed_at_ms" && result_columns.contains(&c) {
                 "r"
             } else {
                 "f"
