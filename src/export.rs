@@ -300,6 +300,7 @@ pub fn column_names(table: Table) -> Vec<&'static str> {
 pub fn export(
     db: &Path,
     run: Option<i64>,
+    analysis: Option<i64>,
     table: Table,
     format: Format,
     out: Option<&Path>,
@@ -307,8 +308,10 @@ pub fn export(
     if format == Format::Parquet && out.is_none() {
         return Err(ExportError::ParquetNeedsFile);
     }
-    store::read_run(db, run, |conn, run_id| {
-        let run_id = run_id.ok_or_else(|| ExportError::Empty(db.to_path_buf()))?;
+    store::read_run(db, run, analysis, |conn, picked| {
+        let run_id = picked
+            .ok_or_else(|| ExportError::Empty(db.to_path_buf()))?
+            .run_id;
         let rows = match out {
             None => {
                 let stdout = std::io::stdout();

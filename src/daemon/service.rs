@@ -407,7 +407,7 @@ impl Service {
 /// Rewrites the HTML report of run `run_id` (atomically: a temporary file
 /// renamed over it); a failure is logged and the service goes on.
 fn write_report(db: &Path, run_id: i64, path: &Path) {
-    match crate::html_report::write(db, Some(run_id), path) {
+    match crate::html_report::write(db, Some(run_id), Some(1), path) {
         Ok(w) => tracing::info!(
             "report of run {run_id} written to {} ({} kB)",
             shown_path(path),

@@ -58,13 +58,19 @@ pub struct Written {
     pub bytes: usize,
 }
 
-/// Writes the report of run `run` (the last one by default) of `db` to `out`:
+/// Writes the report of run `run` (the last one by default) of `db`, as
+/// analysis `analysis` gave it (the newest by default), to `out`:
 /// first to a temporary file beside it, then renamed over it.
 ///
 /// # Errors
 /// [`ReportError`].
-pub fn write(db: &Path, run: Option<i64>, out: &Path) -> Result<Written, ReportError> {
-    let (run_id, html) = render(db, run)?;
+pub fn write(
+    db: &Path,
+    run: Option<i64>,
+    analysis: Option<i64>,
+    out: &Path,
+) -> Result<Written, ReportError> {
+    let (run_id, html) = render(db, run, analysis)?;
     let failed = |source| ReportError::Write {
         path: out.to_path_buf(),
         source,
@@ -95,25 +101,29 @@ struct RunRow {
     settings_format: String,
 }
 
-/// The report of run `run` (the last one by default) as HTML, with the run's
-/// number.
+/// The report of run `run` (the last one by default) as analysis `analysis`
+/// gave it (the newest by default) as HTML, with the run's number.
 ///
 /// # Errors
 /// [`ReportError`].
-pub fn render(db: &Path, run: Option<i64>) -> Result<(i64, String), ReportError> {
-    let status = status::read(db, 0, run)?;
+pub fn render(
+    db: &Path,
+    run: Option<i64>,
+    analysis: Option<i64>,
+) -> Result<(i64, String), ReportError> {
+    let status = status::read(db, 0, run, analysis)?;
     let Some(info) = &status.run else {
         return Err(ReportError::NoRun(db.to_path_buf()));
     };
-    let mut conn = store::open_read_only(db)?;
     let sqlite = |source| StoreError::Sqlite {
         path: db.to_path_buf(),
         source,
     };
-    let tx = conn.transaction().map_err(sqlite)?;
-    let row = run_row(&tx, info.id).map_err(sqlite)?;
-    let data = data::read(&tx, info.id).map_err(sqlite)?;
-    tx.finish().map_err(sqlite)?;
+    let (row, data) = store::read_run(db, Some(info.id), Some(info.analysis), |tx, _| {
+        let row = run_row(tx, info.id, info.analysis).map_err(sqlite)?;
+        let data = data::read(tx, info.id).map_err(sqlite)?;
+        Ok::<_, StoreError>((row, data))
+    })?;
     let Some(row) = row else {
         return Err(ReportError::NoRun(db.to_path_buf()));
     };
@@ -121,6 +131,7 @@ pub fn render(db: &Path, run: Option<i64>) -> Result<(i64, String), ReportError>
         .then(|| Settings::from_toml(&row.settings, &format!("run {} settings", row.id)));
     let html = Page {
         db,
+        label_images: info.analysis == 1,
         status: &status,
         run: &row,
         data: &data,
@@ -131,21 +142,37 @@ pub fn render(db: &Path, run: Option<i64>) -> Result<(i64, String), ReportError>
     Ok((row.id, html))
 }
 
-fn run_row(conn: &Connection, id: i64) -> rusqlite::Result<Option<RunRow>> {
-    conn.query_row(
-        "SELECT id, started_at_ms, ended_at_ms, settings, settings_format FROM runs WHERE id = ?1",
-        [id],
-        |r| {
-            Ok(RunRow {
-                id: r.get(0)?,
-                started_ms: r.get(1)?,
-                ended_ms: r.get(2)?,
-                settings: r.get(3)?,
-                settings_format: r.get(4)?,
-            })
-        },
-    )
-    .optional()
+/// The run's row, with the settings of its analysis `analysis` (a
+/// reprocess's own; the run's for the watch service's).
+fn run_row(conn: &Connection, id: i64, analysis: i64) -> rusqlite::Result<Option<RunRow>> {
+    let row = conn
+        .query_row(
+            "SELECT id, started_at_ms, ended_at_ms, settings, settings_format FROM runs WHERE id = ?1",
+            [id],
+            |r| {
+                Ok(RunRow {
+                    id: r.get(0)?,
+                    started_ms: r.get(1)?,
+                    ended_ms: r.get(2)?,
+                    settings: r.get(3)?,
+                    settings_format: r.get(4)?,
+                })
+            },
+        )
+        .optional()?;
+    if analysis == 1 {
+        return Ok(row);
+    }
+    let settings: String = conn.query_row(
+        "SELECT settings FROM analyses WHERE run_id = ?1 AND number = ?2",
+        [id, analysis],
+        |r| r.get(0),
+    )?;
+    Ok(row.map(|row| RunRow {
+        settings,
+        settings_format: "toml".into(),
+        ..row
+    }))
 }
 
 /// Text made safe inside HTML elements and attribute values.
@@ -210,6 +237,9 @@ code{overflow-wrap:anywhere}
 
 struct Page<'a> {
     db: &'a Path,
+    /// Whether the frames' label images (the watch service's segmentation)
+    /// outline the pictures: not for a reprocess's analysis.
+    label_images: bool,
     status: &'a StatusReport,
     run: &'a RunRow,
     data: &'a RunData,
@@ -301,6 +331,18 @@ impl Page<'_> {
             })
             .unwrap_or_default();
         item("folders", "folders", folders);
+        if let Some(r) = &s.run {
+            let whose = if r.analysis == 1 {
+                "the watch service's"
+            } else {
+                "a reprocess"
+            };
+            item(
+                "analysis",
+                "analysis",
+                format!("analysis {} of {} ({whose})", r.analysis, r.analyses),
+            );
+        }
         item("started", "started", local(self.run.started_ms));
         item(
             "ended",
@@ -587,7 +629,12 @@ impl Page<'_> {
             Err(e) => return none(format!("the file cannot be read now: {e}")),
         };
         let label_path = store::label_image_path(self.db, frame.id);
-        let (labels, source, kind) = match thumbs::read_label_image(&label_path) {
+        let kept = if self.label_images {
+            thumbs::read_label_image(&label_path)
+        } else {
+            Err("a reprocess keeps no label images".into())
+        };
+        let (labels, source, kind) = match kept {
             Ok((labels, w, h)) if w == pixels.width && h == pixels.height => (
                 Some(labels),
                 format!(

@@ -9,12 +9,13 @@
 use std::collections::{BTreeMap, VecDeque};
 use std::time::Duration;
 
+use crate::pipeline::FileAnalysis;
 use crate::qc::alerts::{
     list_positions, AlertBook, AlertEvent, AlertState, Entry, Exit, Group, GroupBook,
     PositionEvidence,
 };
 use crate::qc::drift::{median, Chart, Signal, Step};
-use crate::qc::flags::{frame_flags, num, FrameFlag, PositionContext};
+use crate::qc::flags::{explain_recount, frame_flags, num, FrameFlag, PositionContext};
 use crate::qc::metrics::{Direction, FrameMetrics, Metric};
 use crate::qc::params::{AlertSettings, QualitySettings};
 
@@ -153,6 +154,35 @@ impl RunMonitor {
         self.flagged += u64::from(!flags.is_empty());
         events.extend(self.count_recorded(at_ms, file));
         Verdict { flags, events }
+    }
+
+    /// Judges one recorded file's analysis at `position`, as the service
+    /// records it: a first version is observed ([`RunMonitor::observe`]), a
+    /// version that supersedes one already judged is judged again without
+    /// charting ([`RunMonitor::judge_again`]). Flags and charts use the first
+    /// result, so the run's metrics stay comparable; where a recount ran, the
+    /// flags say so ([`explain_recount`]).
+    pub fn judge(
+        &mut self,
+        position: &str,
+        file: &str,
+        at_ms: i64,
+        analysis: &FileAnalysis,
+        supersedes: bool,
+    ) -> Verdict {
+        let metrics = FrameMetrics::from(&analysis.result);
+        let mut verdict = if supersedes {
+            Verdict {
+                flags: self.judge_again(position, &metrics),
+                events: Vec::new(),
+            }
+        } else {
+            self.observe(position, file, at_ms, &metrics)
+        };
+        if let Some(recount) = &analysis.recount {
+            explain_recount(&mut verdict.flags, &analysis.result, recount);
+        }
+        verdict
     }
 
     /// Judges a new version, with other pixels, of a frame already observed

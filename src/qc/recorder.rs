@@ -14,9 +14,8 @@ use rusqlite::{params, Connection, OptionalExtension, Transaction};
 use crate::analysis::Method;
 use crate::pipeline::FileAnalysis;
 use crate::qc::alerts::{AlertEvent, AlertState};
-use crate::qc::flags::explain_recount;
 use crate::qc::metrics::FrameMetrics;
-use crate::qc::monitor::{RunMonitor, Verdict};
+use crate::qc::monitor::RunMonitor;
 use crate::qc::params::{AlertSettings, QualitySettings};
 use crate::qc::sinks::{AlertDispatcher, SinkError};
 use crate::store::health::DatabaseFault;
@@ -145,22 +144,9 @@ impl FrameObserver for QcRecorder {
         self.switch_run(tx, run_id)?;
         let at_ms = now_ms();
         let result = &analysis.result;
-        let metrics = FrameMetrics::from(result);
-        let mut verdict = if supersedes {
-            Verdict {
-                flags: self.monitor.judge_again(&position, &metrics),
-                events: Vec::new(),
-            }
-        } else {
-            self.monitor.observe(&position, &file, at_ms, &metrics)
-        };
-        if let Some(recount) = &analysis.recount {
-            tx.prepare_cached(
-                "UPDATE frames SET recount_threshold = ?2, recount_object_count = ?3, count_source = 'recount' WHERE id = ?1",
-            )?
-            .execute(params![frame_id, recount.threshold, recount.object_count as i64])?;
-            explain_recount(&mut verdict.flags, result, recount);
-        }
+        let verdict = self
+            .monitor
+            .judge(&position, &file, at_ms, analysis, supersedes);
         tx.prepare_cached("DELETE FROM flags WHERE frame_id = ?1")?
             .execute([frame_id])?;
         let mut insert = tx.prepare_cached(

@@ -21,6 +21,7 @@ use std::thread::JoinHandle;
 use std::time::{Duration, Instant};
 
 use crossbeam_channel::{Receiver, Sender};
+use rusqlite::types::Value;
 use rusqlite::{params, Connection, OptionalExtension, Transaction, TransactionBehavior};
 
 use crate::analysis::ObjectMeasures;
@@ -873,6 +874,57 @@ fn set_in_hand(tx: &Transaction<'_>, key: &FrameKey, in_hand: bool) -> rusqlite:
     Ok(())
 }
 
+/// The columns of a frame's result that an analysis fills (in `frames` for
+/// the watch service's analysis, in `analysis_frames` for a reprocess), in
+/// the order of [`result_values`].
+pub const RESULT_COLUMNS: &str = "width, height, bit_depth, method, threshold, separability, \
+     object_count, foreground_fraction, background_level, saturation_fraction, focus, \
+     illumination_change, pixel_size_um, pixel_size_source, bimodality, size_filtered, \
+     merged_fraction, pixel_hash, recount_threshold, recount_object_count, count_source";
+
+/// The values of [`RESULT_COLUMNS`] for one file's analysis; the recount's
+/// threshold, count and `count_source = 'recount'` where it ran, else NULL.
+pub fn result_values(analysis: &FileAnalysis) -> Vec<Value> {
+    let r = &analysis.result;
+    let real = Value::Real;
+    let int = |n: usize| Value::Integer(n as i64);
+    let recount = analysis.recount.as_ref();
+    vec![
+        int(r.width),
+        int(r.height),
+        Value::Integer(i64::from(r.bit_depth)),
+        Value::Text(r.method.clone()),
+        real(r.threshold),
+        real(r.separability),
+        int(r.object_count),
+        real(r.foreground_fraction),
+        real(r.background_level),
+        real(r.saturation_fraction),
+        real(r.focus),
+        real(r.illumination_change),
+        r.pixel_size_um.map_or(Value::Null, real),
+        analysis
+            .pixel_size_source
+            .map_or(Value::Null, |s| Value::Text(s.as_str().into())),
+        real(r.bimodality),
+        int(r.size_filtered),
+        real(r.merged_fraction),
+        Value::Integer(analysis.pixel_hash as i64),
+        recount.map_or(Value::Null, |c| real(c.threshold)),
+        recount.map_or(Value::Null, |c| int(c.object_count)),
+        recount.map_or(Value::Null, |_| Value::Text("recount".into())),
+    ]
+}
+
+/// `?first, ?first+1, …`: one numbered placeholder per [`RESULT_COLUMNS`] entry.
+pub fn result_placeholders(first: usize) -> String {
+    let n = RESULT_COLUMNS.split(',').count();
+    (first..first + n)
+        .map(|i| format!("?{i}"))
+        .collect::<Vec<_>>()
+        .join(", ")
+}
+
 /// Returns the frame's id and how it stands to an earlier version, or `None`
 /// when there was no unfinished row to complete.
 fn record_done(
@@ -883,57 +935,34 @@ fn record_done(
 ) -> rusqlite::Result<Option<(i64, Version)>> {
     let r = &analysis.result;
     let now = now_ms();
+    let mut values = vec![
+        Value::Text(key.path.clone()),
+        Value::Integer(key.size_bytes as i64),
+        Value::Integer(key.mtime_ns),
+        Value::Integer(i64::from(attempts)),
+        Value::Integer(now),
+    ];
+    values.extend(result_values(analysis));
     let frame_id: Option<(i64, i64, Position)> = tx
         .prepare_cached(&format!(
             "UPDATE frames SET status = 'done', in_hand = 0, error = NULL, attempts = ?4, analyzed_at_ms = ?5,
-                 latency_ms = MAX(0, ?5 - ready_at_ms),
-                 width = ?6, height = ?7, bit_depth = ?8, method = ?9, threshold = ?10, separability = ?11,
-                 object_count = ?12, foreground_fraction = ?13, background_level = ?14,
-                 saturation_fraction = ?15, focus = ?16, illumination_change = ?17,
-                 pixel_size_um = ?18, pixel_size_source = ?19, bimodality = ?20, size_filtered = ?21,
-                 merged_fraction = ?22, pixel_hash = ?23
+                 latency_ms = MAX(0, ?5 - ready_at_ms), ({RESULT_COLUMNS}) = ({})
              WHERE {FRAME_KEY_SQL} AND status <> 'done'
-             RETURNING id, run_id, time_point, well, site, channel"
+             RETURNING id, run_id, time_point, well, site, channel",
+            result_placeholders(6)
         ))?
-        .query_row(
-            params![
-                key.path,
-                key.size_bytes as i64,
-                key.mtime_ns,
-                attempts,
-                now,
-                r.width as i64,
-                r.height as i64,
-                r.bit_depth,
-                r.method,
-                r.threshold,
-                r.separability,
-                r.object_count as i64,
-                r.foreground_fraction,
-                r.background_level,
-                r.saturation_fraction,
-                r.focus,
-                r.illumination_change,
-                r.pixel_size_um,
-                analysis.pixel_size_source.map(|s| s.as_str()),
-                r.bimodality,
-                r.size_filtered as i64,
-                r.merged_fraction,
-                analysis.pixel_hash as i64,
-            ],
-            |row| {
-                Ok((
-                    row.get(0)?,
-                    row.get(1)?,
-                    Position {
-                        time_point: row.get(2)?,
-                        well: row.get(3)?,
-                        site: row.get(4)?,
-                        channel: row.get(5)?,
-                    },
-                ))
-            },
-        )
+        .query_row(rusqlite::params_from_iter(values), |row| {
+            Ok((
+                row.get(0)?,
+                row.get(1)?,
+                Position {
+                    time_point: row.get(2)?,
+                    well: row.get(3)?,
+                    site: row.get(4)?,
+                    channel: row.get(5)?,
+                },
+            ))
+        })
         .optional()?;
     let Some((frame_id, run_id, position)) = frame_id else {
         tracing::warn!(
@@ -946,9 +975,9 @@ fn record_done(
     tx.prepare_cached("DELETE FROM objects WHERE frame_id = ?1")?
         .execute([frame_id])?;
     if !matches!(version, Version::SamePixels(_)) {
-        insert_objects(tx, frame_id, "raw", &r.objects)?;
+        insert_objects(tx, ObjectsOf::Watch, frame_id, "raw", &r.objects)?;
         if let Some(recount) = &analysis.recount {
-            insert_objects(tx, frame_id, "recount", &recount.objects)?;
+            insert_objects(tx, ObjectsOf::Watch, frame_id, "recount", &recount.objects)?;
         }
     }
     Ok(Some((frame_id, version)))
@@ -1009,27 +1038,47 @@ fn compare_with_earlier(
 /// than one statement per object (hundreds of objects per frame).
 const OBJECTS_PER_INSERT: usize = 32;
 
-fn insert_objects(
-    tx: &Transaction<'_>,
+/// Which analysis objects are recorded for: the watch service's own (table
+/// `objects`) or a reprocess's (`analysis_objects`, by `analyses.id`).
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum ObjectsOf {
+    /// The watch service's analysis: `objects`.
+    Watch,
+    /// The analysis with this `analyses.id`: `analysis_objects`.
+    Analysis(i64),
+}
+
+/// Records `objects` of `frame_id`'s result `result` (`raw` or `recount`).
+///
+/// # Errors
+/// SQLite errors.
+pub fn insert_objects(
+    tx: &Connection,
+    of: ObjectsOf,
     frame_id: i64,
     result: &str,
     objects: &[ObjectMeasures],
 ) -> rusqlite::Result<()> {
-    use rusqlite::types::Value;
+    let (table, first, first_value) = match of {
+        ObjectsOf::Watch => ("objects", "", None),
+        ObjectsOf::Analysis(id) => ("analysis_objects", "analysis_id, ", Some(id)),
+    };
+    let width = 21 + usize::from(first_value.is_some());
     for chunk in objects.chunks(OBJECTS_PER_INSERT) {
-        let row = "(?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)";
+        let row = format!("({})", vec!["?"; width].join(", "));
         let sql = format!(
-            "INSERT INTO objects (frame_id, result, label, area_px, area_um2, centroid_x, centroid_y,
+            "INSERT INTO {table} ({first}frame_id, result, label, area_px, area_um2, centroid_x, centroid_y,
                  bbox_x_min, bbox_y_min, bbox_x_max, bbox_y_max, mean_intensity, integrated_intensity,
                  max_intensity, perimeter_px, circularity, major_axis_px, minor_axis_px, eccentricity,
                  solidity, channels)
              VALUES {}",
-            vec![row; chunk.len()].join(", ")
+            vec![row.as_str(); chunk.len()].join(", ")
         );
-        let mut values: Vec<Value> = Vec::with_capacity(chunk.len() * 21);
+        let mut values: Vec<Value> = Vec::with_capacity(chunk.len() * width);
         for o in chunk {
             let channels = (!o.channels.is_empty())
                 .then(|| serde_json::to_string(&o.channels).unwrap_or_default());
+            values.extend(first_value.map(Value::Integer));
             values.extend([
                 Value::Integer(frame_id),
                 Value::Text(result.to_owned()),
