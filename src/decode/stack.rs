@@ -8,7 +8,12 @@
 //! elsewhere (the strip tables, a description). A writer that appends a page
 //! writes the page and points the previous directory's next-directory field
 //! at it, in either order: a pointer to bytes not yet written is a page not
-//! yet complete. A [`StackCursor`] remembers where the last complete page's
+//! yet complete. A writer may also point at the directory first, leave its
+//! bytes unwritten (zeros, or a hole) while it writes the pixel data after
+//! them, and fill the directory in last: so a directory is taken as written
+//! only when its tags ascend from a non-zero first one (as TIFF 6.0 requires)
+//! and it declares strips or tiles at non-zero offsets. A directory that never
+//! becomes valid holds its stack at that page. A [`StackCursor`] remembers where the last complete page's
 //! next-directory field is, so each look reads one field and the new pages'
 //! directories only: the cost of an appended page does not grow with the
 //! pages before it.
@@ -168,8 +173,15 @@ impl StackCursor {
         };
         let ifd_end = ifd + layout.count_len() as u64 + body_len;
         let mut tables: [Vec<u64>; 4] = Default::default();
+        let mut last_tag = 0u16;
         for entry in body[..entries_len as usize].chunks_exact(layout.entry_len()) {
             let (tag, kind, values, value) = layout.entry(entry);
+            if tag <= last_tag {
+                // Tags ascend (TIFF 6.0 section 2): zeros here are bytes a
+                // writer has reserved for the directory but not written yet.
+                return Ok(None);
+            }
+            last_tag = tag;
             let Some(size) = type_size(kind) else {
                 continue;
             };
@@ -214,6 +226,9 @@ impl StackCursor {
         } else {
             ("tile", tile_offsets, tile_counts)
         };
+        if offsets.is_empty() || offsets.iter().zip(counts).any(|(&o, &c)| o == 0 && c > 0) {
+            return Ok(None); // no pixel data declared yet
+        }
         let end = match check_streams_inside(path, what, offsets, counts, len) {
             Ok(()) => offsets
                 .iter()
@@ -264,4 +279,100 @@ fn read_at<R: Read + Seek>(
     let mut buf = vec![0u8; n];
     let got = read_up_to(reader, &mut buf).map_err(io(path))?;
     Ok((got == n).then_some(buf))
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    /// A classic little-endian directory of two entries, StripOffsets and
+    /// StripByteCounts (LONG, one value each), and its next-directory field
+    /// (TIFF 6.0 section 2): 2 + 2 × 12 + 4 = 30 bytes.
+    fn directory(strip_at: u32, strip_len: u32, next: u32) -> Vec<u8> {
+        let mut d = 2u16.to_le_bytes().to_vec();
+        for (tag, value) in [(273u16, strip_at), (279, strip_len)] {
+            d.extend(tag.to_le_bytes());
+            d.extend(4u16.to_le_bytes());
+            d.extend(1u32.to_le_bytes());
+            d.extend(value.to_le_bytes());
+        }
+        d.extend(next.to_le_bytes());
+        d
+    }
+
+    #[test]
+    fn pages_are_found_once_their_directory_and_strips_are_written() {
+        let dir = tempfile::tempdir().unwrap();
+        let path = dir.path().join("stack.tif");
+        // Header (8 bytes), page 0's directory at 8 (to 38), its 4-byte strip
+        // at 38 (to 42); page 1's directory at 42 (to 72), its 6-byte strip
+        // at 72 (to 78); page 0's next-directory field is bytes 34..38.
+        let mut file = b"II*\0".to_vec();
+        file.extend(8u32.to_le_bytes());
+        file.extend(directory(38, 4, 0));
+        file.extend([1, 2, 3, 4]);
+        let write = |bytes: &[u8]| std::fs::write(&path, bytes).unwrap();
+
+        write(&file[..41]);
+        let mut cursor = StackCursor::open(&path).unwrap().expect("a TIFF");
+        assert_eq!(
+            cursor.advance(&path, 10).unwrap(),
+            vec![],
+            "strip not all there"
+        );
+        write(&file);
+        assert_eq!(
+            cursor.advance(&path, 10).unwrap(),
+            vec![StackPage { index: 0, end: 42 }]
+        );
+        assert_eq!(cursor.advance(&path, 10).unwrap(), vec![], "nothing new");
+
+        // Page 1 as a writer that reserves its directory first leaves it: the
+        // pointer set, the directory's 30 bytes zeros, the strip after them.
+        file[34..38].copy_from_slice(&42u32.to_le_bytes());
+        file.extend([0; 30]);
+        file.extend([5, 6, 7, 8, 9, 10]);
+        write(&file);
+        assert_eq!(
+            cursor.advance(&path, 10).unwrap(),
+            vec![],
+            "a reserved directory is not a page"
+        );
+        file.truncate(42);
+        file[34..38].copy_from_slice(&0u32.to_le_bytes());
+        file.extend(directory(72, 6, 0));
+        file.extend([5, 6, 7, 8, 9, 10]);
+        write(&file);
+        assert_eq!(
+            cursor.advance(&path, 10).unwrap(),
+            vec![],
+            "page 1 written, but page 0 does not point at it yet"
+        );
+        file[34..38].copy_from_slice(&42u32.to_le_bytes());
+        write(&file[..75]);
+        assert_eq!(
+            cursor.advance(&path, 10).unwrap(),
+            vec![],
+            "strip cut short"
+        );
+        write(&file);
+        assert_eq!(
+            cursor.advance(&path, 10).unwrap(),
+            vec![StackPage { index: 1, end: 78 }],
+            "only the new page"
+        );
+        assert_eq!(cursor.pages(), 2);
+
+        // A new cursor reads both pages from the start; `max_pages` bounds it.
+        let mut fresh = StackCursor::open(&path).unwrap().unwrap();
+        assert_eq!(fresh.advance(&path, 1).unwrap().len(), 1);
+
+        write(&file[..40]);
+        assert!(matches!(
+            cursor.advance(&path, 10),
+            Err(DecodeError::Corrupt { .. })
+        ));
+        std::fs::write(&path, b"\x89PNG\r\n\x1a\n").unwrap();
+        assert_eq!(StackCursor::open(&path).unwrap(), None, "not a TIFF");
+    }
 }

@@ -1,5 +1,6 @@
 //! The SQLite store: one file, WAL mode, a versioned schema with migrations, and
-//! the identity of a frame (path + size + mtime).
+//! the identity of a frame (path + size + mtime, or path + page for a page of
+//! a growing stack).
 //!
 //! Writing belongs to the single writer thread in [`writer`]; reading for `status`
 //! lives in [`crate::status`] and for `export` in [`crate::export`], both through
