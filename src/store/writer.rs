@@ -1,8 +1,8 @@
 //! The single writer: one thread owns the write connection and records frames in
 //! batched IMMEDIATE transactions, fed by a bounded channel.
 //!
-//! Every write is idempotent on the frame identity (file + size + mtime; file
-//! + page for a stack's page, see [`FrameKey`]), so a
+//! Every write is idempotent on the frame identity (file, size and mtime; file
+//! and page for a stack's page, see [`FrameKey`]), so a
 //! crash and restart redoes at most the frames in flight and never duplicates a
 //! row.
 //!
