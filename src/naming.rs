@@ -45,6 +45,26 @@ impl NameParts {
             .collect();
         digits.parse().ok()
     }
+
+    /// The parts of page `page` of the stack at `path`, from the parts its
+    /// name gives: the time point is the page (a stack appends one page per
+    /// time point), and when the pattern names neither a well nor a site the
+    /// file's name without its extension is the site, so that each stack is a
+    /// position of its own.
+    ///
+    /// ```
+    /// use framewarden::naming::NameParts;
+    /// let parts = NameParts::default().of_page(std::path::Path::new("/acq/pos3.ome.tif"), 7);
+    /// assert_eq!(parts.site.as_deref(), Some("pos3.ome"));
+    /// assert_eq!(parts.time_point_index(), Some(7));
+    /// ```
+    pub fn of_page(mut self, path: &Path, page: usize) -> NameParts {
+        if self.well.is_none() && self.site.is_none() {
+            self.site = path.file_stem().map(|s| s.to_string_lossy().into_owned());
+        }
+        self.time_point = Some(page.to_string());
+        self
+    }
 }
 
 /// The file-name pattern: a regular expression with named groups; `well`,

@@ -104,7 +104,23 @@ impl FileError {
 /// # Errors
 /// [`FileError`] naming the file and the cause.
 pub fn analyze_file(path: &Path, params: &PipelineParams) -> Result<FileAnalysis, FileError> {
-    run(path, params, false).map(|(analysis, _)| analysis)
+    run(path, None, params, false).map(|(analysis, _)| analysis)
+}
+
+/// Decodes and analyzes page `page` of a stack (a multi-page file whose
+/// pages are frames, `[watch] stacks`) on its own: the configured page and
+/// measurement pages are not used. With `want_labels`, also the label image
+/// of the count used (as [`analyze_file_with_labels`]).
+///
+/// # Errors
+/// As [`analyze_file`].
+pub fn analyze_stack_page(
+    path: &Path,
+    page: usize,
+    params: &PipelineParams,
+    want_labels: bool,
+) -> Result<(FileAnalysis, Option<Vec<u32>>), FileError> {
+    run(path, Some(page), params, want_labels)
 }
 
 /// [`analyze_file`], and the label image of the result whose count is used
@@ -118,17 +134,23 @@ pub fn analyze_file_with_labels(
     path: &Path,
     params: &PipelineParams,
 ) -> Result<(FileAnalysis, Vec<u32>), FileError> {
-    run(path, params, true).map(|(analysis, labels)| (analysis, labels.unwrap_or_default()))
+    run(path, None, params, true).map(|(analysis, labels)| (analysis, labels.unwrap_or_default()))
 }
 
+/// Analyzes the configured pages of `path`, or only `stack_page` when given.
 fn run(
     path: &Path,
+    stack_page: Option<usize>,
     params: &PipelineParams,
     want_labels: bool,
 ) -> Result<(FileAnalysis, Option<Vec<u32>>), FileError> {
     let seg = &params.segment;
-    let pages: Vec<usize> = std::iter::once(seg.page)
-        .chain(seg.measure_pages.iter().copied())
+    let (first, measure_pages) = match stack_page {
+        Some(page) => (page, &[][..]),
+        None => (seg.page, &seg.measure_pages[..]),
+    };
+    let pages: Vec<usize> = std::iter::once(first)
+        .chain(measure_pages.iter().copied())
         .collect();
     let decoded = decode::read_pages(path, &pages, &params.limits)?;
     let calibration = &params.calibration;
@@ -138,8 +160,7 @@ fn run(
         CalibrationPreference::Config => configured,
         CalibrationPreference::File => decoded.pixel_size.or(configured),
     };
-    let extra: Vec<(usize, &Frame)> = seg
-        .measure_pages
+    let extra: Vec<(usize, &Frame)> = measure_pages
         .iter()
         .copied()
         .zip(decoded.frames.iter().skip(1))

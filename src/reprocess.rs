@@ -17,7 +17,7 @@ use std::path::{Path, PathBuf};
 use rusqlite::{params, params_from_iter, Connection, OptionalExtension};
 
 use crate::analyze::in_order;
-use crate::pipeline::{analyze_file, FileAnalysis};
+use crate::pipeline::{analyze_file, analyze_stack_page, FileAnalysis};
 use crate::qc::alerts::AlertState;
 use crate::qc::monitor::RunMonitor;
 use crate::settings::{ConfigError, Settings};
@@ -328,7 +328,7 @@ fn merge(into: &mut toml::Value, change: toml::Value) {
 /// acquisition order.
 fn recorded_frames(conn: &Connection, run_id: i64) -> rusqlite::Result<Vec<Recorded>> {
     conn.prepare(&format!(
-        "SELECT id, file, size_bytes, mtime_ns, {POSITION_SQL}, COALESCE(analyzed_at_ms, ready_at_ms)
+        "SELECT id, file, size_bytes, mtime_ns, {POSITION_SQL}, COALESCE(analyzed_at_ms, ready_at_ms), page
          FROM frames WHERE run_id = ?1 AND status IN ('done', 'failed') AND {COUNTED_SQL}
          ORDER BY {ACQUISITION_ORDER_SQL}"
     ))?
@@ -339,6 +339,7 @@ fn recorded_frames(conn: &Connection, run_id: i64) -> rusqlite::Result<Vec<Recor
                 path: r.get(1)?,
                 size_bytes: r.get::<_, i64>(2)? as u64,
                 mtime_ns: r.get(3)?,
+                page: r.get::<_, Option<i64>>(6)?.map(|p| p as usize),
             },
             position: r.get(4)?,
             at_ms: r.get(5)?,
@@ -382,9 +383,23 @@ fn begin_analysis(
 }
 
 /// One recorded frame analysed again, when its file is still the version
-/// that was recorded; otherwise why not.
+/// that was recorded (for a stack's page: the file still holds the page's
+/// bytes, since a stack only grows); otherwise why not.
 fn reread(key: &FrameKey, settings: &Settings) -> Result<FileAnalysis, String> {
     let path = Path::new(&key.path);
+    if let Some(page) = key.page {
+        let len = std::fs::metadata(path)
+            .map_err(|e| format!("cannot be read: {e}"))?
+            .len();
+        if len < key.size_bytes {
+            return Err(
+                "shorter than when its page was recorded: not the stack the run analysed".into(),
+            );
+        }
+        return analyze_stack_page(path, page, &settings.pipeline, false)
+            .map(|(analysis, _)| analysis)
+            .map_err(|e| e.to_string());
+    }
     let now = FrameKey::of(path).map_err(|e| format!("cannot be read: {e}"))?;
     if now != *key {
         return Err(

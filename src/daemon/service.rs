@@ -265,6 +265,7 @@ impl Service {
             health: Arc::clone(&health),
             progress: Arc::clone(&progress),
             repeats: Repeats::default(),
+            max_pages: settings.pipeline.limits.max_pages,
         };
         let scheduler = spawn("scheduler", move || sched.run())?;
         let run_id = writer.run_id;
@@ -421,7 +422,7 @@ fn write_report(db: &Path, run_id: i64, path: &Path) {
 fn release_stale(stale: &[FrameKey], store_tx: &Sender<StoreOp>) {
     for key in stale {
         let op = match FrameKey::of(std::path::Path::new(&key.path)) {
-            Ok(now) if now == *key => continue,
+            Ok(now) if key.still_matches(&now) => continue,
             Ok(_) => StoreOp::Withdrawn { key: key.clone() },
             Err(_) => StoreOp::Failed {
                 key: key.clone(),

@@ -12,7 +12,8 @@ use crossbeam_channel::{Receiver, Sender};
 
 use crate::encode::LabelRuns;
 use crate::pipeline::{
-    analyze_file, analyze_file_with_labels, FileAnalysis, FileError, PipelineParams,
+    analyze_file, analyze_file_with_labels, analyze_stack_page, FileAnalysis, FileError,
+    PipelineParams,
 };
 use crate::store::writer::StoreOp;
 use crate::store::FrameKey;
@@ -20,10 +21,12 @@ use crate::text::{shown, shown_path, Repeats};
 use crate::watch::scheduler::SchedMsg;
 use crate::watch::{Job, Progress};
 
-/// A file that a worker read short (or saw change) and that should be looked at again.
+/// A file that a worker read short (or saw change) and that should be looked at
+/// again. A stack's page is not: it was judged complete by its own bytes, so a
+/// short read of it is a fault of the file, recorded at once.
 fn retry_or_fail(job: &Job, limit: u32, reason: String) -> Next {
     let attempts = job.attempts + 1;
-    if attempts <= limit {
+    if attempts <= limit && job.key.page.is_none() {
         Next::Retry(SchedMsg::Retry {
             path: job.path.clone(),
             previous: job.key.clone(),
@@ -67,8 +70,8 @@ impl Worker {
                 break;
             }
             self.mark_in_hand(&job.key);
-            let outcome = catch_unwind(AssertUnwindSafe(|| self.analyze(&job.path)));
-            let unchanged = FrameKey::of(&job.path).is_ok_and(|k| k == job.key);
+            let outcome = catch_unwind(AssertUnwindSafe(|| self.analyze(&job.path, job.key.page)));
+            let unchanged = FrameKey::of(&job.path).is_ok_and(|k| job.key.still_matches(&k));
             let limit = self.retry_limit;
             let next = match outcome {
                 Ok(Ok(_)) | Ok(Err(_)) if !unchanged => {
@@ -136,14 +139,25 @@ impl Worker {
         }
     }
 
-    /// The file's analysis and, when label images are on, the label image of
-    /// its count used (the recount's where there is one) as runs (encoded later, only if kept). Labels that do not
-    /// fit the frame are logged and left out; the frame is still recorded.
-    fn analyze(&self, path: &Path) -> Result<(FileAnalysis, Option<LabelRuns>), FileError> {
-        if !self.label_images {
-            return analyze_file(path, &self.pipeline).map(|a| (a, None));
-        }
-        let (analysis, labels) = analyze_file_with_labels(path, &self.pipeline)?;
+    /// The file's (or the stack page's) analysis and, when label images are
+    /// on, the label image of its count used (the recount's where there is
+    /// one) as runs (encoded later, only if kept). Labels that do not fit the frame are logged and left out; the
+    /// frame is still recorded.
+    fn analyze(
+        &self,
+        path: &Path,
+        page: Option<usize>,
+    ) -> Result<(FileAnalysis, Option<LabelRuns>), FileError> {
+        let (analysis, labels) = match page {
+            Some(page) => analyze_stack_page(path, page, &self.pipeline, self.label_images)?,
+            None if !self.label_images => {
+                return analyze_file(path, &self.pipeline).map(|a| (a, None))
+            }
+            None => analyze_file_with_labels(path, &self.pipeline).map(|(a, l)| (a, Some(l)))?,
+        };
+        let Some(labels) = labels else {
+            return Ok((analysis, None));
+        };
         let r = &analysis.result;
         let image = LabelRuns::new(r.width, r.height, &labels)
             .map_err(|e| {

@@ -17,14 +17,19 @@
 //!   conversions;
 //! - `png.rs`: PNG files through `image`;
 //! - `tiled_lzw.rs`: our own reader for tiled LZW pages (used by `tiff.rs`);
+//! - `stack.rs`: [`StackCursor`], the complete pages of a multi-page file
+//!   still being written, read on from the last one found;
 //! - `metadata.rs`: [`PixelSizeSource`] and the pixel size from OME-XML or the
 //!   resolution tags;
+//! - `layout.rs`: byte order and field widths of TIFF and BigTIFF;
 //! - `limits.rs`: [`DecodeLimits`], [`DecodeError`] and the size checks made
 //!   before allocating.
 
+mod layout;
 mod limits;
 mod metadata;
 mod png;
+mod stack;
 mod tiff;
 mod tiled_lzw;
 
@@ -36,6 +41,7 @@ use self::limits::read_up_to;
 pub use self::limits::{DecodeError, DecodeLimits};
 pub use self::metadata::PixelSizeSource;
 use self::png::read_png;
+pub use self::stack::{StackCursor, StackPage};
 use self::tiff::read_tiff;
 use crate::frame::Frame;
 

@@ -16,6 +16,7 @@ use tiff::decoder::{Decoder, DecodingResult};
 use tiff::tags::Tag;
 use tiff::ColorType;
 
+use super::layout::{type_size, Layout};
 use super::limits::{
     check_page, check_size, check_streams_inside, read_up_to, tiff_error, DecodeError, DecodeLimits,
 };
@@ -107,41 +108,15 @@ fn check_first_directory<R: Read + Seek>(
         path: path.into(),
         source,
     })?;
-    let little = head[0] == b'I';
-    let u16_at = |b: &[u8]| {
-        let a = [b[0], b[1]];
-        u64::from(if little {
-            u16::from_le_bytes(a)
-        } else {
-            u16::from_be_bytes(a)
-        })
+    let Some(layout) = Layout::of(&head[..n]) else {
+        return Ok(()); // the crate reports what is wrong with the header
     };
-    let u32_at = |b: &[u8]| {
-        let a = [b[0], b[1], b[2], b[3]];
-        u64::from(if little {
-            u32::from_le_bytes(a)
-        } else {
-            u32::from_be_bytes(a)
-        })
-    };
-    let u64_at = |b: &[u8]| {
-        let a: [u8; 8] = b[..8].try_into().unwrap_or_default();
-        if little {
-            u64::from_le_bytes(a)
-        } else {
-            u64::from_be_bytes(a)
-        }
-    };
-    let big = u16_at(&head[2..4]) == 43;
     // Too short to hold a header: the crate reports it (truncated).
-    if n < if big { 16 } else { 8 } {
+    if n < layout.header_len() {
         return Ok(());
     }
-    let (offset, count_len, entry_len) = if big {
-        (u64_at(&head[8..16]), 8usize, 20usize)
-    } else {
-        (u32_at(&head[4..8]), 2, 12)
-    };
+    let offset = layout.uint(&head[layout.header_len() - layout.offset_len()..layout.header_len()]);
+    let (count_len, entry_len) = (layout.count_len(), layout.entry_len());
     let io = |source| DecodeError::Open {
         path: path.into(),
         source,
@@ -151,29 +126,19 @@ fn check_first_directory<R: Read + Seek>(
     if read_up_to(reader, &mut count[..count_len]).map_err(io)? < count_len {
         return Ok(()); // the crate reports the directory as truncated
     }
-    let entries = if big { u64_at(&count) } else { u16_at(&count) };
+    let entries = layout.uint(&count[..count_len]);
     let mut entry = [0u8; 20];
     for i in 0..entries.min(len / entry_len as u64) {
         if read_up_to(reader, &mut entry[..entry_len]).map_err(io)? < entry_len {
             break;
         }
-        let kind = u16_at(&entry[2..4]);
-        let values = if big {
-            u64_at(&entry[4..12])
-        } else {
-            u32_at(&entry[4..8])
-        };
-        let size: u64 = match kind {
-            1 | 2 | 6 | 7 => 1,
-            3 | 8 => 2,
-            4 | 9 | 11 | 13 => 4,
-            5 | 10 | 12 | 16..=18 => 8,
-            _ => continue, // unknown types are skipped by the crate
+        let (tag, kind, values, _) = layout.entry(&entry[..entry_len]);
+        let Some(size) = type_size(kind) else {
+            continue; // unknown types are skipped by the crate
         };
         if values.saturating_mul(size) > len {
             return Err(corrupt(format!(
-                "directory entry {i} (tag {}) declares {values} values, more than the file's {len} bytes hold",
-                u16_at(&entry[0..2])
+                "directory entry {i} (tag {tag}) declares {values} values, more than the file's {len} bytes hold"
             )));
         }
     }

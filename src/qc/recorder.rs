@@ -600,6 +600,7 @@ mod tests {
                 path: format!("/acq/f{i}.tif"),
                 size_bytes: 10,
                 mtime_ns: i,
+                page: None,
             })
             .collect();
         for k in &keys {

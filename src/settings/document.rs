@@ -245,6 +245,7 @@ pub struct WatchSection {
     pub shutdown_timeout_s: u64,
     pub new_run_after_idle_min: u64,
     pub name_pattern: String,
+    pub stacks: bool,
 }
 
 impl From<&WatchSettings> for WatchSection {
@@ -269,6 +270,7 @@ impl From<&WatchSettings> for WatchSection {
             shutdown_timeout_s: w.shutdown_timeout.as_secs(),
             new_run_after_idle_min: w.new_run_after_idle.as_secs() / 60,
             name_pattern: w.name_pattern.as_str().into(),
+            stacks: w.stacks,
         }
     }
 }

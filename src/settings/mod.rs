@@ -523,6 +523,7 @@ retry_backoff_ms = 250
 shutdown_timeout_s = 20
 new_run_after_idle_min = 45
 name_pattern = '^(?P<well>[A-P]\d{2})_t(?P<time_point>\d+)_(?P<channel>[^.]+)\.tif$'
+stacks = true
 [store]
 database = "results/night.db"
 batch_max = 100

@@ -341,6 +341,7 @@ pub fn watch(w: WatchSection, base: &Path) -> Result<WatchSettings, ValueError> 
             )? * 60,
         ),
         name_pattern,
+        stacks: w.stacks,
     })
 }
 

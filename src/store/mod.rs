@@ -1,5 +1,6 @@
 //! The SQLite store: one file, WAL mode, a versioned schema with migrations, and
-//! the identity of a frame (path + size + mtime).
+//! the identity of a frame (path + size + mtime, or path + page for a page of
+//! a growing stack).
 //!
 //! Writing belongs to the single writer thread in [`writer`]; reading for `status`
 //! lives in [`crate::status`] and for `export` in [`crate::export`], both through
@@ -222,14 +223,23 @@ impl StoreError {
 
 /// The identity of one version of one file: a rewrite changes size or mtime and
 /// so makes a new frame; an unchanged file keeps its identity.
+///
+/// A page of a stack (`[watch] stacks`) is identified by its file and page:
+/// its `size_bytes` is the end of the bytes the page needs
+/// ([`crate::decode::StackPage::end`]) and its `mtime_ns` is 0, both fixed
+/// once the page is written, so the file growing leaves its pages' identities
+/// alone and [`FRAME_KEY_SQL`] finds a page like any other frame.
 #[derive(Debug, Clone, PartialEq, Eq, Hash)]
 pub struct FrameKey {
     /// The path as text (lossy for non-UTF-8 names).
     pub path: String,
-    /// File size in bytes.
+    /// File size in bytes (for a stack's page, the end of its bytes).
     pub size_bytes: u64,
-    /// Modification time in nanoseconds since the Unix epoch.
+    /// Modification time in nanoseconds since the Unix epoch (0 for a
+    /// stack's page).
     pub mtime_ns: i64,
+    /// The page of a stack, from 0; `None` for a whole file.
+    pub page: Option<usize>,
 }
 
 impl FrameKey {
@@ -252,6 +262,27 @@ impl FrameKey {
             path: path.to_string_lossy().into_owned(),
             size_bytes: meta.len(),
             mtime_ns,
+            page: None,
+        }
+    }
+
+    /// The identity of page `page` of the stack at `path`.
+    pub fn of_page(path: &Path, page: &crate::decode::StackPage) -> FrameKey {
+        FrameKey {
+            path: path.to_string_lossy().into_owned(),
+            size_bytes: page.end,
+            mtime_ns: 0,
+            page: Some(page.index),
+        }
+    }
+
+    /// Whether this version is still on disk, given the file's identity now
+    /// (from [`FrameKey::of`]): a whole file unchanged; a stack's page still
+    /// inside the file (a stack grows, its pages stay).
+    pub fn still_matches(&self, now: &FrameKey) -> bool {
+        match self.page {
+            None => self == now,
+            Some(_) => now.path == self.path && now.size_bytes >= self.size_bytes,
         }
     }
 
@@ -680,15 +711,9 @@ pub fn settle_interrupted(conn: &mut Connection) -> rusqlite::Result<Vec<FrameKe
                      latency_ms = MAX(0, ?1 - ready_at_ms),
                      error = 'the analysis was interrupted ' || interruptions || ' times (the service stopped uncleanly while this file was being analyzed: a crash, a kill, or a hang ended by the watchdog); recorded as failed so the run goes on; check the file with framewarden analyze'
                  WHERE status = 'queued' AND in_hand = 1 AND interruptions >= ?2
-                 RETURNING file, size_bytes, mtime_ns",
+                 RETURNING file, size_bytes, mtime_ns, page",
             )?
-            .query_map(params![now_ms(), MAX_INTERRUPTIONS], |r| {
-                Ok(FrameKey {
-                    path: r.get(0)?,
-                    size_bytes: r.get::<_, i64>(1)? as u64,
-                    mtime_ns: r.get(2)?,
-                })
-            })?
+            .query_map(params![now_ms(), MAX_INTERRUPTIONS], frame_key)?
             .collect::<rusqlite::Result<Vec<_>>>()?;
     }
     tx.execute("UPDATE frames SET in_hand = 0 WHERE in_hand = 1", [])?;
@@ -702,16 +727,20 @@ pub fn settle_interrupted(conn: &mut Connection) -> rusqlite::Result<Vec<FrameKe
 /// SQLite errors.
 pub fn queued_frames(conn: &Connection) -> rusqlite::Result<Vec<FrameKey>> {
     let mut stmt = conn.prepare(
-        "SELECT file, size_bytes, mtime_ns FROM frames WHERE status = 'queued' ORDER BY id",
+        "SELECT file, size_bytes, mtime_ns, page FROM frames WHERE status = 'queued' ORDER BY id",
     )?;
-    let rows = stmt.query_map([], |r| {
-        Ok(FrameKey {
-            path: r.get(0)?,
-            size_bytes: r.get::<_, i64>(1)? as u64,
-            mtime_ns: r.get(2)?,
-        })
-    })?;
+    let rows = stmt.query_map([], frame_key)?;
     rows.collect()
+}
+
+/// The [`FrameKey`] of a row selected as `file, size_bytes, mtime_ns, page`.
+fn frame_key(r: &rusqlite::Row<'_>) -> rusqlite::Result<FrameKey> {
+    Ok(FrameKey {
+        path: r.get(0)?,
+        size_bytes: r.get::<_, i64>(1)? as u64,
+        mtime_ns: r.get(2)?,
+        page: r.get::<_, Option<i64>>(3)?.map(|p| p as usize),
+    })
 }
 
 #[cfg(test)]

@@ -1,4 +1,4 @@
--- framewarden schema, version 8. Each helper's part sits under its own header.
+-- framewarden schema, version 8: analyses (reprocessing) and stack pages.
 
 -- reprocess
 -- An analysis is one set of results of a run's frames: the watch service's
@@ -94,3 +94,10 @@ CREATE TABLE analysis_flags (
     message     TEXT    NOT NULL
 );
 CREATE INDEX analysis_flags_by_frame ON analysis_flags (analysis_id, frame_id);
+
+-- stacks
+-- The page of a multi-page file read as a stack (`[watch] stacks`), from 0:
+-- each page is its own frame, identified by file and page (its size_bytes is
+-- the end of the page's bytes, its mtime_ns 0: both fixed once the page is
+-- written). NULL for a whole file.
+ALTER TABLE frames ADD COLUMN page INTEGER;

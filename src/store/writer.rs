@@ -1,7 +1,8 @@
 //! The single writer: one thread owns the write connection and records frames in
 //! batched IMMEDIATE transactions, fed by a bounded channel.
 //!
-//! Every write is idempotent on the frame identity (file + size + mtime), so a
+//! Every write is idempotent on the frame identity (file, size and mtime; file
+//! and page for a stack's page, see [`FrameKey`]), so a
 //! crash and restart redoes at most the frames in flight and never duplicates a
 //! row.
 //!
@@ -838,13 +839,15 @@ fn insert_queued(
         (!names.all.is_empty()).then(|| serde_json::to_string(&names.all).unwrap_or_default());
     // DO NOTHING on a known identity: re-queueing after a restart, or a second
     // sighting of the same version, leaves the existing row alone. A new
-    // version of a file keeps the acquisition time of the run's first one.
+    // version of a file (of a stack's page) keeps the acquisition time of the
+    // run's first one.
     tx.prepare_cached(
         "INSERT INTO frames (run_id, file, size_bytes, mtime_ns, version, status, detected_at_ms, ready_at_ms,
-                             well, site, time_point, channel, name_parts, time_point_index, acquired_ns)
-         VALUES (?1, ?2, ?3, ?4, (SELECT COALESCE(MAX(version), 0) + 1 FROM frames WHERE file = ?2),
+                             well, site, time_point, channel, name_parts, time_point_index, acquired_ns, page)
+         VALUES (?1, ?2, ?3, ?4, (SELECT COALESCE(MAX(version), 0) + 1 FROM frames WHERE file = ?2 AND page IS ?13),
                  'queued', ?5, ?6, ?7, ?8, ?9, ?10, ?11, ?12,
-                 COALESCE((SELECT MIN(acquired_ns) FROM frames WHERE file = ?2 AND run_id = ?1), ?4))
+                 COALESCE((SELECT MIN(acquired_ns) FROM frames WHERE file = ?2 AND page IS ?13 AND run_id = ?1), ?4),
+                 ?13)
          ON CONFLICT (file, size_bytes, mtime_ns) DO NOTHING",
     )?
     .execute(params![
@@ -860,6 +863,7 @@ fn insert_queued(
         names.channel,
         name_parts,
         names.time_point_index(),
+        key.page.map(|p| p as i64),
     ])?;
     Ok(())
 }
@@ -993,7 +997,8 @@ struct Position {
 }
 
 /// Finds the version of frame `frame_id` already counted in the run (the same
-/// file, or the same position and time point when the pattern names one) and
+/// file (and page, for a stack's page), or the same position and time point
+/// when the pattern names one) and
 /// marks whichever row no longer counts: this one when its pixels are the
 /// same, the earlier one when they differ.
 fn compare_with_earlier(
@@ -1008,7 +1013,7 @@ fn compare_with_earlier(
     let earlier: Option<(i64, Option<i64>, String)> = tx
         .prepare_cached(&format!(
             "SELECT id, pixel_hash, status FROM frames
-             WHERE id IN (SELECT id FROM frames WHERE file = ?3
+             WHERE id IN (SELECT id FROM frames WHERE file = ?3 AND page IS ?8
                           UNION ALL
                           SELECT id FROM frames WHERE ?4 IS NOT NULL AND well IS ?5 AND time_point = ?4
                                                   AND site IS ?6 AND channel IS ?7)
@@ -1016,7 +1021,16 @@ fn compare_with_earlier(
              ORDER BY id DESC LIMIT 1"
         ))?
         .query_row(
-            params![run_id, frame_id, key.path, at.time_point, at.well, at.site, at.channel],
+            params![
+                run_id,
+                frame_id,
+                key.path,
+                at.time_point,
+                at.well,
+                at.site,
+                at.channel,
+                key.page.map(|p| p as i64)
+            ],
             |r| Ok((r.get(0)?, r.get(1)?, r.get(2)?)),
         )
         .optional()?;
@@ -1146,6 +1160,7 @@ mod tests {
             path: path.into(),
             size_bytes: size,
             mtime_ns: 7,
+            page: None,
         }
     }
 

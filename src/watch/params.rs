@@ -124,6 +124,10 @@ pub struct WatchSettings {
     pub new_run_after_idle: Duration,
     /// Picks well, site, time point and channel out of file names.
     pub name_pattern: NamePattern,
+    /// Each page of a multi-page TIFF is a frame of its own (a stack with a
+    /// page per time point), analyzed as soon as it is written, rather than
+    /// one frame whose pages are channels.
+    pub stacks: bool,
 }
 
 /// One analysis thread per core (at least one): the worker count when none
@@ -156,6 +160,7 @@ impl Default for WatchSettings {
             shutdown_timeout: Duration::from_secs(10),
             new_run_after_idle: Duration::from_secs(120 * 60),
             name_pattern: NamePattern::default(),
+            stacks: false,
         }
     }
 }

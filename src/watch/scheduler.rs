@@ -6,13 +6,18 @@
 //! two looks and the settle time. Decoding in full (the last part of the rule) is
 //! the worker's; a short read comes back here as [`SchedMsg::Retry`].
 //!
+//! With `[watch] stacks`, a TIFF file is a stack: each look reads on from
+//! the last complete page ([`StackCursor`]) and queues every page completed
+//! since, each as its own frame (file + page), with no settle time: a page is
+//! complete by its own bytes, not by the file standing still.
+//!
 //! Files that are due together (a catch-up scan, a burst, the rest of a full
 //! queue) are looked at and queued in acquisition order: by the time point the
 //! file-name pattern names, then by modification time, then by name. A scan
 //! hands over everything it found at once, so that a whole backlog is due
 //! together.
 
-use std::collections::HashMap;
+use std::collections::{HashMap, HashSet, VecDeque};
 use std::path::{Path, PathBuf};
 use std::sync::atomic::{AtomicBool, Ordering};
 use std::sync::Arc;
@@ -22,10 +27,12 @@ use crossbeam_channel::{Receiver, RecvTimeoutError, Sender};
 use notify::event::{CreateKind, EventKind, ModifyKind};
 use rusqlite::Connection;
 
+use crate::decode::{StackCursor, StackPage};
+use crate::naming::NameParts;
 use crate::store::health::DatabaseHealth;
 use crate::store::writer::StoreOp;
 use crate::store::{lookup, now_ms, FrameKey, FrameStatus};
-use crate::text::{shown_path, Repeats};
+use crate::text::{shown, shown_path, Repeats};
 use crate::watch::params::WatchSettings;
 use crate::watch::queue::{Job, Progress};
 
@@ -81,6 +88,15 @@ impl Candidate {
     }
 }
 
+/// A stack being read as it grows.
+#[derive(Debug)]
+struct Stack {
+    /// Where the last look stopped.
+    cursor: StackCursor,
+    /// Pages found complete but not handed over yet (the queue was full).
+    waiting: VecDeque<StackPage>,
+}
+
 /// Shortest pause between two looks at the same file.
 const MIN_LOOK_GAP: Duration = Duration::from_millis(25);
 
@@ -104,13 +120,16 @@ pub struct Scheduler {
     pub progress: Arc<Progress>,
     /// The scheduler's repeated warnings, limited.
     pub repeats: Repeats,
+    /// Most pages read of one stack (`[limits] max_pages`).
+    pub max_pages: usize,
 }
 
 impl Scheduler {
     /// The scheduler loop; returns on [`SchedMsg::Stop`] or when every sender is gone.
     pub fn run(self) {
         let mut pending: HashMap<PathBuf, Candidate> = HashMap::new();
-        let mut in_flight: HashMap<PathBuf, FrameKey> = HashMap::new();
+        let mut in_flight: HashSet<FrameKey> = HashSet::new();
+        let mut stacks: HashMap<PathBuf, Stack> = HashMap::new();
         let mut next_rescan = Instant::now() + self.watch.rescan_interval;
         loop {
             let now = Instant::now();
@@ -146,9 +165,7 @@ impl Scheduler {
                     attempts,
                     detected_at_ms,
                 }) => {
-                    if in_flight.get(&path) == Some(&previous) {
-                        in_flight.remove(&path);
-                    }
+                    in_flight.remove(&previous);
                     let backoff = self.watch.retry_backoff
                         * 2u32.saturating_pow(attempts.saturating_sub(1).min(10));
                     let now = Instant::now();
@@ -169,10 +186,7 @@ impl Scheduler {
                 }
                 Ok(SchedMsg::Committed(keys)) => {
                     for key in keys {
-                        let path = PathBuf::from(&key.path);
-                        if in_flight.get(&path) == Some(&key) {
-                            in_flight.remove(&path);
-                        }
+                        in_flight.remove(&key);
                     }
                 }
                 Err(RecvTimeoutError::Timeout) => {}
@@ -194,7 +208,14 @@ impl Scheduler {
             due.sort_unstable();
             for (_, _, path) in due {
                 if let Some(mut c) = pending.remove(&path) {
-                    if self.look(&path, &mut c, &mut in_flight, now) == Look::Again {
+                    let look = if self.watch.stacks {
+                        self.look_stack(&path, &mut c, &mut in_flight, &mut stacks, now)
+                    } else {
+                        None
+                    };
+                    let look =
+                        look.unwrap_or_else(|| self.look(&path, &mut c, &mut in_flight, now));
+                    if look == Look::Again {
                         pending.insert(path, c);
                     }
                 }
@@ -237,12 +258,86 @@ impl Scheduler {
         }
     }
 
+    /// One look at a pending file that may be a stack: queues the pages
+    /// completed since the last look. `None` when it is not a TIFF file (or
+    /// is gone): the whole-file rule applies.
+    fn look_stack(
+        &self,
+        path: &Path,
+        c: &mut Candidate,
+        in_flight: &mut HashSet<FrameKey>,
+        stacks: &mut HashMap<PathBuf, Stack>,
+        now: Instant,
+    ) -> Option<Look> {
+        let stack = match stacks.entry(path.to_path_buf()) {
+            std::collections::hash_map::Entry::Occupied(e) => e.into_mut(),
+            std::collections::hash_map::Entry::Vacant(e) => match StackCursor::open(path) {
+                Ok(Some(cursor)) => e.insert(Stack {
+                    cursor,
+                    waiting: VecDeque::new(),
+                }),
+                Ok(None) => return None,
+                Err(err) if err.is_incomplete() => {
+                    c.due = now + self.watch.settle.max(MIN_LOOK_GAP);
+                    return Some(Look::Again);
+                }
+                Err(_) if !path.exists() => return None,
+                Err(err) => return Some(self.unreadable(path, c, &err.to_string(), now)),
+            },
+        };
+        match stack.cursor.advance(path, self.max_pages) {
+            Ok(pages) => stack.waiting.extend(pages),
+            Err(err) => {
+                // Rewritten, damaged or gone: forget where it was; the next
+                // look (an event, a rescan) reads it from its first page.
+                tracing::warn!(
+                    "{}; the stack will be read again from its first page",
+                    shown(&err.to_string())
+                );
+                stacks.remove(path);
+                return Some(Look::Drop);
+            }
+        }
+        while let Some(page) = stack.waiting.front() {
+            let key = FrameKey::of_page(path, page);
+            if in_flight.contains(&key) {
+                stack.waiting.pop_front();
+                continue;
+            }
+            let recorded = match lookup(&self.reader, &key) {
+                Ok(status) => status,
+                Err(e) => {
+                    tracing::warn!(
+                        "store look-up for {} failed ({e}); trying again",
+                        shown_path(path)
+                    );
+                    c.due = now + Duration::from_millis(500);
+                    return Some(Look::Again);
+                }
+            };
+            if !matches!(recorded, Some(FrameStatus::Done | FrameStatus::Failed)) {
+                if self.work_tx.is_full() {
+                    c.due = now + MIN_LOOK_GAP;
+                    return Some(Look::Again);
+                }
+                let names = self
+                    .watch
+                    .name_pattern
+                    .parts(path)
+                    .of_page(path, page.index);
+                self.enqueue(path, key, names, recorded.is_none(), c, in_flight);
+            }
+            stack.waiting.pop_front();
+        }
+        Some(Look::Drop)
+    }
+
     /// One look at a pending file; `Again` keeps it pending.
     fn look(
         &self,
         path: &Path,
         c: &mut Candidate,
-        in_flight: &mut HashMap<PathBuf, FrameKey>,
+        in_flight: &mut HashSet<FrameKey>,
         now: Instant,
     ) -> Look {
         let meta = match std::fs::metadata(path) {
@@ -278,7 +373,7 @@ impl Scheduler {
             return Look::Again;
         }
         // Complete by size and mtime: is this exact version already handled?
-        if in_flight.get(path) == Some(&key) {
+        if in_flight.contains(&key) {
             return Look::Drop;
         }
         let recorded = match lookup(&self.reader, &key) {
@@ -311,17 +406,33 @@ impl Scheduler {
             c.due = now + MIN_LOOK_GAP;
             return Look::Again;
         }
+        let names = self.watch.name_pattern.parts(path);
+        self.enqueue(path, key, names, recorded.is_none(), c, in_flight);
+        Look::Drop
+    }
+
+    /// Hands a complete frame to the workers (the queue has room), after
+    /// its `queued` row when it has none yet (`unrecorded`).
+    fn enqueue(
+        &self,
+        path: &Path,
+        key: FrameKey,
+        names: NameParts,
+        unrecorded: bool,
+        c: &Candidate,
+        in_flight: &mut HashSet<FrameKey>,
+    ) {
         // Outstanding from here on: the store send below blocks while the
         // writer is stuck and its queue full, and the watchdog must then see
         // work waiting rather than an idle pipeline.
         self.progress.enqueued.fetch_add(1, Ordering::Relaxed);
-        if recorded.is_none() {
+        if unrecorded {
             // Ordered before the job itself, so the row exists when its result arrives.
             self.send_store(StoreOp::Queued {
                 key: key.clone(),
                 detected_at_ms: c.detected_at_ms,
                 ready_at_ms: now_ms(),
-                names: self.watch.name_pattern.parts(path),
+                names,
             });
         }
         let job = Job {
@@ -333,11 +444,10 @@ impl Scheduler {
         // Only this thread sends, so a queue that was not full has room; it
         // fails only once the workers are gone (shutdown).
         if self.work_tx.try_send(job).is_ok() {
-            in_flight.insert(path.to_path_buf(), key);
+            in_flight.insert(key);
         } else {
             self.progress.enqueued.fetch_sub(1, Ordering::Relaxed);
         }
-        Look::Drop
     }
 
     /// A file that exists but cannot be inspected: keep trying with backoff, and
@@ -352,6 +462,7 @@ impl Scheduler {
             path: path.to_string_lossy().into_owned(),
             size_bytes: 0,
             mtime_ns: 0,
+            page: None,
         };
         let at = now_ms();
         self.send_store(StoreOp::Queued {
