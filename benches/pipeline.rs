@@ -425,7 +425,7 @@ fn main() {
                     "  <- count differs from truth"
                 };
                 println!(
-                    "    {name:13} {:5} {:6} {:9.1} {:.2e} {:12.1} {:.4}{flag}",
+                    "    {name:13} {:5} {:6} {:9.1} {:.2e} {:12.4e} {:.4}{flag}",
                     s.object_count,
                     s.threshold,
                     s.background_level,
