@@ -735,6 +735,20 @@ mod tests {
         }
     }
 
+    /// Two 7 x 7 squares (columns 1-7 and 12-18, rows 1-7) joined on row 4
+    /// by a bar of 4 pixels (columns 8-11).
+    const DUMBBELL: [&str; 9] = [
+        ".....................",
+        ".#######....#######..",
+        ".#######....#######..",
+        ".#######....#######..",
+        ".##################..",
+        ".#######....#######..",
+        ".#######....#######..",
+        ".#######....#######..",
+        ".....................",
+    ];
+
     #[test]
     fn a_dumbbell_splits_at_its_bar() {
         // Two 7 x 7 squares (columns 1-7 and 12-18, rows 1-7) joined on row 4
@@ -745,17 +759,7 @@ mod tests {
         // 2 ((8,3) is background) and pop before any pixel at 1, queueing
         // (8,4) left and (11,4) right; at level 1 those pop in that order
         // before (9,4) and (10,4), which they queue: 2 bar pixels each.
-        let rows = [
-            ".....................",
-            ".#######....#######..",
-            ".#######....#######..",
-            ".#######....#######..",
-            ".##################..",
-            ".#######....#######..",
-            ".#######....#######..",
-            ".#######....#######..",
-            ".....................",
-        ];
+        let rows = DUMBBELL;
         for conn in [Connectivity::Four, Connectivity::Eight] {
             let c = split_rows(&rows, conn, true, 2.0);
             assert_eq!((c.count, areas(&c)), (2, vec![51, 51]), "{conn:?}");
@@ -770,18 +774,7 @@ mod tests {
         // (dynamic 3). At a separation of 11 it still splits; at 11.5 the
         // right square's maximum is too near the left one's and joins it.
         // TWO_SQUARES: centres (3,3) and (10,3), 7 px apart (dynamic 2).
-        let dumbbell = [
-            ".....................",
-            ".#######....#######..",
-            ".#######....#######..",
-            ".#######....#######..",
-            ".##################..",
-            ".#######....#######..",
-            ".#######....#######..",
-            ".#######....#######..",
-            ".....................",
-        ];
-        for (rows, apart) in [(&dumbbell[..], 11.0), (&TWO_SQUARES[..], 7.0)] {
+        for (rows, apart) in [(&DUMBBELL[..], 11.0), (&TWO_SQUARES[..], 7.0)] {
             for conn in [Connectivity::Four, Connectivity::Eight] {
                 let (px, w, h) = image(rows);
                 let at = |sep: f64| split(label(&px, w, h, 0, conn, true), w, h, conn, 2.0, sep);
