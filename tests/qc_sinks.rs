@@ -367,6 +367,57 @@ fn a_hanging_command_is_killed_at_its_timeout() {
     assert!(!marker.exists());
 }
 
+/// Whether process `pid` still runs (a zombie waiting for its parent to
+/// collect it runs no more), read from procfs.
+#[cfg(target_os = "linux")]
+fn process_runs(pid: u32) -> bool {
+    match std::fs::read_to_string(format!("/proc/{pid}/stat")) {
+        // The state follows the command name in parentheses.
+        Ok(stat) => stat
+            .rsplit_once(") ")
+            .is_some_and(|(_, rest)| !rest.starts_with('Z')),
+        Err(_) => false,
+    }
+}
+
+#[cfg(target_os = "linux")]
+#[test]
+fn a_hanging_command_is_killed_at_its_timeout_with_its_children() {
+    // The command starts two children of its own (a background job and a
+    // pipeline) and waits; at the timeout the whole group ends, not just the
+    // shell (procfs says which processes still run).
+    let dir = tempfile::tempdir().unwrap();
+    let pids = dir.path().join("pids");
+    let d = AlertDispatcher::start(&AlertSettings {
+        command: Some(CommandSink {
+            program: "/bin/sh".into(),
+            args: vec![
+                "-c".into(),
+                "sleep 60 & echo $! >> \"$0\"; sleep 61 | cat & echo $! >> \"$0\"; wait".into(),
+                pids.to_string_lossy().into_owned(),
+            ],
+            timeout: Duration::from_secs(1),
+        }),
+        ..AlertSettings::default()
+    })
+    .unwrap();
+    d.send(&event("a.tif"));
+    d.close();
+    let children: Vec<u32> = std::fs::read_to_string(&pids)
+        .unwrap()
+        .lines()
+        .map(|l| l.parse().unwrap())
+        .collect();
+    assert_eq!(children.len(), 2);
+    // A killed process leaves the table as soon as it is collected; allow that.
+    let deadline = std::time::Instant::now() + Duration::from_secs(5);
+    while children.iter().any(|&p| process_runs(p)) && std::time::Instant::now() < deadline {
+        std::thread::sleep(Duration::from_millis(20));
+    }
+    let survivors: Vec<u32> = children.into_iter().filter(|&p| process_runs(p)).collect();
+    assert!(survivors.is_empty(), "still running: {survivors:?}");
+}
+
 #[test]
 fn the_file_sink_appends_one_json_line_per_event() {
     let dir = tempfile::tempdir().unwrap();
@@ -650,4 +701,69 @@ fn an_https_webhook_from_the_configuration_reaches_the_in_house_server() {
     let got: serde_json::Value =
         serde_json::from_str(&bodies.recv_timeout(Duration::from_secs(5)).unwrap()).unwrap();
     assert_eq!(got["file"], HOSTILE);
+}
+
+/// A server that reads one request, then sends its answer one byte every
+/// `every`, headers and all; it stops when the client goes away.
+fn trickling_server(every: Duration, headers_at_once: bool) -> String {
+    let listener = TcpListener::bind("127.0.0.1:0").unwrap();
+    let url = format!("http://{}/hooks/night", listener.local_addr().unwrap());
+    std::thread::spawn(move || {
+        let Ok((mut stream, _)) = listener.accept() else {
+            return;
+        };
+        stream
+            .set_read_timeout(Some(Duration::from_secs(5)))
+            .unwrap();
+        let mut request = [0u8; 4096];
+        let _ = stream.read(&mut request);
+        let answer = format!(
+            "HTTP/1.1 200 OK\r\nContent-Length: 40\r\nConnection: close\r\n\r\n{}",
+            "x".repeat(40)
+        );
+        let (head, rest) = if headers_at_once {
+            answer.split_at(answer.find("\r\n\r\n").unwrap() + 4)
+        } else {
+            ("", answer.as_str())
+        };
+        if stream.write_all(head.as_bytes()).is_err() {
+            return;
+        }
+        for byte in rest.as_bytes() {
+            if stream.write_all(&[*byte]).is_err() {
+                return;
+            }
+            std::thread::sleep(every);
+        }
+    });
+    url
+}
+
+#[test]
+fn a_webhook_that_trickles_its_answer_is_cut_at_the_timeout() {
+    // The answer at one byte per 150 ms would take 15 s. Each read gets a
+    // byte well within the 600 ms timeout, yet the attempt as a whole is
+    // bounded by it: trickled headers end in a timeout; once the status line
+    // and headers are in, the attempt is over and the body is not waited for.
+    for headers_at_once in [false, true] {
+        let url = trickling_server(Duration::from_millis(150), headers_at_once);
+        let started = std::time::Instant::now();
+        let result = post_once(&url, "{}", Duration::from_millis(600), None);
+        let waited = started.elapsed();
+        if headers_at_once {
+            assert!(result.is_ok(), "{result:?}");
+        } else {
+            assert!(
+                matches!(
+                    result,
+                    Err(SinkError::WebhookTimeout {
+                        waiting_for: "answer",
+                        ..
+                    })
+                ),
+                "{result:?}"
+            );
+        }
+        assert!(waited < Duration::from_secs(3), "{waited:?}");
+    }
 }
