@@ -13,6 +13,11 @@ use framewarden::qc::alerts::{AlertEvent, AlertState, PositionEvidence};
 use framewarden::qc::params::{AlertSettings, CommandSink, WebhookSink};
 use framewarden::qc::sinks::{AlertDispatcher, SinkError, WebhookClient};
 
+#[allow(dead_code)]
+mod watch_support;
+#[cfg(target_os = "linux")]
+use watch_support::{process_runs, wait_for, Bench};
+
 fn event(file: &str) -> AlertEvent {
     AlertEvent {
         condition: "drift:background_level".into(),
@@ -367,19 +372,6 @@ fn a_hanging_command_is_killed_at_its_timeout() {
     assert!(!marker.exists());
 }
 
-/// Whether process `pid` still runs (a zombie waiting for its parent to
-/// collect it runs no more), read from procfs.
-#[cfg(target_os = "linux")]
-fn process_runs(pid: u32) -> bool {
-    match std::fs::read_to_string(format!("/proc/{pid}/stat")) {
-        // The state follows the command name in parentheses.
-        Ok(stat) => stat
-            .rsplit_once(") ")
-            .is_some_and(|(_, rest)| !rest.starts_with('Z')),
-        Err(_) => false,
-    }
-}
-
 #[cfg(target_os = "linux")]
 #[test]
 fn a_hanging_command_is_killed_at_its_timeout_with_its_children() {
@@ -410,12 +402,124 @@ fn a_hanging_command_is_killed_at_its_timeout_with_its_children() {
         .collect();
     assert_eq!(children.len(), 2);
     // A killed process leaves the table as soon as it is collected; allow that.
-    let deadline = std::time::Instant::now() + Duration::from_secs(5);
-    while children.iter().any(|&p| process_runs(p)) && std::time::Instant::now() < deadline {
-        std::thread::sleep(Duration::from_millis(20));
+    wait_for(
+        "the command's children to end",
+        Duration::from_secs(5),
+        || !children.iter().any(|&p| process_runs(p)),
+    );
+}
+
+/// The PIDs a file holds, one a line.
+#[cfg(target_os = "linux")]
+fn pids_in(path: &Path) -> Vec<u32> {
+    std::fs::read_to_string(path)
+        .unwrap_or_default()
+        .lines()
+        .map(|l| l.parse().unwrap())
+        .collect()
+}
+
+/// The alert deliveries the service recorded: (sink, finished, error).
+#[cfg(target_os = "linux")]
+fn deliveries(db: &Path) -> Vec<(String, bool, Option<String>)> {
+    let conn =
+        rusqlite::Connection::open_with_flags(db, rusqlite::OpenFlags::SQLITE_OPEN_READ_ONLY)
+            .unwrap();
+    conn.busy_timeout(Duration::from_secs(10)).unwrap();
+    let mut stmt = conn
+        .prepare("SELECT sink, finished_at_ms IS NOT NULL, error FROM alert_deliveries ORDER BY id")
+        .unwrap();
+    let rows = stmt
+        .query_map([], |r| Ok((r.get(0)?, r.get(1)?, r.get(2)?)))
+        .unwrap()
+        .collect::<Result<_, _>>()
+        .unwrap();
+    rows
+}
+
+#[cfg(target_os = "linux")]
+#[test]
+fn sigterm_with_a_stuck_command_ends_it_and_its_children_and_the_next_start_delivers() {
+    // The real binary with a command sink that hangs (a child `sleep 600`
+    // and a wait) until a file says it may answer; a limit on free space no
+    // disk meets raises alerts at once. SIGTERM must not wait for the 600 s
+    // command timeout (the shutdown bound is 60 s): the command's group is
+    // killed, and the deliveries not made stay in the database, to be made
+    // by the next start once the command answers.
+    let sink_dir = tempfile::tempdir().unwrap();
+    let script = sink_dir.path().join("sink.sh");
+    std::fs::write(
+        &script,
+        "#!/bin/sh\nif [ -e \"$1/answer\" ]; then cat >> \"$1/events.jsonl\"; exit 0; fi\n\
+         sleep 600 &\necho $! >> \"$1/children\"\nwait\n",
+    )
+    .unwrap();
+    {
+        use std::os::unix::fs::PermissionsExt;
+        std::fs::set_permissions(&script, std::fs::Permissions::from_mode(0o755)).unwrap();
     }
-    let survivors: Vec<u32> = children.into_iter().filter(|&p| process_runs(p)).collect();
-    assert!(survivors.is_empty(), "still running: {survivors:?}");
+    let mut bench = Bench::new(&format!(
+        "shutdown_timeout_s = 60\n[quality]\nmin_free_space_mib = 1000000000\n\
+         [alerts]\ncommand = [\"{}\", \"{}\"]\ncommand_timeout_s = 600\n",
+        script.display(),
+        sink_dir.path().display()
+    ));
+    bench.start();
+    let children = sink_dir.path().join("children");
+    wait_for("the command to hang", Duration::from_secs(30), || {
+        !pids_in(&children).is_empty()
+    });
+    bench.signal("TERM");
+    assert_eq!(
+        bench.wait_exit(Duration::from_secs(30)),
+        Some(0),
+        "{}",
+        bench.logs()
+    );
+    wait_for("the command's child to end", Duration::from_secs(5), || {
+        !pids_in(&children).into_iter().any(process_runs)
+    });
+    let left = deliveries(&bench.db);
+    assert!(!left.is_empty());
+    assert!(
+        left.iter()
+            .all(|(sink, finished, _)| sink == "command" && !finished),
+        "{left:?}"
+    );
+    // The command answers now; the next start makes every delivery left.
+    std::fs::write(sink_dir.path().join("answer"), "").unwrap();
+    bench.start();
+    let events = sink_dir.path().join("events.jsonl");
+    wait_for(
+        "the deliveries left to be made",
+        Duration::from_secs(30),
+        || {
+            deliveries(&bench.db)
+                .iter()
+                .take(left.len())
+                .all(|(_, finished, _)| *finished)
+        },
+    );
+    bench.signal("TERM");
+    assert_eq!(bench.wait_exit(Duration::from_secs(30)), Some(0));
+    let made = deliveries(&bench.db);
+    assert!(made.iter().all(|(_, _, error)| error.is_none()), "{made:?}");
+    let received: Vec<serde_json::Value> = std::fs::read_to_string(&events)
+        .unwrap()
+        .lines()
+        .map(|l| serde_json::from_str(l).unwrap())
+        .collect();
+    assert!(received.len() >= left.len(), "{received:?}");
+    assert!(
+        received.iter().all(|e| e["condition"]
+            .as_str()
+            .unwrap()
+            .starts_with("low_disk_space:")),
+        "{received:?}"
+    );
+    assert!(bench
+        .logs()
+        .contains("alert deliveries not made before the last stop are sent now"));
 }
 
 #[test]

@@ -4,6 +4,7 @@
 //! Each test states a promise of `framewarden watch` (exactly once, never early,
 //! nothing lost) and checks it on the rows; no test asserts a time.
 
+#[allow(dead_code)]
 mod watch_support;
 
 use std::collections::HashMap;

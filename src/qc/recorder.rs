@@ -18,7 +18,7 @@ use crate::qc::flags::explain_recount;
 use crate::qc::metrics::FrameMetrics;
 use crate::qc::monitor::{RunMonitor, Verdict};
 use crate::qc::params::{AlertSettings, QualitySettings};
-use crate::qc::sinks::{AlertDispatcher, SinkError};
+use crate::qc::sinks::{AlertDispatcher, Outcome, SinkError};
 use crate::store::writer::FrameObserver;
 use crate::store::{now_ms, FrameKey, ACQUISITION_ORDER_SQL, FRAME_KEY_SQL, POSITION_SQL};
 use crate::text::shown;
@@ -54,9 +54,10 @@ pub struct QcRecorder {
     run_id: i64,
     monitor: RunMonitor,
     dispatcher: AlertDispatcher,
-    /// Events stored in the writer's open transaction, announced (logged and
-    /// sent to the sinks) only once it commits.
-    pending: Vec<AlertEvent>,
+    /// Events stored in the writer's open transaction, each with its
+    /// deliveries' rows (sink, id), announced (logged and sent to the sinks)
+    /// only once it commits.
+    pending: Vec<(AlertEvent, Vec<(&'static str, i64)>)>,
     /// The per-frame log lines of the open transaction, logged once it commits.
     pending_lines: Vec<FrameLine>,
     /// The state before the open transaction, restored if it rolls back, so a
@@ -82,6 +83,7 @@ impl QcRecorder {
     /// [`QcError`]: SQLite errors, or a sink thread that cannot start.
     pub fn start(conn: &Connection, run_id: i64, setup: QcSetup) -> Result<QcRecorder, QcError> {
         let dispatcher = AlertDispatcher::start(&setup.alerts).map_err(QcError::Sinks)?;
+        resend_unfinished(conn, &dispatcher)?;
         let mut recorder = QcRecorder {
             monitor: new_monitor(&setup),
             setup,
@@ -217,6 +219,7 @@ impl FrameObserver for QcRecorder {
     /// Periodic checks that need no frame: the stall, and free space on the
     /// watched and database volumes.
     fn tick(&mut self, conn: &Connection) -> rusqlite::Result<()> {
+        record_outcomes(conn, &self.dispatcher.outcomes())?;
         let now = now_ms();
         let mut events: Vec<AlertEvent> = self.monitor.check_stall(now).into_iter().collect();
         for volume in &self.setup.volumes {
@@ -233,9 +236,16 @@ impl FrameObserver for QcRecorder {
         Ok(())
     }
 
-    /// Waits for the sinks to deliver what is queued.
-    fn close(self: Box<Self>) {
-        self.dispatcher.close();
+    /// Gives the sinks a short grace to deliver what is queued, cuts short
+    /// the rest (left unfinished for the next start), and records the
+    /// outcomes.
+    fn close(self: Box<Self>, conn: &Connection) {
+        let outcomes = self.dispatcher.close();
+        if let Err(e) = record_outcomes(conn, &outcomes) {
+            tracing::error!(
+                "alert deliveries not recorded as made (sent again at the next start): {e}"
+            );
+        }
     }
 }
 
@@ -252,8 +262,8 @@ impl QcRecorder {
                 "frame"
             );
         }
-        for event in std::mem::take(&mut self.pending) {
-            self.announce(&event);
+        for (event, deliveries) in std::mem::take(&mut self.pending) {
+            self.announce(&event, &deliveries);
         }
     }
 
@@ -355,22 +365,31 @@ impl QcRecorder {
                     |r| r.get(0),
                 )
                 .optional()?,
-            AlertState::Recovered | AlertState::Closed => {
-                conn.prepare_cached(&format!(
-                    "UPDATE alerts SET closed_at_ms = ?4, closed_message = ?5, closed_state = ?6 WHERE {EPISODE}"
+            AlertState::Recovered | AlertState::Closed => conn
+                .prepare_cached(&format!(
+                    "UPDATE alerts SET closed_at_ms = ?4, closed_message = ?5, closed_state = ?6 WHERE {EPISODE} RETURNING id"
                 ))?
-                .execute(params![
-                    run_id,
-                    event.condition,
-                    event.opened_at_ms,
-                    event.at_ms,
-                    event.message,
-                    event.state.as_str()
-                ])?;
-                None
-            }
+                .query_row(
+                    params![
+                        run_id,
+                        event.condition,
+                        event.opened_at_ms,
+                        event.at_ms,
+                        event.message,
+                        event.state.as_str()
+                    ],
+                    |r| r.get(0),
+                )
+                .optional()?,
         };
-        if let (Some(alert_id), Some(evidence)) = (alert_id, &event.evidence) {
+        if let (Some(alert_id), Some(evidence), true) = (
+            alert_id,
+            &event.evidence,
+            matches!(
+                event.state,
+                AlertState::Opened | AlertState::Notice | AlertState::Updated
+            ),
+        ) {
             conn.prepare_cached(
                 "INSERT OR REPLACE INTO alert_positions (alert_id, position, joined_at_ms, frame_id, message)
                  VALUES (?1, ?2, ?3, ?4, ?5)",
@@ -383,11 +402,20 @@ impl QcRecorder {
                 evidence.message
             ])?;
         }
-        self.pending.push(event.clone());
+        let mut deliveries = Vec::new();
+        let json = crate::qc::sinks::to_json(event);
+        for sink in self.dispatcher.sink_names() {
+            conn.prepare_cached(
+                "INSERT INTO alert_deliveries (alert_id, sink, event, queued_at_ms) VALUES (?1, ?2, ?3, ?4)",
+            )?
+            .execute(params![alert_id, sink, json, now_ms()])?;
+            deliveries.push((sink, conn.last_insert_rowid()));
+        }
+        self.pending.push((event.clone(), deliveries));
         Ok(())
     }
 
-    fn announce(&self, event: &AlertEvent) {
+    fn announce(&self, event: &AlertEvent, deliveries: &[(&'static str, i64)]) {
         match event.state {
             AlertState::Opened => tracing::warn!(
                 condition = %shown(&event.condition),
@@ -417,7 +445,9 @@ impl QcRecorder {
                 shown(&event.message)
             ),
         }
-        self.dispatcher.send(event);
+        for (sink, id) in deliveries {
+            self.dispatcher.send_to(sink, Some(*id), event);
+        }
     }
 
     /// Feeds the run's recorded frames to a fresh monitor, in acquisition
@@ -482,6 +512,60 @@ impl QcRecorder {
         }
         Ok(n)
     }
+}
+
+/// Hands the deliveries that an earlier process left unfinished (cut short by
+/// its shutdown, still queued, or killed) to their sinks again, oldest first;
+/// those of a sink no longer configured are finished with that reason.
+fn resend_unfinished(conn: &Connection, dispatcher: &AlertDispatcher) -> rusqlite::Result<()> {
+    let unfinished: Vec<(i64, String, String)> = conn
+        .prepare(
+            "SELECT id, sink, event FROM alert_deliveries WHERE finished_at_ms IS NULL ORDER BY id",
+        )?
+        .query_map([], |r| Ok((r.get(0)?, r.get(1)?, r.get(2)?)))?
+        .collect::<Result<_, _>>()?;
+    if unfinished.is_empty() {
+        return Ok(());
+    }
+    let configured = dispatcher.sink_names();
+    let mut sent = 0;
+    for (id, sink, json) in unfinished {
+        let reason = if !configured.contains(&sink.as_str()) {
+            format!("the {sink} sink is no longer configured")
+        } else {
+            match serde_json::from_str::<AlertEvent>(&json) {
+                Ok(event) => {
+                    dispatcher.send_to(&sink, Some(id), &event);
+                    sent += 1;
+                    continue;
+                }
+                Err(e) => format!("the stored event cannot be read: {e}"),
+            }
+        };
+        tracing::warn!("alert delivery {id} dropped: {reason}");
+        record_outcomes(
+            conn,
+            &[Outcome {
+                id,
+                result: Err(reason),
+            }],
+        )?;
+    }
+    if sent > 0 {
+        tracing::info!("{sent} alert deliveries not made before the last stop are sent now");
+    }
+    Ok(())
+}
+
+/// Marks deliveries finished: made, or given up with the reason.
+fn record_outcomes(conn: &Connection, outcomes: &[Outcome]) -> rusqlite::Result<()> {
+    let mut update = conn.prepare_cached(
+        "UPDATE alert_deliveries SET finished_at_ms = ?2, error = ?3 WHERE id = ?1",
+    )?;
+    for o in outcomes {
+        update.execute(params![o.id, now_ms(), o.result.as_ref().err()])?;
+    }
+    Ok(())
 }
 
 /// SQL for the positions an alert row names, as a JSON array in order.
@@ -569,7 +653,7 @@ mod tests {
         recorder.begin();
         judge(&mut recorder, &mut conn, &keys).commit().unwrap();
         recorder.committed();
-        Box::new(recorder).close();
+        Box::new(recorder).close(&conn);
         let stored: i64 = conn
             .query_row(
                 "SELECT COUNT(*) FROM alerts WHERE condition = 'failure_rate'",
@@ -613,7 +697,7 @@ mod tests {
         )
         .unwrap();
         let recorder = QcRecorder::start(&conn, 2, setup).unwrap();
-        Box::new(recorder).close();
+        Box::new(recorder).close(&conn);
         let rows: Vec<(i64, Option<String>, Option<String>)> = conn
             .prepare("SELECT run_id, closed_state, closed_message FROM alerts ORDER BY id")
             .unwrap()

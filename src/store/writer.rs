@@ -82,8 +82,9 @@ pub trait FrameObserver: Send {
     /// # Errors
     /// SQLite errors.
     fn tick(&mut self, conn: &Connection) -> rusqlite::Result<()>;
-    /// The writer is ending: finish what is queued.
-    fn close(self: Box<Self>);
+    /// The writer is ending: finish what is queued, recording in `conn`
+    /// (outside any transaction) what needs recording.
+    fn close(self: Box<Self>, conn: &Connection);
 }
 
 /// One thing to record.
@@ -368,6 +369,9 @@ impl WriterState {
         if let Err(e) = ended {
             tracing::error!("cannot mark run {} ended: {e}", self.run.id);
         }
+        if let Some(observer) = self.observer.take() {
+            observer.close(&self.conn);
+        }
         // Everything into the database file and the log emptied, so that a
         // reader who cannot write the folder finds a database complete on its
         // own (see `store::open_read_only`).
@@ -380,9 +384,6 @@ impl WriterState {
             Ok(0) => {}
             Ok(_) => tracing::warn!("the final checkpoint was blocked by a reader; the log stays"),
             Err(e) => tracing::warn!("the final checkpoint failed: {e}"),
-        }
-        if let Some(observer) = self.observer.take() {
-            observer.close();
         }
         if let Some(images) = self.label_images.take() {
             images.finish();
@@ -1381,7 +1382,7 @@ mod tests {
         fn tick(&mut self, _: &Connection) -> rusqlite::Result<()> {
             Ok(())
         }
-        fn close(self: Box<Self>) {}
+        fn close(self: Box<Self>, _: &Connection) {}
     }
 
     fn start_judged(db: &std::path::Path) -> (Writer, Sender<StoreOp>, JudgedLog) {
