@@ -146,6 +146,13 @@ fn check_first_directory<R: Read + Seek>(
         path: path.into(),
         source,
     };
+    // No file reaches 2^63 bytes (a seek there fails with "Invalid argument").
+    const NO_FILE_REACHES: u64 = i64::MAX as u64;
+    if offset > NO_FILE_REACHES {
+        return Err(corrupt(format!(
+            "the first directory is said to start at byte {offset}, beyond any possible file size"
+        )));
+    }
     reader.seek(std::io::SeekFrom::Start(offset)).map_err(io)?;
     let mut count = [0u8; 8];
     if read_up_to(reader, &mut count[..count_len]).map_err(io)? < count_len {
@@ -170,9 +177,19 @@ fn check_first_directory<R: Read + Seek>(
             5 | 10 | 12 | 16..=18 => 8,
             _ => continue, // unknown types are skipped by the crate
         };
-        if values.saturating_mul(size) > len {
+        let bytes = values.saturating_mul(size);
+        if bytes > len {
             return Err(corrupt(format!(
                 "directory entry {i} (tag {}) declares {values} values, more than the file's {len} bytes hold",
+                u16_at(&entry[0..2])
+            )));
+        }
+        // A BigTIFF value longer than 8 bytes lies elsewhere, at the offset
+        // the entry's last 8 bytes give.
+        let at = u64_at(&entry[12..20]);
+        if big && bytes > 8 && at.saturating_add(bytes) > NO_FILE_REACHES {
+            return Err(corrupt(format!(
+                "directory entry {i} (tag {}) says its values lie at byte {at}, beyond any possible file size",
                 u16_at(&entry[0..2])
             )));
         }
