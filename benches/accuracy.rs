@@ -2,8 +2,9 @@
 //! the true and found object counts, precision, recall and F1 at IoU ≥ 0.5,
 //! and F1 averaged over IoU 0.5, 0.55, …, 0.95, for
 //!
-//! - ours with the shipped defaults (`Settings::default()`), without the size
-//!   filter, and with the split at 1, 2 and 3 px depth;
+//! - ours with the shipped defaults (`Settings::default()`), and with one
+//!   thing changed: no size filter, no split, the split's depth or
+//!   separation;
 //! - scikit-image + SciPy: Otsu, fill holes, the same size filter; and the
 //!   same followed by the usual split (distance transform, peak_local_max
 //!   markers, watershed), from `benches/accuracy_reference.py`.
@@ -21,7 +22,8 @@ use std::path::{Path, PathBuf};
 use std::process::Command;
 
 use accuracy_support::{
-    crowds, label_frame, our_labels, python, reference_script, render_crowd, score, Case, Scores,
+    crowds, label_frame, our_labels, python, reference_script, render_crowd, score, Case, Crowd,
+    Scores,
 };
 use framewarden::analysis::{SegmentParams, Split};
 use framewarden::decode::{self, DecodeLimits};
@@ -31,14 +33,19 @@ use framewarden::synth::write_tiff;
 /// The reference pipelines of `benches/accuracy_reference.py`, in table order.
 const REFERENCE: [&str; 2] = ["skimage-otsu+fill+size", "skimage+split"];
 
-const USAGE: &str =
-    "cargo bench --bench accuracy -- [--min-area PX] [--min-distance PX] [--keep DIR]";
+const USAGE: &str = "cargo bench --bench accuracy -- [--min-area PX] [--min-distance PX] \
+     [--seeds K] [--keep DIR]";
 
 struct Options {
     min_area: u64,
     min_distance: u64,
+    /// Scenes drawn per kind (seeds `seed`, `seed + SEED_STEP`, ...).
+    seeds: u64,
     keep: Option<PathBuf>,
 }
+
+/// The seed step between the variants of one kind of scene.
+const SEED_STEP: u64 = 7919;
 
 fn parse_args() -> Options {
     let mut o = Options {
@@ -48,6 +55,7 @@ fn parse_args() -> Options {
         // About half the radius of a typical nucleus at these scales
         // (10-12 px); see benches/README.md for the sensitivity.
         min_distance: 7,
+        seeds: 1,
         keep: None,
     };
     let mut args = std::env::args().skip(1);
@@ -64,6 +72,7 @@ fn parse_args() -> Options {
         match a.as_str() {
             "--min-area" => o.min_area = number("--min-area"),
             "--min-distance" => o.min_distance = number("--min-distance"),
+            "--seeds" => o.seeds = number("--seeds"),
             "--keep" => o.keep = args.next().map(PathBuf::from),
             "--bench" => {}
             other => {
@@ -101,21 +110,56 @@ fn main() {
     let defaults = Settings::default().pipeline.segment;
     let mut unfiltered = defaults.clone();
     unfiltered.filter.min_area_px = 0;
-    let split = |depth: f64| SegmentParams {
+    let split = |min_depth_px: f64, min_separation_px: f64| SegmentParams {
         split: Split::Distance {
-            min_depth_px: depth,
+            min_depth_px,
+            min_separation_px,
         },
         ..defaults.clone()
     };
+    let (depth, separation) = (
+        Split::DEFAULT_MIN_DEPTH_PX,
+        Split::DEFAULT_MIN_SEPARATION_PX,
+    );
     let ours = [
         ("ours, defaults".to_string(), defaults.clone()),
         ("ours, no size filter".to_string(), unfiltered),
-        ("ours, split depth 1 px".to_string(), split(1.0)),
-        ("ours, split depth 2 px".to_string(), split(2.0)),
-        ("ours, split depth 3 px".to_string(), split(3.0)),
+        (
+            "ours, no split".to_string(),
+            SegmentParams {
+                split: Split::None,
+                ..defaults.clone()
+            },
+        ),
+        (
+            format!("ours, depth {depth} px, no separation"),
+            split(depth, 0.0),
+        ),
+        (
+            format!("ours, depth 1 px, separation {separation} px"),
+            split(1.0, separation),
+        ),
+        (
+            format!("ours, depth {depth} px, separation 7 px"),
+            split(depth, 7.0),
+        ),
     ];
 
-    let cases: Vec<Case> = crowds().iter().map(render_crowd).collect();
+    let cases: Vec<Case> = crowds()
+        .into_iter()
+        .flat_map(|c| {
+            (0..o.seeds).map(move |k| {
+                let mut case = render_crowd(&Crowd {
+                    seed: c.seed + k * SEED_STEP,
+                    ..c.clone()
+                });
+                if k > 0 {
+                    case.name = format!("{} #{}", case.name, k + 1);
+                }
+                case
+            })
+        })
+        .collect();
 
     // Write every image, truth and our label images; score ours in Rust.
     let mut manifest = Vec::new();

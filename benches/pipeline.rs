@@ -144,11 +144,13 @@ fn unsplit_params() -> PipelineParams {
     params
 }
 
-/// The pipeline's parameters with splitting on at its default depth.
+/// The pipeline's parameters with splitting on at its default depth and
+/// separation.
 fn split_params() -> PipelineParams {
     let mut params = PipelineParams::default();
     params.segment.split = Split::Distance {
         min_depth_px: Split::DEFAULT_MIN_DEPTH_PX,
+        min_separation_px: Split::DEFAULT_MIN_SEPARATION_PX,
     };
     params
 }
@@ -225,15 +227,14 @@ fn time_stages(files: &[PathBuf], reps: usize) -> [f64; 7] {
                 frame.height,
                 Connectivity::Eight,
                 Split::DEFAULT_MIN_DEPTH_PX,
+                Split::DEFAULT_MIN_SEPARATION_PX,
             ));
             times[6].push(ms(t));
             let t = Instant::now();
-            let measured =
-                std::hint::black_box(measure::measure(&frame, &[], &comps, &filter, None));
+            std::hint::black_box(measure::measure(&frame, &[], &comps, &filter, None));
             times[4].push(ms(t));
-            let boundary: f64 = measured.objects.iter().map(|o| o.perimeter_px).sum();
             let t = Instant::now();
-            std::hint::black_box(quality::assess(&frame, &hist, None, level, boundary));
+            std::hint::black_box(quality::assess(&frame, &hist, None, level));
             times[5].push(ms(t));
         }
     }

@@ -74,6 +74,22 @@ def fit_illumination(block_sum, block_n, block_px):
     return float((surface.max() - surface.min()) / mean) if mean > 0 else 0.0
 
 
+# The focus measure (src/analysis/quality.rs): the variance of the Laplacian of
+# the frame smoothed by BINOMIAL, less the noise's share (Immerkaer 1996:
+# the variance behind NOISE_KERNEL / 36), per unit of the smoothed frame's
+# energy above the background, less its noise share.
+BINOMIAL = np.outer([1.0, 2.0, 1.0], [1.0, 2.0, 1.0]) / 16.0
+NOISE_KERNEL = np.outer([1.0, -2.0, 1.0], [1.0, -2.0, 1.0])
+LOG_ENERGY = 104.0 / 256.0
+BINOMIAL_ENERGY = 36.0 / 256.0
+
+
+def focus_ratio(lap_var, signal, noise):
+    top = lap_var - noise * LOG_ENERGY
+    bottom = signal - noise * BINOMIAL_ENERGY
+    return top / bottom if top > 0 and bottom > 0 else 0.0
+
+
 def frame_summary(count, t, background_level, saturation, focus, illumination):
     return {
         "object_count": int(count),
@@ -125,8 +141,11 @@ def skimage_pipeline(path):
     background = ~mask
     background_level = float(np.median(img[background]))
     saturation = np.count_nonzero(img == full) / img.size
-    lap = ndi.laplace(img.astype(np.float64))[1:-1, 1:-1]
-    focus = float(lap.var())
+    f = img.astype(np.float64)
+    smooth = ndi.convolve(f, BINOMIAL)[1:-1, 1:-1]
+    lap = ndi.laplace(smooth)[1:-1, 1:-1]
+    noise = float(ndi.convolve(f, NOISE_KERNEL)[1:-1, 1:-1].var()) / 36.0
+    focus = focus_ratio(float(lap.var()), float(np.mean((smooth - background_level) ** 2)), noise)
     h, w = img.shape
     ys, xs = block_edges(h), block_edges(w)
     bg_values = np.where(background, img, 0).astype(np.float64)
@@ -224,9 +243,13 @@ def opencv_pipeline(path, split=False):
     cum = np.cumsum(bg_hist)
     background_level = float(np.searchsorted(cum, cum[-1] / 2)) if cum[-1] > 0 else 0.0
     saturation = hist[full] / img.size
-    lap = cv2.Laplacian(img, cv2.CV_64F, ksize=1)[1:-1, 1:-1]
+    f = img.astype(np.float64)
+    smooth = cv2.filter2D(f, cv2.CV_64F, BINOMIAL)[1:-1, 1:-1]
+    lap = cv2.Laplacian(smooth, cv2.CV_64F, ksize=1)[1:-1, 1:-1]
     _, sd = cv2.meanStdDev(lap)
-    focus = float(sd[0, 0] ** 2)
+    _, noise_sd = cv2.meanStdDev(cv2.filter2D(f, cv2.CV_64F, NOISE_KERNEL)[1:-1, 1:-1])
+    signal = cv2.mean(cv2.pow(smooth - background_level, 2))[0]
+    focus = focus_ratio(float(sd[0, 0] ** 2), signal, float(noise_sd[0, 0] ** 2) / 36.0)
     bg_values = cv2.bitwise_and(img, img, mask=background)
     sum_int = cv2.integral(bg_values, sdepth=cv2.CV_64F)
     n_int = cv2.integral(background // 255, sdepth=cv2.CV_64F)

@@ -51,7 +51,7 @@ fn main() {
     let db = dir.path().join("framewarden.db");
     let out = dir.path().join("report.html");
     let started = Instant::now();
-    let written = framewarden::html_report::write(&db, None, &out).expect("the report");
+    let written = framewarden::html_report::write(&db, None, None, &out).expect("the report");
     let seconds = started.elapsed().as_secs_f64();
     let mb = written.bytes as f64 / 1e6;
     println!("report: {mb:.1} MB in {seconds:.2} s");

@@ -2,7 +2,8 @@
 //! drives the real `framewarden watch` process and the bench reports sustained
 //! frames/s, latency from "file complete" to "row committed" (median, 99th
 //! percentile), the service's peak memory, and the throughput ratio
-//! service / `analyze` with the same number of workers. Reported, never asserted.
+//! service / `analyze` with the same number of workers; then `reprocess` of
+//! the recorded run and its ratio to `analyze`. Reported, never asserted.
 //!
 //! Frames are drawn once by `framewarden::synth` and placed into the watched
 //! folder as hard links (each a new name, complete at once, no copy), so the
@@ -249,4 +250,25 @@ fn main() {
         ),
         None => println!("memory:  peak RSS unavailable (no /proc)"),
     }
+    drop(conn);
+
+    // The recorded run analysed again, from the same files, as a new analysis.
+    let start = Instant::now();
+    let status = Command::new(BIN)
+        .args(["reprocess", "--workers", &o.workers.to_string(), "--db"])
+        .arg(&db)
+        .stdout(Stdio::null())
+        .stderr(Stdio::null())
+        .status()
+        .expect("the framewarden binary runs");
+    assert!(status.success(), "reprocess failed");
+    let reprocess_rate = o.frames as f64 / start.elapsed().as_secs_f64();
+    println!(
+        "reprocess: {reprocess_rate:.1} frames/s ({} frames)",
+        o.frames
+    );
+    println!(
+        "ratio:   reprocess / analyze = {:.2} (target >= 0.90)",
+        reprocess_rate / baseline
+    );
 }

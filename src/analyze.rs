@@ -136,52 +136,84 @@ pub fn run(
     labels: Option<&Path>,
     out: &mut dyn Write,
 ) -> std::io::Result<usize> {
-    let next = AtomicUsize::new(0);
     let label_files = labels.map(|dir| label_paths(files, dir));
-    let (tx, rx) = std::sync::mpsc::sync_channel::<(usize, Outcome)>(workers * 2);
+    if !json {
+        writeln!(out, "{}", table_header())?;
+    }
     let mut failed = 0;
-    std::thread::scope(|scope| -> std::io::Result<()> {
-        for _ in 0..workers.max(1) {
+    in_order(
+        files.len(),
+        workers,
+        |i| {
+            analyze_one(
+                &files[i],
+                settings,
+                label_files.as_deref().map(|l| l[i].as_path()),
+            )
+        },
+        |i, result| {
+            let file = files[i].display().to_string();
+            if result.is_err() {
+                failed += 1;
+            }
+            let flags = result
+                .as_ref()
+                .map_or_else(|_| Vec::new(), |(a, _)| flags_of(a, settings));
+            let line = if json {
+                json_line(file, &result, flags)
+            } else {
+                table_line(&file, &result, &flags)
+            };
+            writeln!(out, "{line}")
+        },
+    )?;
+    Ok(failed)
+}
+
+/// Runs `job(0)` … `job(n - 1)` on `workers` threads (each takes the next
+/// index when it is free) and hands each result to `each` on the calling
+/// thread in index order, as soon as it and all before it are finished. At
+/// most `2 × workers` finished results wait. The pool of `analyze` and
+/// `reprocess`.
+///
+/// # Errors
+/// The first error `each` returns; the workers then stop taking jobs.
+pub fn in_order<T: Send, E>(
+    n: usize,
+    workers: usize,
+    job: impl Fn(usize) -> T + Sync,
+    mut each: impl FnMut(usize, T) -> Result<(), E>,
+) -> Result<(), E> {
+    let next = AtomicUsize::new(0);
+    let workers = workers.max(1);
+    let (tx, rx) = std::sync::mpsc::sync_channel::<(usize, T)>(workers * 2);
+    std::thread::scope(|scope| {
+        for _ in 0..workers {
             let tx = tx.clone();
-            let next = &next;
-            let label_files = label_files.as_deref();
+            let (next, job) = (&next, &job);
             scope.spawn(move || loop {
                 let i = next.fetch_add(1, Ordering::Relaxed);
-                let Some(path) = files.get(i) else { break };
-                let labels = label_files.map(|l| l[i].as_path());
-                if tx.send((i, analyze_one(path, settings, labels))).is_err() {
+                if i >= n || tx.send((i, job(i))).is_err() {
                     break;
                 }
             });
         }
         drop(tx);
-        if !json {
-            writeln!(out, "{}", table_header())?;
-        }
         let mut pending = BTreeMap::new();
-        let mut printed = 0;
+        let mut handed = 0;
         for (i, result) in rx {
             pending.insert(i, result);
-            while let Some(result) = pending.remove(&printed) {
-                let file = files[printed].display().to_string();
-                if result.is_err() {
-                    failed += 1;
+            while let Some(result) = pending.remove(&handed) {
+                handed += 1;
+                if let Err(e) = each(handed - 1, result) {
+                    // Receiving no more makes every worker's next send fail.
+                    next.store(n, Ordering::Relaxed);
+                    return Err(e);
                 }
-                let flags = result
-                    .as_ref()
-                    .map_or_else(|_| Vec::new(), |(a, _)| flags_of(a, settings));
-                let line = if json {
-                    json_line(file, &result, flags)
-                } else {
-                    table_line(&file, &result, &flags)
-                };
-                writeln!(out, "{line}")?;
-                printed += 1;
             }
         }
         Ok(())
-    })?;
-    Ok(failed)
+    })
 }
 
 /// The flags a single frame earns on its own, with the `[quality]` limits: those

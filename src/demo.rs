@@ -380,7 +380,7 @@ pub fn run(scenario: &Scenario, paths: &DemoPaths, out: &mut dyn Write) -> Resul
     // Wait until every written file has its row (done or failed).
     let deadline = Instant::now() + Duration::from_secs(120);
     loop {
-        let report = status::read(&paths.database, 0, None)?;
+        let report = status::read(&paths.database, 0, None, None)?;
         if report.frames_seen as usize >= written && report.frames_queued == 0
             || Instant::now() > deadline
         {
@@ -399,7 +399,7 @@ pub fn run(scenario: &Scenario, paths: &DemoPaths, out: &mut dyn Write) -> Resul
     );
     let night = Night::read(&paths.database, summary.run_id)?;
     let _ = write!(out, "{}", night.render(scenario));
-    crate::html_report::write(&paths.database, Some(summary.run_id), &paths.report)?;
+    crate::html_report::write(&paths.database, Some(summary.run_id), None, &paths.report)?;
     let _ = write!(out, "{}", where_things_are(paths));
     Ok(())
 }

@@ -14,7 +14,6 @@ use std::fmt::Write as _;
 use std::fs::File;
 use std::io::{BufWriter, Write};
 use std::path::{Path, PathBuf};
-use std::str::FromStr;
 use std::sync::Arc;
 
 use arrow_array::builder::{Float64Builder, Int64Builder, StringBuilder};
@@ -33,8 +32,9 @@ use crate::text::shown_path;
 /// written: about 64 k rows × 30 columns × 8 bytes, some 16 MB at most.
 pub const ROW_GROUP_ROWS: usize = 65_536;
 
-/// Which table to export.
-#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+/// Which table to export (on the command line: `frames`, `objects`,
+/// `alerts`, `flags`).
+#[derive(Debug, Clone, Copy, PartialEq, Eq, clap::ValueEnum)]
 pub enum Table {
     /// One row per recorded version of a file (any status).
     Frames,
@@ -46,41 +46,13 @@ pub enum Table {
     Flags,
 }
 
-impl FromStr for Table {
-    type Err = String;
-
-    fn from_str(s: &str) -> Result<Self, Self::Err> {
-        match s {
-            "frames" => Ok(Table::Frames),
-            "objects" => Ok(Table::Objects),
-            "alerts" => Ok(Table::Alerts),
-            "flags" => Ok(Table::Flags),
-            other => Err(format!(
-                "unknown table {other:?}: choose frames, objects, alerts or flags"
-            )),
-        }
-    }
-}
-
-/// The file format written.
-#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+/// The file format written (on the command line: `csv`, `parquet`).
+#[derive(Debug, Clone, Copy, PartialEq, Eq, clap::ValueEnum)]
 pub enum Format {
     /// Comma-separated values with a header line; an empty field is a missing value.
     Csv,
     /// Apache Parquet, Snappy-compressed, one row group per [`ROW_GROUP_ROWS`] rows.
     Parquet,
-}
-
-impl FromStr for Format {
-    type Err = String;
-
-    fn from_str(s: &str) -> Result<Self, Self::Err> {
-        match s {
-            "csv" => Ok(Format::Csv),
-            "parquet" => Ok(Format::Parquet),
-            other => Err(format!("unknown format {other:?}: choose csv or parquet")),
-        }
-    }
 }
 
 /// Errors of an export, each naming the file concerned.
@@ -328,6 +300,7 @@ pub fn column_names(table: Table) -> Vec<&'static str> {
 pub fn export(
     db: &Path,
     run: Option<i64>,
+    analysis: Option<i64>,
     table: Table,
     format: Format,
     out: Option<&Path>,
@@ -335,8 +308,10 @@ pub fn export(
     if format == Format::Parquet && out.is_none() {
         return Err(ExportError::ParquetNeedsFile);
     }
-    store::read_run(db, run, |conn, run_id| {
-        let run_id = run_id.ok_or_else(|| ExportError::Empty(db.to_path_buf()))?;
+    store::read_run(db, run, analysis, |conn, picked| {
+        let run_id = picked
+            .ok_or_else(|| ExportError::Empty(db.to_path_buf()))?
+            .run_id;
         let rows = match out {
             None => {
                 let stdout = std::io::stdout();
@@ -684,12 +659,24 @@ mod tests {
     }
 
     #[test]
-    fn tables_and_formats_parse_from_their_names() {
-        assert_eq!("objects".parse(), Ok(Table::Objects));
-        assert_eq!("parquet".parse(), Ok(Format::Parquet));
-        assert!("cells"
-            .parse::<Table>()
-            .unwrap_err()
-            .contains("frames, objects"));
+    fn tables_and_formats_are_named_as_the_readme_says() {
+        use clap::ValueEnum;
+        let names = |values: &[Option<clap::builder::PossibleValue>]| -> Vec<String> {
+            values
+                .iter()
+                .map(|v| v.as_ref().unwrap().get_name().to_string())
+                .collect()
+        };
+        let tables: Vec<_> = Table::value_variants()
+            .iter()
+            .map(Table::to_possible_value)
+            .collect();
+        assert_eq!(names(&tables), ["frames", "objects", "alerts", "flags"]);
+        let formats: Vec<_> = Format::value_variants()
+            .iter()
+            .map(Format::to_possible_value)
+            .collect();
+        assert_eq!(names(&formats), ["csv", "parquet"]);
+        assert_eq!(Table::from_str("objects", false), Ok(Table::Objects));
     }
 }

@@ -16,7 +16,7 @@
 //! | watching | [`watch`] |
 //! | configuration | [`settings`] (builds every layer's parameters) |
 //! | reading a run back | [`status`], [`export`], then [`html_report`] (which uses `status`) |
-//! | commands | [`daemon`] (rewrites the report during a run), [`analyze`], [`demo`] |
+//! | commands | [`daemon`] (rewrites the report during a run), [`analyze`], [`reprocess`] (uses `analyze`'s pool), [`demo`] |
 
 pub mod text;
 
@@ -46,3 +46,4 @@ pub mod html_report;
 pub mod analyze;
 pub mod daemon;
 pub mod demo;
+pub mod reprocess;

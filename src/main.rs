@@ -73,6 +73,10 @@ enum Command {
         /// Show this run (by number) instead of the current or last one.
         #[arg(long)]
         run: Option<i64>,
+        /// Show this analysis of the run (1 = the watch service's; each
+        /// reprocess adds one) instead of the newest.
+        #[arg(long)]
+        analysis: Option<i64>,
         /// Show times in UTC instead of local time (--json is always UTC).
         #[arg(long)]
         utc: bool,
@@ -89,11 +93,15 @@ enum Command {
         /// Export this run (by number) instead of the current or last one.
         #[arg(long)]
         run: Option<i64>,
-        /// frames, objects, alerts or flags.
+        /// Export this analysis of the run (1 = the watch service's; each
+        /// reprocess adds one) instead of the newest.
         #[arg(long)]
+        analysis: Option<i64>,
+        /// Which table.
+        #[arg(long, value_enum)]
         table: framewarden::export::Table,
-        /// csv or parquet (Parquet needs -o).
-        #[arg(long, default_value = "csv")]
+        /// The file format (Parquet needs -o).
+        #[arg(long, value_enum, default_value = "csv")]
         format: framewarden::export::Format,
         /// Output file (default: standard output, CSV only).
         #[arg(short = 'o', long = "output", value_name = "FILE")]
@@ -110,6 +118,10 @@ enum Command {
         /// Report this run (by number) instead of the current or last one.
         #[arg(long)]
         run: Option<i64>,
+        /// Report this analysis of the run (1 = the watch service's; each
+        /// reprocess adds one) instead of the newest.
+        #[arg(long)]
+        analysis: Option<i64>,
         /// The HTML file to write (default: framewarden-report.html).
         #[arg(
             short = 'o',
@@ -117,6 +129,27 @@ enum Command {
             default_value = "framewarden-report.html"
         )]
         output: PathBuf,
+    },
+    /// Analyse a recorded run's frames again (the files still on disk) with
+    /// the run's settings, changed by --with, and record the result as a new
+    /// analysis of the run; prints how it compares with the first. Sends no alert.
+    Reprocess {
+        /// Configuration file whose [store] database to use.
+        #[arg(long)]
+        config: Option<PathBuf>,
+        /// Database file (overrides the config).
+        #[arg(long)]
+        db: Option<PathBuf>,
+        /// Reprocess this run (by number) instead of the last one.
+        #[arg(long)]
+        run: Option<i64>,
+        /// A TOML file whose [segment], [measure] and [quality] keys replace
+        /// the run's (any other key is refused).
+        #[arg(long = "with", value_name = "FILE")]
+        with: Option<PathBuf>,
+        /// Worker threads (default: one per core).
+        #[arg(long)]
+        workers: Option<usize>,
     },
     /// Replay an invented overnight plate time-lapse into a new folder while the
     /// watch service records it, then tell what happened (a few seconds). The
@@ -172,6 +205,7 @@ fn main() -> ExitCode {
             json,
             recent,
             run,
+            analysis,
             utc,
         } => {
             let settings = match load_settings(config.as_deref()) {
@@ -179,7 +213,7 @@ fn main() -> ExitCode {
                 Err(code) => return code,
             };
             let db = db.unwrap_or(settings.store.database);
-            match framewarden::status::read(&db, recent, run) {
+            match framewarden::status::read(&db, recent, run, analysis) {
                 Ok(report) if json => {
                     println!(
                         "{}",
@@ -206,6 +240,7 @@ fn main() -> ExitCode {
             config,
             db,
             run,
+            analysis,
             table,
             format,
             output,
@@ -215,7 +250,8 @@ fn main() -> ExitCode {
                 Err(code) => return code,
             };
             let db = db.unwrap_or(settings.store.database);
-            match framewarden::export::export(&db, run, table, format, output.as_deref()) {
+            match framewarden::export::export(&db, run, analysis, table, format, output.as_deref())
+            {
                 Ok(done) => {
                     if let Some(path) = &output {
                         eprintln!(
@@ -241,6 +277,7 @@ fn main() -> ExitCode {
             config,
             db,
             run,
+            analysis,
             output,
         } => {
             let settings = match load_settings(config.as_deref()) {
@@ -248,7 +285,7 @@ fn main() -> ExitCode {
                 Err(code) => return code,
             };
             let db = db.unwrap_or(settings.store.database);
-            match framewarden::html_report::write(&db, run, &output) {
+            match framewarden::html_report::write(&db, run, analysis, &output) {
                 Ok(w) => {
                     println!(
                         "wrote the report of run {} to {} ({} kB)",
@@ -261,6 +298,36 @@ fn main() -> ExitCode {
                 Err(e) => {
                     eprintln!("framewarden report: {e}");
                     ExitCode::from(FAILURE)
+                }
+            }
+        }
+        Command::Reprocess {
+            config,
+            db,
+            run,
+            with,
+            workers,
+        } => {
+            let settings = match load_settings(config.as_deref()) {
+                Ok(s) => s,
+                Err(code) => return code,
+            };
+            let request = framewarden::reprocess::Request {
+                db: db.unwrap_or(settings.store.database),
+                run,
+                with,
+                workers: workers
+                    .unwrap_or_else(framewarden::watch::default_workers)
+                    .max(1),
+            };
+            match framewarden::reprocess::reprocess(&request) {
+                Ok(comparison) => {
+                    print!("{}", framewarden::reprocess::render(&comparison));
+                    ExitCode::SUCCESS
+                }
+                Err(e) => {
+                    eprintln!("framewarden reprocess: {e}");
+                    ExitCode::from(if e.is_usage() { USAGE } else { FAILURE })
                 }
             }
         }

@@ -107,9 +107,10 @@ pub fn analyze_file(path: &Path, params: &PipelineParams) -> Result<FileAnalysis
     run(path, params, false).map(|(analysis, _)| analysis)
 }
 
-/// [`analyze_file`], and the label image of the first result (one value per
-/// pixel, row by row: the object's label as in `result.objects`, 0 for
-/// background).
+/// [`analyze_file`], and the label image of the result whose count is used
+/// ([`FileAnalysis::count_used`]): the recount's where there is one, else the
+/// first result's. One value per pixel, row by row: the object's label as in
+/// that result's `objects`, 0 for background.
 ///
 /// # Errors
 /// As [`analyze_file`].
@@ -149,17 +150,26 @@ fn run(
     };
     let pixel_size_um = pixel_size.map(|p| p.0);
     let frame = &decoded.frames[0];
-    let segmented = if want_labels {
-        segment_frame(frame, &extra, seg, pixel_size_um).map(|s| (s.result, Some(s.labels)))
-    } else {
-        crate::analysis::analyze_frame(frame, &extra, seg, pixel_size_um).map(|r| (r, None))
+    let segment = |seg: &SegmentParams| {
+        if want_labels {
+            segment_frame(frame, &extra, seg, pixel_size_um).map(|s| (s.result, Some(s.labels)))
+        } else {
+            crate::analysis::analyze_frame(frame, &extra, seg, pixel_size_um).map(|r| (r, None))
+        }
+        .map_err(analysis_error)
     };
-    let (result, labels) = segmented.map_err(analysis_error)?;
-    let recount = match &params.recount {
-        Some(recount) => recount
-            .run(frame, &extra, seg, &result, pixel_size_um)
-            .map_err(analysis_error)?,
-        None => None,
+    let (result, first_labels) = segment(seg)?;
+    let flattened = params
+        .recount
+        .as_ref()
+        .and_then(|recount| recount.flattened(seg, &result));
+    // The labels kept are those of the count used.
+    let (recount, labels) = match flattened {
+        Some(flat) => {
+            let (second, labels) = segment(&flat)?;
+            (Some(second), labels)
+        }
+        None => (None, first_labels),
     };
     let analysis = FileAnalysis {
         result,

@@ -11,6 +11,7 @@ use jiff::tz::TimeZone;
 use rusqlite::{params, Connection};
 use serde::Serialize;
 
+use crate::store::analyses::Shown;
 use crate::store::{
     self, iso_time_sql, now_ms, StoreError, ACQUISITION_ORDER_SQL, COUNTED_SQL, COUNT_USED_SQL,
     POSITION_SQL,
@@ -95,6 +96,11 @@ pub struct RunInfo {
     pub started_at: String,
     /// `None` while the run is being watched.
     pub ended_at: Option<String>,
+    /// The analysis shown, as `status --analysis K` takes it: 1 is the
+    /// watch service's, each `reprocess` adds the next.
+    pub analysis: i64,
+    /// How many analyses the run has.
+    pub analyses: i64,
 }
 
 /// One recorded version of a file, as `status` lists it.
@@ -127,10 +133,15 @@ pub struct RecentFrame {
 /// # Errors
 /// [`StoreError`] for a missing, foreign or unreadable database, or a run
 /// number it does not have.
-pub fn read(db: &Path, recent: usize, run: Option<i64>) -> Result<StatusReport, StoreError> {
+pub fn read(
+    db: &Path,
+    recent: usize,
+    run: Option<i64>,
+    analysis: Option<i64>,
+) -> Result<StatusReport, StoreError> {
     // One snapshot for every query, kept short so the WAL can be checkpointed.
-    store::read_run(db, run, |conn, run_id| {
-        query(conn, db, recent, run_id).map_err(|source| StoreError::Sqlite {
+    store::read_run(db, run, analysis, |conn, picked| {
+        query(conn, db, recent, picked).map_err(|source| StoreError::Sqlite {
             path: db.to_path_buf(),
             source,
         })
@@ -141,7 +152,7 @@ fn query(
     conn: &Connection,
     db: &Path,
     recent: usize,
-    run_id: Option<i64>,
+    picked: Option<Shown>,
 ) -> rusqlite::Result<StatusReport> {
     let mut report = StatusReport {
         database: db.display().to_string(),
@@ -162,9 +173,10 @@ fn query(
         flagged_frames: Vec::new(),
         positions: Vec::new(),
     };
-    let Some(run_id) = run_id else {
+    let Some(picked) = picked else {
         return Ok(report);
     };
+    let run_id = picked.run_id;
     let run = conn.query_row(
         &format!(
             "SELECT id, folders, {}, {} FROM runs WHERE id = ?1",
@@ -179,6 +191,8 @@ fn query(
                 folders: serde_json::from_str(&folders).unwrap_or_default(),
                 started_at: r.get(2)?,
                 ended_at: r.get(3)?,
+                analysis: picked.analysis,
+                analyses: picked.analyses,
             })
         },
     )?;
@@ -316,6 +330,17 @@ pub fn render(report: &StatusReport, zone: &TimeZone) -> String {
     );
     let _ = writeln!(
         out,
+        "analysis {} of {} ({}; --analysis N shows another)",
+        run.analysis,
+        run.analyses,
+        if run.analysis == 1 {
+            "the watch service's"
+        } else {
+            "a reprocess"
+        }
+    );
+    let _ = writeln!(
+        out,
         "frames: {} seen, {} done, {} queued, {} failed; {} objects ({} more removed by the size filter)",
         report.frames_seen,
         report.frames_done,
@@ -418,7 +443,7 @@ mod tests {
         let dir = tempfile::tempdir().unwrap();
         let db = dir.path().join("fw.db");
         drop(store::open_for_writing(&db).unwrap());
-        let report = read(&db, 5, None).unwrap();
+        let report = read(&db, 5, None, None).unwrap();
         assert_eq!(report.run, None);
         assert_eq!(report.frames_seen, 0);
         assert!(render(&report, &TimeZone::UTC).contains("no run recorded yet"));
@@ -441,10 +466,10 @@ mod tests {
                             (2, '/acq/tuesday/a.tif', 10, 1, 1, 'queued', 3000, 3000, NULL, NULL);",
             )
             .unwrap();
-        let last = read(&db, 5, None).unwrap();
+        let last = read(&db, 5, None, None).unwrap();
         assert_eq!(last.run.as_ref().map(|r| r.id), Some(2));
         assert_eq!((last.frames_seen, last.frames_queued), (1, 1));
-        let monday = read(&db, 5, Some(1)).unwrap();
+        let monday = read(&db, 5, Some(1), None).unwrap();
         let run = monday.run.as_ref().unwrap();
         assert_eq!(
             (run.id, run.folders.as_slice()),
@@ -452,7 +477,7 @@ mod tests {
         );
         assert_eq!((monday.frames_done, monday.objects_total), (2, 16));
         assert!(run.ended_at.is_some());
-        let err = read(&db, 5, Some(9)).unwrap_err().to_string();
+        let err = read(&db, 5, Some(9), None).unwrap_err().to_string();
         assert!(err.contains("has no run 9"), "{err}");
     }
 

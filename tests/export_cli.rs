@@ -1,7 +1,8 @@
 //! `framewarden export` on the real binary: every table of a small database,
-//! in CSV and Parquet, read back by pandas, pyarrow and DuckDB and compared row for
-//! row with what Python's sqlite3 module reads from the same file
-//! (`tests/reference/check_export.py`); standard output; and the bad cases
+//! in CSV and Parquet, read back by pandas, pyarrow and DuckDB, and the CSV
+//! files by base R's `read.csv`, and compared row for row with what Python's
+//! sqlite3 module reads from the same file (`tests/reference/check_export.py`,
+//! `read_export.R`, `check_export_r.py`); standard output; and the bad cases
 //! (missing database, unknown run, Parquet without a file, an empty database).
 
 // Shared by the test binaries; each uses only part of it.
@@ -89,15 +90,14 @@ fn ok(out: &Output) {
     );
 }
 
-#[test]
-fn every_table_reads_back_in_pandas_and_pyarrow_equal_to_the_database() {
-    let dir = tempfile::tempdir().unwrap();
-    let db = dir.path().join("fw.db");
-    small_database(&db);
+/// Exports every table of the last run of `db` into `dir` as
+/// `<table>.<format>` for each of `formats`, and the first run's frames as
+/// `frames_run1.csv`.
+fn export_all(dir: &Path, db: &Path, formats: &[&str]) {
     let db_arg = db.to_str().unwrap();
     for table in ["frames", "objects", "alerts", "flags"] {
-        for format in ["csv", "parquet"] {
-            let file = dir.path().join(format!("{table}.{format}"));
+        for format in formats {
+            let file = dir.join(format!("{table}.{format}"));
             let out = export(&[
                 "--db",
                 db_arg,
@@ -114,13 +114,10 @@ fn every_table_reads_back_in_pandas_and_pyarrow_equal_to_the_database() {
                 "{}",
                 String::from_utf8_lossy(&out.stderr)
             );
-            assert!(!dir
-                .path()
-                .join(format!("{table}.{format}.partial"))
-                .exists());
+            assert!(!dir.join(format!("{table}.{format}.partial")).exists());
         }
     }
-    let run1 = dir.path().join("frames_run1.csv");
+    let run1 = dir.join("frames_run1.csv");
     ok(&export(&[
         "--db",
         db_arg,
@@ -131,16 +128,58 @@ fn every_table_reads_back_in_pandas_and_pyarrow_equal_to_the_database() {
         "-o",
         run1.to_str().unwrap(),
     ]));
+}
+
+#[test]
+fn every_table_reads_back_in_pandas_and_pyarrow_equal_to_the_database() {
+    let dir = tempfile::tempdir().unwrap();
+    let db = dir.path().join("fw.db");
+    small_database(&db);
+    export_all(dir.path(), &db, &["csv", "parquet"]);
     // pandas, pyarrow and DuckDB against Python's sqlite3 (fails on any mismatch).
     common::run_reference_script("check_export.py", dir.path());
 
     // Without -o, CSV goes to standard output, the same bytes as the file.
-    let out = export(&["--db", db_arg, "--table", "objects"]);
+    let out = export(&["--db", db.to_str().unwrap(), "--table", "objects"]);
     ok(&out);
     assert_eq!(
         out.stdout,
         std::fs::read(dir.path().join("objects.csv")).unwrap()
     );
+}
+
+#[test]
+fn every_csv_table_reads_back_in_base_r_equal_to_the_database() {
+    // Base R (Debian's r-base-core; no R packages needed) is installed by
+    // .ci/run, which sets FRAMEWARDEN_REQUIRE_R=1 so that a missing Rscript
+    // fails there; a bare machine skips with the reason.
+    let rscript = Command::new("Rscript").arg("--version").output();
+    if !rscript.is_ok_and(|o| o.status.success()) {
+        let required = std::env::var("FRAMEWARDEN_REQUIRE_R").is_ok_and(|v| v == "1");
+        assert!(
+            !required,
+            "FRAMEWARDEN_REQUIRE_R=1 but Rscript does not run: apt-get install r-base-core"
+        );
+        eprintln!(
+            "SKIPPED the R check: Rscript does not run (apt-get install r-base-core; \
+             FRAMEWARDEN_REQUIRE_R=1 makes this a failure)"
+        );
+        return;
+    }
+    let dir = tempfile::tempdir().unwrap();
+    let db = dir.path().join("fw.db");
+    small_database(&db);
+    export_all(dir.path(), &db, &["csv"]);
+    // R's read.csv writes what it read in a canonical form
+    // (tests/reference/read_export.R), compared with Python's sqlite3.
+    let script = Path::new(env!("CARGO_MANIFEST_DIR")).join("tests/reference/read_export.R");
+    let out = Command::new("Rscript")
+        .arg(&script)
+        .arg(dir.path())
+        .output()
+        .unwrap();
+    ok(&out);
+    common::run_reference_script("check_export_r.py", dir.path());
 }
 
 #[test]
@@ -191,13 +230,23 @@ fn bad_input_gives_a_clear_error_naming_the_file() {
     assert_eq!(out.status.code(), Some(2));
     assert!(stderr(&out).contains("pass -o FILE"), "{}", stderr(&out));
 
-    let out = export(&["--db", db_arg, "--table", "cells"]);
-    assert_eq!(out.status.code(), Some(2));
-    assert!(
-        stderr(&out).contains("choose frames, objects, alerts or flags"),
-        "{}",
-        stderr(&out)
-    );
+    // An unknown name: the option, the name and the choices.
+    for (args, choices) in [
+        (
+            ["--table", "cells", "--format", "csv"],
+            "invalid value 'cells' for '--table <TABLE>'\n  [possible values: frames, objects, alerts, flags]",
+        ),
+        (
+            ["--table", "frames", "--format", "xlsx"],
+            "invalid value 'xlsx' for '--format <FORMAT>'\n  [possible values: csv, parquet]",
+        ),
+    ] {
+        let mut all = vec!["--db", db_arg];
+        all.extend(args);
+        let out = export(&all);
+        assert_eq!(out.status.code(), Some(2));
+        assert!(stderr(&out).contains(choices), "{}", stderr(&out));
+    }
 
     let unwritable = dir.path().join("no-such-folder").join("frames.csv");
     let out = export(&[

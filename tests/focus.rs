@@ -2,9 +2,15 @@
 //! (Gaussian σ ≥ 2 px) is flagged `out_of_focus` against its position's
 //! baseline, and the same sharp field with the lamp at 50% is not (the
 //! background and lamp checks catch that instead). Scenes carry shot noise and
-//! a camera offset, as a camera's frames do.
+//! a camera offset, as a camera's frames do: synthetic scenes, and a real
+//! fluorescence field of nuclei dimmed and blurred by SciPy.
+
+// Shared by the test binaries; each uses only part of it.
+#[allow(dead_code)]
+mod common;
 
 use framewarden::analysis::{analyze_frame, SegmentParams};
+use framewarden::decode::{self, DecodeLimits};
 use framewarden::frame::Frame;
 use framewarden::qc::flags::{frame_flags, FlagKind, PositionContext};
 use framewarden::qc::metrics::FrameMetrics;
@@ -121,6 +127,44 @@ fn blur_is_flagged_and_a_dimmer_lamp_is_not_on_synthetic_scenes() {
             out_of_focus(&m, base),
             flagged,
             "{what}: {} against {base}",
+            m.focus
+        );
+    }
+}
+
+#[test]
+fn blur_is_flagged_and_a_dimmer_lamp_is_not_on_a_real_image() {
+    // A real fluorescence field of cell nuclei (mahotas's demo image, MIT;
+    // see tests/reference/make_real_focus_frames.py), dimmed and blurred by
+    // SciPy and given camera noise by numpy, written by tifffile.
+    let dir = tempfile::tempdir().unwrap();
+    common::run_reference_script("make_real_focus_frames.py", dir.path());
+    let read = |name: &str| {
+        let path = dir.path().join(format!("{name}.tif"));
+        focus(&decode::read_page(&path, 0, &DecodeLimits::default()).unwrap())
+    };
+    let base: Vec<f64> = (1..=4)
+        .map(|i| read(&format!("baseline{i}")).focus)
+        .collect();
+    let base = base.iter().sum::<f64>() / base.len() as f64;
+    assert!(base > 0.0);
+    for (name, flagged) in [
+        ("lamp50", false),
+        ("lamp30", false),
+        ("blur2", true),
+        ("blur3", true),
+        ("blur2_lamp50", true),
+    ] {
+        let m = read(name);
+        eprintln!(
+            "real field, {name}: focus {:.4} = {:.0}% of the baseline {base:.4}",
+            m.focus,
+            100.0 * m.focus / base
+        );
+        assert_eq!(
+            out_of_focus(&m, base),
+            flagged,
+            "{name}: {} against {base}",
             m.focus
         );
     }

@@ -4,9 +4,10 @@
 //! `tests/reference/read_label_images.py`).
 //!
 //! Each image is checked against the objects rows of its frame: every label
-//! in the image is an object of the frame's first result (`result = 'raw'`,
-//! the same labels `analyze --labels` writes), with `area_px` pixels and its
-//! centroid, and every such object is in the image.
+//! in the image is an object of the result whose count is used (`result =
+//! 'recount'` where the uneven-illumination remedy ran, else `'raw'`; the same
+//! labels `analyze --labels` writes), with `area_px` pixels and its centroid,
+//! and every such object is in the image.
 
 mod common;
 #[allow(dead_code)]
@@ -45,13 +46,15 @@ fn frame_bytes(seed: u64, objects: usize, gradient: f64) -> Vec<u8> {
 }
 
 /// One recorded frame: its row id, whether it got a flag, where its count
-/// came from, and its first result's objects (label → area, centroid x, y).
+/// came from, the first result's count, and the objects of the result whose
+/// count is used (label → area, centroid x, y).
 #[derive(Debug)]
 struct Frame {
     id: i64,
     file: String,
     flagged: bool,
     count_source: Option<String>,
+    raw_count: i64,
     objects: BTreeMap<i64, (i64, f64, f64)>,
 }
 
@@ -59,7 +62,8 @@ fn frames(db: &Path) -> Vec<Frame> {
     let conn = Connection::open_with_flags(db, OpenFlags::SQLITE_OPEN_READ_ONLY).unwrap();
     let mut frames: Vec<Frame> = conn
         .prepare(
-            "SELECT id, file, EXISTS (SELECT 1 FROM flags WHERE frame_id = frames.id), count_source
+            "SELECT id, file, EXISTS (SELECT 1 FROM flags WHERE frame_id = frames.id), count_source,
+                    object_count
                FROM frames WHERE status = 'done' ORDER BY id",
         )
         .unwrap()
@@ -69,6 +73,7 @@ fn frames(db: &Path) -> Vec<Frame> {
                 file: r.get(1)?,
                 flagged: r.get(2)?,
                 count_source: r.get(3)?,
+                raw_count: r.get(4)?,
                 objects: BTreeMap::new(),
             })
         })
@@ -79,10 +84,10 @@ fn frames(db: &Path) -> Vec<Frame> {
         f.objects = conn
             .prepare(
                 "SELECT label, area_px, centroid_x, centroid_y FROM objects
-                  WHERE frame_id = ?1 AND result = 'raw'",
+                  WHERE frame_id = ?1 AND result = ?2",
             )
             .unwrap()
-            .query_map([f.id], |r| {
+            .query_map((f.id, f.count_source.as_deref().unwrap_or("raw")), |r| {
                 Ok((r.get(0)?, (r.get(1)?, r.get(2)?, r.get(3)?)))
             })
             .unwrap()
@@ -188,6 +193,12 @@ fn by_default_flagged_frames_get_an_image_that_matches_their_objects() {
         .find(|f| f.count_source.as_deref() == Some("recount"))
         .expect("the unevenly lit frame is recounted");
     assert!(recounted.file.ends_with("uneven.tif") && recounted.flagged);
+    // The recount found other objects, so the image tells the two apart.
+    assert_ne!(
+        recounted.objects.len() as i64,
+        recounted.raw_count,
+        "the recount changes the count"
+    );
 
     let images = read_back(&bench);
     let mut failures = Vec::new();

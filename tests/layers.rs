@@ -29,6 +29,7 @@ const LAYERS: &[&str] = &[
     "html_report",
     "daemon",
     "analyze",
+    "reprocess",
     "demo",
 ];
 

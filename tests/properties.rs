@@ -201,15 +201,16 @@ proptest! {
         conn in prop_oneof![Just(Connectivity::Four), Just(Connectivity::Eight)],
         fill in any::<bool>(),
         depth in prop_oneof![Just(0.5), Just(1.0), Just(2.0), Just(4.0)],
+        separation in prop_oneof![Just(0.0), Just(3.0), Just(10.0)],
     ) {
         let (w, h) = (f.width, f.height);
         let labelled = label(&f.pixels, w, h, 100, conn, fill);
         let (before, _) = coverage(&labelled, w, h);
         let mask: Vec<bool> = before.iter().map(|&n| n > 0).collect();
         let d = squared_edt(&mask, w, h);
-        let n_markers = markers(&d, &mask, w, h, conn, depth).iter().filter(|&&m| m > 0).count();
+        let n_markers = markers(&d, &mask, w, h, conn, depth, separation).iter().filter(|&&m| m > 0).count();
         let count_before = labelled.count;
-        let parts = split(labelled, w, h, conn, depth);
+        let parts = split(labelled, w, h, conn, depth, separation);
         let (after, all_used) = coverage(&parts, w, h);
         // The union of object pixels is unchanged, each pixel in one piece.
         prop_assert_eq!(&after, &before);

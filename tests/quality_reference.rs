@@ -1,7 +1,7 @@
 //! Corrections and frame-quality measures against SciPy and numpy (see
 //! tests/reference/make_quality_reference.py for each reference's definition):
-//! Gaussian smoothing vs `scipy.ndimage.gaussian_filter`, focus vs the variance
-//! of `scipy.ndimage.laplace`, background level vs `numpy.median`, saturation vs
+//! Gaussian smoothing vs `scipy.ndimage.gaussian_filter`, focus vs
+//! `scipy.ndimage.convolve` and `laplace` with numpy's variance, background level vs `numpy.median`, saturation vs
 //! `numpy.mean`, the illumination surface vs `numpy.linalg.lstsq`, flat-field vs
 //! the formula in float64, Sarle's bimodality coefficient vs `scipy.stats`, the
 //! rolling-ball background vs SciPy's grey erosion and dilation by the
@@ -119,9 +119,9 @@ fn corrections_and_quality_match_scipy_and_numpy() {
         if rel(bc, c.bimodality) > 1e-9 {
             failures.push(format!("{}: bimodality {bc} vs {}", c.name, c.bimodality));
         }
-        // The boundary length make_quality_reference.py uses (BOUNDARY_PX).
-        let q = assess(&frame, &hist, None, c.threshold, 1000.0);
-        // Integer sums here, float64 in numpy: agreement to 1e-9 relative.
+        let q = assess(&frame, &hist, None, c.threshold);
+        // Integer kernels and f64 sums here, float64 convolutions in numpy:
+        // agreement to 1e-9 relative.
         if rel(q.focus, c.focus) > 1e-9 {
             failures.push(format!("{}: focus {} vs {}", c.name, q.focus, c.focus));
         }

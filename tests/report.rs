@@ -10,6 +10,7 @@ mod common;
 #[allow(dead_code)]
 mod watch_support;
 
+use std::collections::BTreeMap;
 use std::path::{Path, PathBuf};
 use std::process::Command;
 use std::sync::OnceLock;
@@ -26,6 +27,10 @@ struct Run {
     report: PathBuf,
     /// Frame id -> its label image (flagged frames, but one).
     label_images: Vec<(i64, PathBuf)>,
+    /// The flagged frame whose label image was moved aside (so its picture is
+    /// segmented again), one whose count used is the recount's and differs
+    /// from the first result's, with where its image now is.
+    resegmented: (i64, PathBuf),
 }
 
 fn run_ok(cmd: &mut Command) -> String {
@@ -42,7 +47,7 @@ fn run_ok(cmd: &mut Command) -> String {
 
 /// The built-in demo, faster (time points 0.1 s apart), recorded into
 /// a temporary folder with the label images the service keeps for flagged
-/// frames, but one (re-segmented for its picture).
+/// frames, but one recounted frame's (re-segmented for its picture).
 fn run() -> &'static Run {
     static RUN: OnceLock<Run> = OnceLock::new();
     RUN.get_or_init(|| {
@@ -66,31 +71,54 @@ fn run() -> &'static Run {
             .unwrap_or_else(|| panic!("no kept folder:\n{stdout}"));
         let db = PathBuf::from(kept).join("framewarden.db");
         // The service wrote a label image for each flagged frame (the default
-        // `label_images = "flagged"`); one is removed, so that its picture's
-        // outlines come from segmenting the file again.
+        // `label_images = "flagged"`); one of a frame whose count is the
+        // recount's is moved aside, so that its picture's outlines come from
+        // segmenting the file again.
         let conn = rusqlite::Connection::open(&db).unwrap();
-        let flagged: Vec<i64> = conn
-            .prepare("SELECT id FROM frames WHERE EXISTS (SELECT 1 FROM flags WHERE frame_id = frames.id) ORDER BY id")
+        let flagged: Vec<(i64, bool)> = conn
+            .prepare(
+                "SELECT id, COALESCE(count_source = 'recount' AND recount_object_count != object_count, 0)
+                   FROM frames WHERE EXISTS (SELECT 1 FROM flags WHERE frame_id = frames.id)
+                  ORDER BY id",
+            )
             .unwrap()
-            .query_map([], |r| r.get(0))
+            .query_map([], |r| Ok((r.get(0)?, r.get(1)?)))
             .unwrap()
             .map(Result::unwrap)
             .collect();
+        let recounted = flagged
+            .iter()
+            .find(|f| f.1)
+            .expect("the demo recounts a flagged frame to another count")
+            .0;
         let mut label_images: Vec<(i64, PathBuf)> = flagged
             .iter()
-            .map(|&id| (id, framewarden::store::label_image_path(&db, id)))
+            .map(|&(id, _)| (id, framewarden::store::label_image_path(&db, id)))
             .filter(|(_, p)| p.exists())
             .collect();
-        assert!(label_images.len() >= 2, "the demo flags frames and keeps their label images");
-        let (_, removed) = label_images.pop().unwrap();
-        std::fs::remove_file(removed).unwrap();
+        assert!(
+            label_images.len() >= 2,
+            "the demo flags frames and keeps their label images"
+        );
+        let at = label_images.iter().position(|f| f.0 == recounted).unwrap();
+        let (_, image) = label_images.remove(at);
+        let aside = dir.path().join("moved-aside.tif");
+        std::fs::rename(image, &aside).unwrap();
         let report = dir.path().join("report.html");
-        run_ok(Command::new(BIN).arg("report").arg("--db").arg(&db).arg("-o").arg(&report));
+        run_ok(
+            Command::new(BIN)
+                .arg("report")
+                .arg("--db")
+                .arg(&db)
+                .arg("-o")
+                .arg(&report),
+        );
         Run {
             _dir: dir,
             db,
             report,
             label_images,
+            resegmented: (recounted, aside),
         }
     })
 }
@@ -103,24 +131,51 @@ fn script(name: &str, input: Value) -> Value {
     serde_json::from_str(&std::fs::read_to_string(out.path().join("result.json")).unwrap()).unwrap()
 }
 
+/// The objects rows of a frame's result whose count is used: label -> area.
+fn counted_objects(db: &Path, frame_id: i64) -> BTreeMap<String, i64> {
+    let conn = rusqlite::Connection::open(db).unwrap();
+    let mut stmt = conn
+        .prepare(
+            "SELECT o.label, o.area_px FROM objects o JOIN frames f ON f.id = o.frame_id
+              WHERE f.id = ?1 AND o.result = COALESCE(f.count_source, 'raw')",
+        )
+        .unwrap();
+    let rows = stmt
+        .query_map([frame_id], |r| {
+            Ok((r.get::<_, i64>(0)?.to_string(), r.get(1)?))
+        })
+        .unwrap()
+        .map(Result::unwrap)
+        .collect();
+    rows
+}
+
 #[test]
 fn outlines_lie_on_the_object_borders_of_the_label_image() {
     let run = run();
     let html = std::fs::read_to_string(&run.report).unwrap();
-    // The frames with a label image use it; the others (the removed one and
-    // the unflagged frames shown for comparison) are segmented again from
+    // The frames with a label image use it; the others (the one moved aside
+    // and the unflagged frames shown for comparison) are segmented again from
     // their files with the run's stored settings, and the page says so.
     assert_eq!(
         html.matches("data-outlines=\"label-image\"").count(),
         run.label_images.len()
     );
-    assert!(html.contains("data-outlines=\"resegmented\""));
+    let recounted = run.resegmented.0;
+    let tag = html
+        .split("<img ")
+        .find(|t| t.starts_with(&format!("class=\"overlay\" data-frame-id=\"{recounted}\"")))
+        .expect("the recounted frame has a picture");
+    assert!(tag.contains("data-outlines=\"resegmented\""), "{tag:.200}");
     assert!(
         html.contains("outlines from segmenting the file again with the run&#39;s stored settings")
     );
+    // Every picture with a label image, and the re-segmented one against the
+    // image the service kept for it.
     let images: serde_json::Map<String, Value> = run
         .label_images
         .iter()
+        .chain(std::iter::once(&run.resegmented))
         .map(|(id, p)| (id.to_string(), json!(p)))
         .collect();
     let result = script(
@@ -128,19 +183,33 @@ fn outlines_lie_on_the_object_borders_of_the_label_image() {
         json!({"report": run.report, "label_images": images}),
     );
     let checked = result["checked"].as_array().unwrap();
-    assert_eq!(checked.len(), run.label_images.len(), "{result}");
+    assert_eq!(checked.len(), images.len(), "{result}");
     assert!(
         checked
             .iter()
             .all(|c| c["outline_px"].as_u64().unwrap() > 20),
         "{result}"
     );
-    let mismatches: Vec<String> = result["mismatches"]
+    let mut mismatches: Vec<String> = result["mismatches"]
         .as_array()
         .unwrap()
         .iter()
         .map(|m| m.as_str().unwrap().to_string())
         .collect();
+    // Each label image holds the objects counted (the recount's where it
+    // ran): its labels and their pixel counts are those objects rows.
+    for c in checked {
+        let id: i64 = c["frame"].as_str().unwrap().parse().unwrap();
+        let areas: BTreeMap<String, i64> = serde_json::from_value(c["areas"].clone()).unwrap();
+        let rows = counted_objects(&run.db, id);
+        if areas != rows {
+            mismatches.push(format!(
+                "frame {id}: {} labels in its image, {} objects counted",
+                areas.len(),
+                rows.len()
+            ));
+        }
+    }
     common::check(
         mismatches,
         "outline pixels against the label image's borders",
@@ -304,4 +373,83 @@ fn watch_rewrites_the_report_every_interval_and_when_it_stops() {
         .collect();
     assert_eq!(names, vec![std::ffi::OsString::from("report.html")]);
     assert!(bench.logs().contains("report of run 1 written to"));
+}
+
+/// The x coordinates of the count line (the blue polyline) in the count plot
+/// of `position`.
+fn count_line_x(html: &str, position: &str) -> Vec<f64> {
+    let figure = html
+        .split("<figure class=\"position\"")
+        .find(|f| f.starts_with(&format!(" data-position=\"{position}\"")))
+        .unwrap_or_else(|| panic!("no count plot for {position}"));
+    let line = figure
+        .split("<polyline")
+        .find(|l| l.contains("stroke=\"#0072B2\""))
+        .expect("a count line");
+    let points = line
+        .split("points=\"")
+        .nth(1)
+        .and_then(|p| p.split('"').next())
+        .expect("the line's points");
+    points
+        .split_whitespace()
+        .map(|xy| xy.split(',').next().unwrap().parse().unwrap())
+        .collect()
+}
+
+#[test]
+fn a_run_recorded_after_the_fact_plots_at_acquisition_times() {
+    // Five time points acquired hours ago, unevenly spaced (minutes after the
+    // first), copied in with their modification times kept, then watched: all
+    // are recorded within seconds of each other.
+    let minutes = [0u64, 10, 20, 60, 120];
+    let mut bench = watch_support::Bench::new(
+        "name_pattern = '^(?P<well>[A-Z]\\d{2})_t(?P<time_point>\\d+)\\.tif$'\n",
+    );
+    let first = std::time::SystemTime::now() - Duration::from_secs(6 * 3600);
+    for (t, &m) in minutes.iter().enumerate() {
+        let (bytes, _) = watch_support::tiff_bytes(70 + t as u64, 96, 6);
+        let path = bench.write(&format!("A01_t{t:04}.tif"), &bytes);
+        std::fs::File::options()
+            .write(true)
+            .open(&path)
+            .unwrap()
+            .set_modified(first + Duration::from_secs(m * 60))
+            .unwrap();
+    }
+    bench.start();
+    bench.wait_finished(minutes.len(), Duration::from_secs(120));
+    bench.signal("TERM");
+    assert_eq!(
+        bench.wait_exit(Duration::from_secs(60)),
+        Some(0),
+        "{}",
+        bench.logs()
+    );
+    let report = bench.dir.path().join("report.html");
+    run_ok(
+        Command::new(BIN)
+            .arg("report")
+            .arg("--db")
+            .arg(&bench.db)
+            .arg("-o")
+            .arg(&report),
+    );
+    let html = std::fs::read_to_string(&report).unwrap();
+
+    // The line's points are where the mtimes put them: the same fractions
+    // of the first-to-last span (pixels are whole numbers: within 1.5 px).
+    let x = count_line_x(&html, "A01");
+    assert_eq!(x.len(), minutes.len(), "{x:?}");
+    let span = x[x.len() - 1] - x[0];
+    assert!(span > 100.0, "the points spread over the plot: {x:?}");
+    for (xi, &m) in x.iter().zip(&minutes) {
+        let expected = x[0] + span * m as f64 / 120.0;
+        assert!(
+            (xi - expected).abs() <= 1.5,
+            "x {x:?} against minutes {minutes:?}: {xi} where {expected} was expected"
+        );
+    }
+    // The page says which time the axes show.
+    assert!(html.contains("The plots' time axes are acquisition times"));
 }

@@ -36,14 +36,12 @@ pub struct FrameQuality {
 const GRID: usize = 16;
 
 /// Measures `raw`; `segmented` is the frame the threshold `t` applies to
-/// (`None` when it is `raw` itself), so background pixels are `segmented <= t`;
-/// `boundary_px` is the summed perimeter of the kept objects (for [`focus`]).
+/// (`None` when it is `raw` itself), so background pixels are `segmented <= t`.
 pub fn assess(
     raw: &Frame,
     raw_hist: &Histogram,
     segmented: Option<&Frame>,
     t: u16,
-    boundary_px: f64,
 ) -> FrameQuality {
     let n = raw.len().max(1) as f64;
     let saturation_fraction = raw_hist.counts[usize::from(raw.max_value())] as f64 / n;
@@ -66,19 +64,7 @@ pub fn assess(
     }
     .unwrap_or(0.0);
     let illumination_change = illumination(block_sum, block_n, gx, gy, w * h / (gx * gy));
-    // Mean raw value of the pixels that are not background.
-    let bg_n: u64 = block_n.iter().sum();
-    let bg_sum: u64 = block_sum.iter().sum();
-    let all_sum: u64 = (raw_hist.counts.iter().enumerate())
-        .map(|(v, &c)| v as u64 * c)
-        .sum();
-    let fg_n = raw.len() as u64 - bg_n.min(raw.len() as u64);
-    let contrast = if fg_n > 0 {
-        (all_sum - bg_sum.min(all_sum)) as f64 / fg_n as f64 - background_level
-    } else {
-        0.0
-    };
-    let focus = focus(&sums, w, h, contrast, boundary_px);
+    let focus = focus(raw, background_level);
     FrameQuality {
         background_level,
         saturation_fraction,
@@ -97,58 +83,155 @@ struct RowSums {
     /// Histogram of the background's raw values, when segmentation ran on a
     /// corrected frame (otherwise the raw histogram below `t` is it).
     bg_hist: Option<Vec<u64>>,
-    /// Sum of the 4-neighbour Laplacian over the interior.
-    lap_sum: i128,
-    /// Sum of its squares.
-    lap_sq: u128,
-    /// The same two sums over the interior's background pixels only.
-    lap_bg_sum: i128,
-    /// Sum of the background's squared Laplacian.
-    lap_bg_sq: u128,
-    /// Interior background pixels.
-    lap_bg_n: u64,
 }
 
-/// Sharpness of the objects' edges: the energy of the 4-neighbour Laplacian
-/// (its variance over the frame, the focus measure of Pech-Pacheco et al.
-/// 2000, "Diatom autofocusing in brightfield microscopy: a comparative
-/// study", ICPR) above the noise floor measured on the background's own
-/// pixels, per pixel of object boundary, in units of the object-background
-/// contrast squared. The normalisation is ours: a dimmer lamp scales the
-/// Laplacian and the contrast alike, so the ratio stays (noise aside, which
-/// the floor removes); more or fewer objects change the boundary length and
-/// the energy alike. For an edge blurred by a Gaussian of σ pixels the value
-/// falls roughly as 1/σ³. 0 without objects, boundary or contrast.
-fn focus(sums: &RowSums, w: usize, h: usize, contrast: f64, boundary_px: f64) -> f64 {
-    let variance = |sum: i128, sq: u128, n: f64| {
-        if n > 0.0 {
-            let mean = sum as f64 / n;
-            (sq as f64 / n - mean * mean).max(0.0)
-        } else {
-            0.0
-        }
-    };
-    let interior = (w.saturating_sub(2) * h.saturating_sub(2)) as f64;
-    if interior == 0.0 || boundary_px <= 0.0 || contrast <= 0.0 {
+/// Sharpness of the frame, independent of the lamp's brightness, the camera's
+/// offset and its noise, and of how the frame was segmented: the energy of
+/// the Laplacian of the binomially smoothed frame, above its share of the
+/// noise, per unit of signal energy above the background,
+///
+/// ```text
+/// focus = (var(L) - v·Σk_L²) / (mean((B - b)²) - v·Σk_B²)
+/// ```
+///
+/// - `B`: the frame smoothed by the 3 × 3 binomial kernel `k_B = [1 2 1]ᵀ[1 2 1] / 16`
+///   (a Gaussian of σ ≈ 0.7 px), over the frame less a 1-pixel border;
+/// - `L`: the 4-neighbour Laplacian of `B` (kernel `k_L`, 5 × 5), less a 2-pixel
+///   border: the variance-of-Laplacian focus measure (Pech-Pacheco et al.
+///   2000, "Diatom autofocusing in brightfield microscopy: a comparative
+///   study", ICPR) on a lightly smoothed frame, so the noise's share is small;
+/// - `v`: the noise variance per pixel by Immerkær's estimator (1996, "Fast
+///   noise variance estimation", Computer Vision and Image Understanding
+///   64:300–302): the variance of the frame filtered by
+///   `[1 −2 1; −2 4 −2; 1 −2 1]`, over 36 (the kernel's energy), which smooth
+///   structure hardly reaches; white noise of variance `v` adds `v·Σk²` to the
+///   energy behind any kernel `k`, which is subtracted;
+/// - `b`: the background level.
+///
+/// The normalisation is ours. A dimmer lamp scales `L` and `B - b` alike, and
+/// the noise terms remove what shot noise adds, so the ratio stays; a blur
+/// of σ px removes the fine structure `L` sees (a Gaussian blur of σ = 2 px
+/// takes a real field of nuclei to about a third of its value, σ = 3 px to a
+/// sixth; tests/focus.rs). 0 for frames under 5 × 5 or without signal above
+/// the noise. Units: 1/px⁴.
+fn focus(raw: &Frame, background_level: f64) -> f64 {
+    let e = focus_energies(raw);
+    if e.l_n == 0 || e.b_n == 0 || e.n_n == 0 {
         return 0.0;
     }
-    let all = variance(sums.lap_sum, sums.lap_sq, interior);
-    let noise = variance(sums.lap_bg_sum, sums.lap_bg_sq, sums.lap_bg_n as f64);
-    (all - noise).max(0.0) * interior / (boundary_px * contrast * contrast)
+    let mean_var = |sum: f64, sq: f64, n: u64| {
+        let (mean, n) = (sum / n as f64, n as f64);
+        (sq / n - mean * mean).max(0.0)
+    };
+    // The sums are of 16 × B and 16 × L (integer kernels).
+    let var_l = mean_var(e.l_sum, e.l_sq, e.l_n) / 256.0;
+    let noise = mean_var(e.n_sum, e.n_sq, e.n_n) / 36.0;
+    let n = e.b_n as f64;
+    let b = background_level;
+    let signal = e.b_sq / (256.0 * n) - 2.0 * b * e.b_sum / (16.0 * n) + b * b;
+    let top = var_l - noise * LOG_KERNEL_ENERGY;
+    let bottom = signal - noise * BINOMIAL_KERNEL_ENERGY;
+    if top <= 0.0 || bottom <= 0.0 {
+        0.0
+    } else {
+        top / bottom
+    }
+}
+
+/// Σk² of the 3 × 3 binomial kernel `[1 2 1]ᵀ[1 2 1] / 16`: (6/16)².
+const BINOMIAL_KERNEL_ENERGY: f64 = 0.140625;
+
+/// Σk² of the 4-neighbour Laplacian of that kernel (5 × 5, entries in
+/// sixteenths): its rows are `[0 1 2 1 0]`, `[1 0 −2 0 1]`, `[2 −2 −8 −2 2]`,
+/// `[1 0 −2 0 1]`, `[0 1 2 1 0]`, so Σk² = (6 + 6 + 80 + 6 + 6) / 256 =
+/// 104 / 256 (checked against `scipy.signal.convolve2d` of the two kernels).
+const LOG_KERNEL_ENERGY: f64 = 104.0 / 256.0;
+
+/// The sums behind [`focus`]: of `16·B` and its square (`b_*`), of `16·L` and
+/// its square (`l_*`), and of the noise filter's output and its square (`n_*`).
+#[derive(Debug, Default, PartialEq)]
+struct FocusEnergies {
+    b_sum: f64,
+    b_sq: f64,
+    b_n: u64,
+    l_sum: f64,
+    l_sq: f64,
+    l_n: u64,
+    n_sum: f64,
+    n_sq: f64,
+    n_n: u64,
+}
+
+multiversion! {
+    /// One pass over the rows for [`focus`], keeping the last three rows of
+    /// `16·B` (the binomial smoothing, integer) to take their Laplacian.
+    fn focus_energies(raw: &Frame) -> FocusEnergies {
+        let (w, h) = (raw.width, raw.height);
+        let mut e = FocusEnergies::default();
+        if w < 5 || h < 5 {
+            return e;
+        }
+        // 16·B of rows y - 2, y - 1, y (index y % 3), defined on x in 1..w-1.
+        let mut smooth = [vec![0i32; w], vec![0i32; w], vec![0i32; w]];
+        for y in 1..h - 1 {
+            let (up, row, down) = (raw.row(y - 1), raw.row(y), raw.row(y + 1));
+            let out = &mut smooth[y % 3];
+            let (mut b_sum, mut b_sq, mut n_sum, mut n_sq) = (0i64, 0f64, 0i64, 0f64);
+            for (x, slot) in out.iter_mut().enumerate().take(w - 1).skip(1) {
+                let c = |r: &[u16], i: usize| i32::from(r[i]);
+                // Horizontal [1 2 1] and [1 -2 1] of the three rows.
+                let (su, sr, sd) = (
+                    c(up, x - 1) + 2 * c(up, x) + c(up, x + 1),
+                    c(row, x - 1) + 2 * c(row, x) + c(row, x + 1),
+                    c(down, x - 1) + 2 * c(down, x) + c(down, x + 1),
+                );
+                let (du, dr, dd) = (
+                    c(up, x - 1) - 2 * c(up, x) + c(up, x + 1),
+                    c(row, x - 1) - 2 * c(row, x) + c(row, x + 1),
+                    c(down, x - 1) - 2 * c(down, x) + c(down, x + 1),
+                );
+                let b = su + 2 * sr + sd;
+                let noise = du - 2 * dr + dd;
+                *slot = b;
+                b_sum += i64::from(b);
+                b_sq += f64::from(b) * f64::from(b);
+                n_sum += i64::from(noise);
+                n_sq += f64::from(noise) * f64::from(noise);
+            }
+            e.b_sum += b_sum as f64;
+            e.b_sq += b_sq;
+            e.b_n += (w - 2) as u64;
+            e.n_sum += n_sum as f64;
+            e.n_sq += n_sq;
+            e.n_n += (w - 2) as u64;
+            // The Laplacian of row y - 1 of B, for x in 2..w-2.
+            if y >= 3 {
+                let (above, mid, below) = (&smooth[(y - 2) % 3], &smooth[(y - 1) % 3], &smooth[y % 3]);
+                let (mut l_sum, mut l_sq) = (0i64, 0f64);
+                for x in 2..w - 2 {
+                    let l = above[x] + below[x] + mid[x - 1] + mid[x + 1] - 4 * mid[x];
+                    l_sum += i64::from(l);
+                    l_sq += f64::from(l) * f64::from(l);
+                }
+                e.l_sum += l_sum as f64;
+                e.l_sq += l_sq;
+                e.l_n += (w - 4) as u64;
+            }
+        }
+        e
+    }
 }
 
 multiversion! {
     /// The pass over the rows behind [`assess`]: background sums per block of
-    /// a `gx × gy` grid, the background histogram when `segmented` is given,
-    /// and the Laplacian's sums. Background is `segmented <= t` (`raw` when
-    /// `segmented` is `None`).
+    /// a `gx × gy` grid, and the background histogram when `segmented` is
+    /// given. Background is `segmented <= t` (`raw` when `segmented` is
+    /// `None`).
     fn row_sums(raw: &Frame, segmented: Option<&Frame>, t: u16, gx: usize, gy: usize) -> RowSums {
         let (w, h) = (raw.width, raw.height);
         let mut block_sum = vec![0u64; gx * gy];
         let mut block_n = vec![0u64; gx * gy];
         let mut bg_hist = segmented.map(|_| vec![0u64; raw.levels()]);
-        let (mut lap_sum, mut lap_sq) = (0i128, 0u128);
-        let (mut lap_bg_sum, mut lap_bg_sq, mut lap_bg_n) = (0i128, 0u128, 0u64);
         // Column span of each block, so the inner loops run over contiguous slices.
         let col_start: Vec<usize> = (0..=gx).map(|b| b * w / gx).collect();
         for y in 0..h {
@@ -168,25 +251,11 @@ multiversion! {
                     }
                 }
             }
-            if y >= 1 && y + 1 < h && w >= 3 {
-                let (up, down) = (raw.row(y - 1), raw.row(y + 1));
-                let l = laplacian_sums(up, row, down, seg_row, t);
-                lap_sum += i128::from(l.sum);
-                lap_sq += u128::from(l.sq);
-                lap_bg_sum += i128::from(l.bg_sum);
-                lap_bg_sq += u128::from(l.bg_sq);
-                lap_bg_n += l.bg_n;
-            }
         }
         RowSums {
             block_sum,
             block_n,
             bg_hist,
-            lap_sum,
-            lap_sq,
-            lap_bg_sum,
-            lap_bg_sq,
-            lap_bg_n,
         }
     }
 }
@@ -208,46 +277,6 @@ fn masked_sum(values: &[u16], seg: &[u16], t: u16) -> (u64, u64) {
         n += u64::from(n32);
     }
     (sum, n)
-}
-
-/// The Laplacian's sums over one row's interior, all pixels and background
-/// pixels (`seg <= t`) apart.
-struct LaplacianSums {
-    sum: i64,
-    sq: u64,
-    bg_sum: i64,
-    bg_sq: u64,
-    bg_n: u64,
-}
-
-/// Sum and sum of squares of the 4-neighbour Laplacian over the interior of
-/// one row (`up` and `down` are the rows above and below; at least 3 wide),
-/// and the same over its background pixels (`seg <= t`). Always inlined, like
-/// [`masked_sum`].
-#[inline(always)]
-fn laplacian_sums(up: &[u16], row: &[u16], down: &[u16], seg: &[u16], t: u16) -> LaplacianSums {
-    let w = row.len();
-    let mut l = LaplacianSums {
-        sum: 0,
-        sq: 0,
-        bg_sum: 0,
-        bg_sq: 0,
-        bg_n: 0,
-    };
-    // |lap| <= 4 * 65535, so i32 holds it and its square fits u64.
-    for x in 1..w - 1 {
-        let lap =
-            i32::from(up[x]) + i32::from(down[x]) + i32::from(row[x - 1]) + i32::from(row[x + 1])
-                - 4 * i32::from(row[x]);
-        let sq = (i64::from(lap) * i64::from(lap)) as u64;
-        let bg = i64::from(seg[x] <= t);
-        l.sum += i64::from(lap);
-        l.sq += sq;
-        l.bg_sum += i64::from(lap) * bg;
-        l.bg_sq += sq * bg as u64;
-        l.bg_n += bg as u64;
-    }
-    l
 }
 
 /// Fits `z = a + b·u + c·v + d·u² + e·v² + f·u·v` (u, v in [-1, 1] across the
@@ -363,7 +392,7 @@ mod tests {
     #[test]
     fn flat_frame_has_no_illumination_change_and_no_focus() {
         let f = frame16(64, 48, |_, _| 1000);
-        let q = assess(&f, &Histogram::of(&f), None, 1000, 0.0);
+        let q = assess(&f, &Histogram::of(&f), None, 1000);
         assert_eq!(
             (q.focus, q.background_level, q.saturation_fraction),
             (0.0, 1000.0, 0.0)
@@ -378,7 +407,7 @@ mod tests {
         // mean is 1000 + 10·(4i + 1.5), from 1015 to 1615; the surface spans exactly
         // that, mean 1315: change = 600 / 1315.
         let f = frame16(64, 64, |x, _| 1000 + 10 * x as u16);
-        let q = assess(&f, &Histogram::of(&f), None, u16::MAX, 0.0);
+        let q = assess(&f, &Histogram::of(&f), None, u16::MAX);
         assert!(
             (q.illumination_change - 600.0 / 1315.0).abs() < 1e-9,
             "{}",
@@ -390,38 +419,38 @@ mod tests {
 
     #[test]
     fn focus_by_hand() {
-        // A 4x3 frame, rows [2 2 2 2], [2 10 2 2], [2 2 2 2], threshold 5: one
-        // object pixel (value 10) and background 2 (median), contrast 10 - 2 = 8.
-        // Interior pixels (1,1) and (2,1): lap(1,1) = 4·2 - 4·10 = -32,
-        // lap(2,1) = (2 + 2 + 10 + 2) - 4·2 = 8; mean -12, variance
-        // ((-20)² + 20²) / 2 = 400 over 2 pixels. The background's interior
-        // pixel (2,1) alone has variance 0 (the noise floor). With a boundary of
-        // 4 px: focus = (400 - 0) · 2 / (4 · 8²) = 3.125.
-        let f = Frame {
-            width: 4,
-            height: 3,
-            bit_depth: 8,
-            pixels: vec![2, 2, 2, 2, 2, 10, 2, 2, 2, 2, 2, 2],
-        };
-        let focus = |boundary| assess(&f, &Histogram::of(&f), None, 5, boundary).focus;
-        assert_eq!(focus(4.0), 3.125);
-        // The same frame with the lamp at half and an offset of 7: unchanged.
+        // A vertical step edge, 8 x 6, 8-bit: every row 0 0 0 0 16 16 16 16.
+        // Columns are constant, so the vertical [1 2 1] sums to 4 and the
+        // vertical [1 -2 1] to 0: the noise filter gives 0 everywhere (v = 0).
+        // 16·B on x = 1..=6: 4 × (horizontal [1 2 1]) = 0 0 64 192 256 256,
+        // on 4 rows. 16·L on x = 2..=5 (2 rows), horizontal second
+        // difference: 64 64 -64 -64: mean 0, var(L) = 64² / 256 = 16. The
+        // background (t = 8) has median 0; mean(B²) = (4² + 12² + 16² + 16²)
+        // / 6 = 112. Focus = 16 / 112 = 1/7.
+        let row = [0u8, 0, 0, 0, 16, 16, 16, 16];
+        let f = Frame::from_rows_u8(&[&row[..]; 6]);
+        let focus = |f: &Frame, t| assess(f, &Histogram::of(f), None, t).focus;
+        assert!((focus(&f, 8) - 1.0 / 7.0).abs() < 1e-15, "{}", focus(&f, 8));
+        // The lamp at half and an offset of 7: the same (background 7).
         let dim = Frame {
             pixels: f.pixels.iter().map(|&v| v / 2 + 7).collect(),
             ..f.clone()
         };
-        assert_eq!(
-            assess(&dim, &Histogram::of(&dim), None, 9, 4.0).focus,
-            3.125
-        );
-        // No objects, no boundary: 0.
-        assert_eq!(focus(0.0), 0.0);
+        assert!((focus(&dim, 10) - 1.0 / 7.0).abs() < 1e-15);
+        // A single bright pixel is what noise looks like to Immerkær's
+        // filter (centre 4, edges -2, corners 1, against the binomial's 4, 2,
+        // 1): its whole energy is taken as noise, and nothing is left.
+        let mut dot = Frame::from_rows_u8(&[&[0u8; 7][..]; 7]);
+        dot.pixels[3 * 7 + 3] = 16;
+        assert_eq!(focus(&dot, 8), 0.0);
+        // Under 5 x 5: 0.
+        assert_eq!(focus(&Frame::from_rows_u8(&[&row[..4]; 4]), 8), 0.0);
     }
 
     #[test]
     fn saturation_and_background_median() {
         let f = Frame::from_rows_u8(&[&[255, 10, 12], &[14, 200, 255]]);
-        let q = assess(&f, &Histogram::of(&f), None, 100, 0.0);
+        let q = assess(&f, &Histogram::of(&f), None, 100);
         assert!((q.saturation_fraction - 2.0 / 6.0).abs() < 1e-12);
         assert_eq!(q.background_level, 12.0); // median of 10, 12, 14
     }
@@ -485,24 +514,65 @@ mod tests {
             if let Some(hist) = &s.bg_hist {
                 prop_assert_eq!(hist.iter().sum::<u64>(), n);
             }
+        }
+
+        #[test]
+        fn focus_energies_avx2_build_matches_the_portable_one((raw, _seg, _t) in frames()) {
+            let portable = focus_energies::portable(&raw);
+            match focus_energies::avx2(&raw) {
+                Some(avx2) => prop_assert_eq!(avx2, portable),
+                None => report_no_avx2("quality::focus_energies"),
+            }
+        }
+
+        #[test]
+        fn focus_energies_equal_a_pixel_by_pixel_convolution((raw, _seg, _t) in frames()) {
+            // 16·B, 16·L and the noise filter straight from their kernels,
+            // summed exactly in i128.
             let (w, h) = (raw.width, raw.height);
-            let (mut lap_sum, mut lap_sq) = (0i128, 0u128);
-            let (mut bg_sum, mut bg_sq, mut bg_n) = (0i128, 0u128, 0u64);
-            for y in 1..h.saturating_sub(1) {
-                for x in 1..w.saturating_sub(1) {
-                    let p = |x: usize, y: usize| i128::from(raw.pixels[y * w + x]);
-                    let lap = p(x, y - 1) + p(x, y + 1) + p(x - 1, y) + p(x + 1, y) - 4 * p(x, y);
-                    lap_sum += lap;
-                    lap_sq += (lap * lap) as u128;
-                    if segmented.pixels[y * w + x] <= t {
-                        bg_sum += lap;
-                        bg_sq += (lap * lap) as u128;
-                        bg_n += 1;
+            let e = focus_energies(&raw);
+            if w < 5 || h < 5 {
+                prop_assert_eq!(e, FocusEnergies::default());
+                return Ok(());
+            }
+            let p = |x: usize, y: usize| i128::from(raw.pixels[y * w + x]);
+            let binomial = |x: usize, y: usize| {
+                let mut v = 0;
+                for (dy, wy) in [1, 2, 1].into_iter().enumerate() {
+                    for (dx, wx) in [1, 2, 1].into_iter().enumerate() {
+                        v += wy * wx * p(x + dx - 1, y + dy - 1);
+                    }
+                }
+                v
+            };
+            let noise = |x: usize, y: usize| {
+                let mut v = 0;
+                for (dy, wy) in [1, -2, 1].into_iter().enumerate() {
+                    for (dx, wx) in [1, -2, 1].into_iter().enumerate() {
+                        v += wy * wx * p(x + dx - 1, y + dy - 1);
+                    }
+                }
+                v
+            };
+            let (mut b, mut n, mut l) = ([0i128; 2], [0i128; 2], [0i128; 2]);
+            for y in 1..h - 1 {
+                for x in 1..w - 1 {
+                    let (bv, nv) = (binomial(x, y), noise(x, y));
+                    b = [b[0] + bv, b[1] + bv * bv];
+                    n = [n[0] + nv, n[1] + nv * nv];
+                    if (2..w - 2).contains(&x) && (2..h - 2).contains(&y) {
+                        let lv = binomial(x - 1, y) + binomial(x + 1, y) + binomial(x, y - 1)
+                            + binomial(x, y + 1) - 4 * bv;
+                        l = [l[0] + lv, l[1] + lv * lv];
                     }
                 }
             }
-            prop_assert_eq!((s.lap_sum, s.lap_sq), (lap_sum, lap_sq));
-            prop_assert_eq!((s.lap_bg_sum, s.lap_bg_sq, s.lap_bg_n), (bg_sum, bg_sq, bg_n));
+            let close = |a: f64, b: i128| (a - b as f64).abs() <= 1e-12 * (b as f64).abs();
+            prop_assert!(close(e.b_sum, b[0]) && close(e.b_sq, b[1]), "{e:?} {b:?}");
+            prop_assert!(close(e.n_sum, n[0]) && close(e.n_sq, n[1]), "{e:?} {n:?}");
+            prop_assert!(close(e.l_sum, l[0]) && close(e.l_sq, l[1]), "{e:?} {l:?}");
+            let inner = ((w - 2) * (h - 2)) as u64;
+            prop_assert_eq!((e.b_n, e.n_n, e.l_n), (inner, inner, ((w - 4) * (h - 4)) as u64));
         }
     }
 }

@@ -2,14 +2,13 @@
 //! too much across the field is segmented a second time after subtracting a
 //! rolling-ball background (Sternberg 1983), and both results are kept.
 //!
-//! Pure: pixels and parameters in, a second result out. Deciding which count is
-//! used, and saying so in the frame's flags, is left to the callers.
+//! Pure: a first result and its parameters in, the second segmentation's
+//! parameters out (or none). Running it ([`crate::pipeline`]), deciding which
+//! count is used and saying so in the frame's flags are left to the callers.
 
 use crate::analysis::params::{Background, SegmentParams};
 use crate::analysis::quality::is_uneven;
-use crate::analysis::result::{AnalysisError, FrameResult};
-use crate::analysis::segment::analyze_frame;
-use crate::frame::Frame;
+use crate::analysis::result::FrameResult;
 
 /// When and how to recount: frames whose illumination change is beyond
 /// `max_illumination_change` are segmented again after subtracting a
@@ -23,37 +22,28 @@ pub struct Recount {
 }
 
 impl Recount {
-    /// The recounted second result, when `first` is unevenly lit and the
-    /// segmentation did not already subtract a rolling-ball background.
-    ///
-    /// # Errors
-    /// The engine's [`AnalysisError`] (the same inputs as the first analysis).
-    pub fn run(
-        &self,
-        frame: &Frame,
-        extra_pages: &[(usize, &Frame)],
-        params: &SegmentParams,
-        first: &FrameResult,
-        pixel_size_um: Option<f64>,
-    ) -> Result<Option<FrameResult>, AnalysisError> {
+    /// The parameters of the second segmentation, when `first` is unevenly lit
+    /// and `params` did not already subtract a rolling-ball background: the
+    /// same parameters with a rolling-ball background of `radius_px`.
+    pub fn flattened(&self, params: &SegmentParams, first: &FrameResult) -> Option<SegmentParams> {
         if !is_uneven(first.illumination_change, self.max_illumination_change)
             || matches!(params.background, Background::RollingBall { .. })
         {
-            return Ok(None);
+            return None;
         }
-        let flattened = SegmentParams {
+        Some(SegmentParams {
             background: Background::RollingBall {
                 radius_px: self.radius_px,
             },
             ..params.clone()
-        };
-        analyze_frame(frame, extra_pages, &flattened, pixel_size_um).map(Some)
+        })
     }
 }
 
 #[cfg(test)]
 mod tests {
     use super::*;
+    use crate::analysis::analyze_frame;
     use crate::synth::{self, SceneSpec};
 
     const RECOUNT: Recount = Recount {
@@ -86,10 +76,10 @@ mod tests {
             "{}",
             first.illumination_change
         );
-        let second = RECOUNT
-            .run(&scene.frame, &[], &params, &first, None)
-            .unwrap()
+        let flat = RECOUNT
+            .flattened(&params, &first)
             .expect("unevenly lit, so recounted");
+        let second = analyze_frame(&scene.frame, &[], &flat, None).unwrap();
         let truth = scene.object_count() as i64;
         let error = |r: &FrameResult| (r.object_count as i64 - truth).abs();
         assert!(
@@ -112,25 +102,19 @@ mod tests {
         .unwrap();
         let params = SegmentParams::default();
         let first = analyze_frame(&scene.frame, &[], &params, None).unwrap();
-        assert_eq!(
-            RECOUNT
-                .run(&scene.frame, &[], &params, &first, None)
-                .unwrap(),
-            None
-        );
+        assert_eq!(RECOUNT.flattened(&params, &first), None);
         let uneven = FrameResult {
             illumination_change: 0.9,
             ..first
         };
         let rolling = SegmentParams {
             background: Background::RollingBall { radius_px: 20.0 },
-            ..params
+            ..params.clone()
         };
+        assert_eq!(RECOUNT.flattened(&rolling, &uneven), None);
         assert_eq!(
-            RECOUNT
-                .run(&scene.frame, &[], &rolling, &uneven, None)
-                .unwrap(),
-            None
+            RECOUNT.flattened(&params, &uneven).map(|p| p.background),
+            Some(Background::RollingBall { radius_px: 30.0 })
         );
     }
 }

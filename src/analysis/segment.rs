@@ -133,12 +133,16 @@ fn run(
     }
     let components = match params.split {
         Split::None => components,
-        Split::Distance { min_depth_px } => split::split(
+        Split::Distance {
+            min_depth_px,
+            min_separation_px,
+        } => split::split(
             components,
             frame.width,
             frame.height,
             params.connectivity,
             min_depth_px,
+            min_separation_px,
         ),
     };
     if components.count > params.max_objects {
@@ -157,8 +161,7 @@ fn run(
     );
     let labels = want_labels
         .then(|| components.label_image(frame.width, frame.height, |k| component_labels[k] != 0));
-    let boundary_px: f64 = objects.iter().map(|o| o.perimeter_px).sum();
-    let q = quality::assess(frame, &raw_hist, corrected.as_ref(), t, boundary_px);
+    let q = quality::assess(frame, &raw_hist, corrected.as_ref(), t);
     let kept_area: u64 = objects.iter().map(|o| o.area_px).sum();
     let result = FrameResult {
         width: frame.width,

@@ -15,10 +15,14 @@
 //!   `scipy.ndimage.distance_transform_edt`), so an object cut by the frame's
 //!   edge is treated as going on beyond it.
 //! - A marker is one pixel: the first, in raster order, of the highest
-//!   plateau of its basin. The dynamic implies a separation: two markers with
-//!   dynamic `h` are at least about `2h` pixels apart, because the distance
-//!   changes by at most one pixel per pixel travelled; no separate minimum
-//!   separation is needed.
+//!   plateau of its basin. A maximum makes a marker of its own when, where
+//!   its basin meets a basin with a higher top, it is at least
+//!   `min_depth_px` above the meeting level (its dynamic) *and* at least
+//!   `min_separation_px` from that higher top (Euclidean, pixel centres).
+//!   The depth alone cannot tell a shallow neck between two nuclei from the
+//!   pixel grid's bumps along one elongated or rough object; those bumps lie
+//!   close together, so the separation rejects them and lets the depth be
+//!   small (see `Split::DEFAULT_MIN_DEPTH_PX` and `benches/README.md`).
 //! - Flooding pops the highest level first; among equal levels the pixel
 //!   queued first (FIFO, markers queued in raster order). A pixel is queued at
 //!   the lower of its own distance and the level of the pixel that queues it:
@@ -87,9 +91,11 @@ fn find(parent: &mut [u32], mut i: u32) -> u32 {
 /// `sq` holds squared distances ([`crate::analysis::distance::squared_edt`]),
 /// `mask` the object pixels. A marker is the top of a maximum of the distance
 /// whose dynamic is at least `min_depth_px` (distances in pixels, not
-/// squared), and every connected part of the mask gets the marker of its
-/// highest maximum. `min_depth_px` should be positive: at 0 every pixel is a
-/// maximum of dynamic 0. Inputs of mismatched lengths give an empty vector.
+/// squared) and whose top lies at least `min_separation_px` from the top of
+/// the higher maximum its basin meets; every connected part of the mask gets
+/// the marker of its highest maximum. `min_depth_px` should be positive: at 0
+/// every pixel is a maximum of dynamic 0. Inputs of mismatched lengths give
+/// an empty vector.
 ///
 /// The dynamic is found by flooding down from the top (pixels by decreasing
 /// distance, equal distances in raster order) with a union-find: where two
@@ -104,9 +110,12 @@ fn find(parent: &mut [u32], mut i: u32) -> u32 {
 /// let rows = [".........", ".###.###.", ".#######.", ".###.###.", "........."];
 /// let mask: Vec<bool> = rows.iter().flat_map(|r| r.bytes().map(|b| b == b'#')).collect();
 /// let d = squared_edt(&mask, 9, 5);
-/// let m = markers(&d, &mask, 9, 5, Connectivity::Eight, 1.0);
+/// let m = markers(&d, &mask, 9, 5, Connectivity::Eight, 1.0, 0.0);
 /// assert_eq!((m[2 * 9 + 2], m[2 * 9 + 6]), (1, 2));
-/// assert_eq!(markers(&d, &mask, 9, 5, Connectivity::Eight, 1.5).iter().max(), Some(&1));
+/// assert_eq!(markers(&d, &mask, 9, 5, Connectivity::Eight, 1.5, 0.0).iter().max(), Some(&1));
+/// // The centres are 4 px apart: a separation of 4 keeps both, 4.5 one.
+/// assert_eq!(markers(&d, &mask, 9, 5, Connectivity::Eight, 1.0, 4.0).iter().max(), Some(&2));
+/// assert_eq!(markers(&d, &mask, 9, 5, Connectivity::Eight, 1.0, 4.5).iter().max(), Some(&1));
 /// ```
 pub fn markers(
     sq: &[u32],
@@ -115,6 +124,7 @@ pub fn markers(
     height: usize,
     connectivity: Connectivity,
     min_depth_px: f64,
+    min_separation_px: f64,
 ) -> Vec<u32> {
     let n = width.saturating_mul(height);
     if sq.len() != n || mask.len() != n {
@@ -127,7 +137,12 @@ pub fn markers(
         padded(mask, width, height, false),
     );
     let offsets = offsets(width + 2, connectivity);
-    let peaks = marker_pixels(&psq, &pmask, &offsets, min_depth_px, false, &mut work);
+    let rule = MarkerRule {
+        min_depth_px,
+        min_separation_px,
+        stride: width + 2,
+    };
+    let peaks = marker_pixels(&psq, &pmask, &offsets, &rule, false, &mut work);
     for (k, &p) in peaks.iter().enumerate() {
         out[unpadded(p as usize, width)] = k as u32 + 1;
     }
@@ -263,22 +278,47 @@ fn has_high_local_maximum(
     })
 }
 
+/// What makes a maximum a marker of its own, for images `stride` pixels wide.
+struct MarkerRule {
+    min_depth_px: f64,
+    min_separation_px: f64,
+    stride: usize,
+}
+
+impl MarkerRule {
+    /// True when the top `lower` (squared distance `sq[lower]`), whose basin
+    /// meets the basin of the higher top `higher` at squared distance
+    /// `level`, is a marker.
+    fn keeps(&self, sq: &[u32], lower: u32, higher: u32, level: u32) -> bool {
+        let depth = f64::from(sq[lower as usize]).sqrt() - f64::from(level).sqrt();
+        let at = |i: u32| {
+            (
+                (i as usize / self.stride) as f64,
+                (i as usize % self.stride) as f64,
+            )
+        };
+        let ((y0, x0), (y1, x1)) = (at(lower), at(higher));
+        depth >= self.min_depth_px && (y0 - y1).hypot(x0 - x1) >= self.min_separation_px
+    }
+}
+
 /// The marker pixels of [`markers`], in raster order.
 /// `sq` and `mask` are padded (the border is not mask); `offsets` from
 /// [`offsets`] for their stride. Indices returned are padded ones.
 ///
 /// `connected` says the mask is one connected object, which allows the
-/// shortcut of [`single_marker`].
+/// shortcut of [`single_marker`] (the separation only ever removes markers,
+/// so one marker by depth alone is one marker).
 fn marker_pixels(
     sq: &[u32],
     mask: &[bool],
     offsets: &[isize],
-    min_depth_px: f64,
+    rule: &MarkerRule,
     connected: bool,
     work: &mut Work,
 ) -> Vec<u32> {
     if connected {
-        if let Some(p) = single_marker(sq, mask, offsets, min_depth_px) {
+        if let Some(p) = single_marker(sq, mask, offsets, rule.min_depth_px) {
             return vec![p];
         }
     }
@@ -289,7 +329,6 @@ fn marker_pixels(
     work.peak.clear();
     work.peak.resize(n, UNSET);
     work.peaks.clear();
-    let depth = |top: u32, level: u32| f64::from(top).sqrt() - f64::from(level).sqrt();
     for k in 0..work.order.len() {
         let p = work.order[k];
         work.parent[p as usize] = p;
@@ -320,7 +359,7 @@ fn marker_pixels(
             let p_wins = (Reverse(sq[tp as usize]), tp) < (Reverse(sq[tq as usize]), tq);
             let (win, lose) = if p_wins { (rp, rq) } else { (rq, rp) };
             let top = peak[lose as usize];
-            if depth(sq[top as usize], level) >= min_depth_px {
+            if rule.keeps(sq, top, peak[win as usize], level) {
                 peaks.push(top);
             }
             parent[lose as usize] = win;
@@ -430,8 +469,8 @@ fn flood(
 }
 
 /// Splits every object of `components` (a `width × height` frame) that holds
-/// two or more markers of dynamic at least `min_depth_px` into one piece per
-/// marker, and numbers all objects again in raster order of their first
+/// two or more markers ([`markers`]: dynamic at least `min_depth_px`, at least
+/// `min_separation_px` from the higher top) into one piece per marker, and numbers all objects again in raster order of their first
 /// pixel. Objects with one marker keep their runs unchanged; when none splits
 /// the input comes back as it was.
 ///
@@ -446,6 +485,7 @@ pub fn split(
     height: usize,
     connectivity: Connectivity,
     min_depth_px: f64,
+    min_separation_px: f64,
 ) -> Components {
     let count = components.count;
     if count == 0 || width == 0 || height == 0 {
@@ -483,6 +523,12 @@ pub fn split(
         }) else {
             continue;
         };
+        // No two pixels of an object whose box diagonal is shorter than the
+        // separation are that far apart: one marker, nothing to transform.
+        let diagonal = f64::from(x1 - x0 - 1).hypot(f64::from(y1 - y0 - 1));
+        if diagonal < min_separation_px {
+            continue;
+        }
         // The box widened by one pixel on every side (`px = x - x0 + 1`);
         // the widening is background inside the frame and, for the distance
         // only, not background outside it. The flooding's mask is the
@@ -514,7 +560,12 @@ pub fn split(
         sq.resize(bw * bh, 0);
         squared_edt_into(&edt_mask, bw, bh, &mut sq, &mut scratch);
         let offsets = offsets(bw, connectivity);
-        let peaks = marker_pixels(&sq, &mask, &offsets, min_depth_px, true, &mut work);
+        let rule = MarkerRule {
+            min_depth_px,
+            min_separation_px,
+            stride: bw,
+        };
+        let peaks = marker_pixels(&sq, &mask, &offsets, &rule, true, &mut work);
         if peaks.len() < 2 {
             continue;
         }
@@ -619,7 +670,7 @@ mod tests {
 
     fn split_rows(rows: &[&str], conn: Connectivity, fill: bool, depth: f64) -> Components {
         let (px, w, h) = image(rows);
-        split(label(&px, w, h, 0, conn, fill), w, h, conn, depth)
+        split(label(&px, w, h, 0, conn, fill), w, h, conn, depth, 0.0)
     }
 
     /// Two 5 x 5 squares side by side, joined on their middle row by a
@@ -714,6 +765,33 @@ mod tests {
     }
 
     #[test]
+    fn maxima_closer_than_the_separation_stay_one_object() {
+        // The dumbbell above: its centres (4,4) and (15,4) are 11 px apart
+        // (dynamic 3). At a separation of 11 it still splits; at 11.5 the
+        // right square's maximum is too near the left one's and joins it.
+        // TWO_SQUARES: centres (3,3) and (10,3), 7 px apart (dynamic 2).
+        let dumbbell = [
+            ".....................",
+            ".#######....#######..",
+            ".#######....#######..",
+            ".#######....#######..",
+            ".##################..",
+            ".#######....#######..",
+            ".#######....#######..",
+            ".#######....#######..",
+            ".....................",
+        ];
+        for (rows, apart) in [(&dumbbell[..], 11.0), (&TWO_SQUARES[..], 7.0)] {
+            for conn in [Connectivity::Four, Connectivity::Eight] {
+                let (px, w, h) = image(rows);
+                let at = |sep: f64| split(label(&px, w, h, 0, conn, true), w, h, conn, 2.0, sep);
+                assert_eq!(at(apart).count, 2, "{conn:?} at {apart}");
+                assert_eq!(at(apart + 0.5).count, 1, "{conn:?} at {apart} + 0.5");
+            }
+        }
+    }
+
+    #[test]
     fn an_object_with_a_hole_splits_only_when_the_hole_is_kept() {
         // A 13 x 5 rectangle (columns 1-13, rows 1-5) with a one-pixel hole
         // at its centre (7,3).
@@ -780,7 +858,7 @@ mod tests {
         let (px, w, h) = image(&TWO_SQUARES);
         let mask: Vec<bool> = px.iter().map(|&p| p > 0).collect();
         let d = squared_edt(&mask, w, h);
-        let m = markers(&d, &mask, w, h, Connectivity::Eight, 2.0);
+        let m = markers(&d, &mask, w, h, Connectivity::Eight, 2.0, 0.0);
         let l = watershed(&d, &mask, &m, w, h, Connectivity::Eight);
         let c = split_rows(&TWO_SQUARES, Connectivity::Eight, true, 2.0);
         for (r, &k) in c.runs.iter().zip(&c.component) {
@@ -805,13 +883,16 @@ mod tests {
     }
 
     #[test]
-    fn the_default_depth_splits_half_overlapping_discs_and_keeps_ellipses() {
+    fn the_default_rule_splits_half_overlapping_discs_and_keeps_ellipses() {
         // Discs of radius r with centres 1.5 r apart (overlap r/2) meet in a
         // neck of half-width sqrt(r² - (0.75 r)²) = 0.66 r: dynamic about
-        // 0.34 r, at least 3.4 px for r >= 10, above the default 2 px. (At
-        // r = 8 the continuous 2.7 px is lowered by the pixel grid below 2:
-        // such a pair stays one object at the default depth.)
-        let depth = crate::analysis::params::Split::DEFAULT_MIN_DEPTH_PX;
+        // 0.34 r, at least 3.4 px for r >= 10, above the default 0.6 px; the
+        // centres are 15 px or more apart, above the default 10 px.
+        use crate::analysis::params::Split;
+        let (depth, sep) = (
+            Split::DEFAULT_MIN_DEPTH_PX,
+            Split::DEFAULT_MIN_SEPARATION_PX,
+        );
         for r in [10.0, 15.0, 20.0] {
             let (w, h) = (80, 60);
             let px = ellipses(
@@ -820,13 +901,13 @@ mod tests {
                 &[(20.0, 30.0, r, r, 0.0), (20.0 + 1.5 * r, 30.3, r, r, 0.0)],
             );
             for conn in [Connectivity::Four, Connectivity::Eight] {
-                let c = split(label(&px, w, h, 0, conn, true), w, h, conn, depth);
+                let c = split(label(&px, w, h, 0, conn, true), w, h, conn, depth, sep);
                 assert_eq!(c.count, 2, "r {r} {conn:?}");
             }
         }
         // A single disc or ellipse (up to 2:1) has one maximum of its
-        // distance; the pixel grid's bumps on an ellipse's ridge stay well
-        // under 2 px: one object.
+        // distance; the pixel grid's bumps on an ellipse's ridge are either
+        // shallower than 0.6 px or nearer than 10 px to the top: one object.
         for (a, b) in [
             (10.0, 10.0),
             (12.0, 8.0),
@@ -838,7 +919,7 @@ mod tests {
                 let (w, h) = (70, 70);
                 let px = ellipses(w, h, &[(35.0, 35.0, a, b, angle)]);
                 for conn in [Connectivity::Four, Connectivity::Eight] {
-                    let c = split(label(&px, w, h, 0, conn, true), w, h, conn, depth);
+                    let c = split(label(&px, w, h, 0, conn, true), w, h, conn, depth, sep);
                     assert_eq!(c.count, 1, "{a} x {b} at {angle} {conn:?}");
                 }
             }
@@ -866,9 +947,9 @@ mod tests {
 
     #[test]
     fn mismatched_inputs_give_nothing() {
-        assert!(markers(&[1, 2], &[true], 2, 1, Connectivity::Four, 1.0).is_empty());
+        assert!(markers(&[1, 2], &[true], 2, 1, Connectivity::Four, 1.0, 0.0).is_empty());
         assert!(watershed(&[1], &[true], &[1, 2], 1, 1, Connectivity::Four).is_empty());
-        let empty = split(Components::default(), 0, 0, Connectivity::Four, 1.0);
+        let empty = split(Components::default(), 0, 0, Connectivity::Four, 1.0, 0.0);
         assert_eq!(empty.count, 0);
     }
 }

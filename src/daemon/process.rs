@@ -97,6 +97,7 @@ async fn watch_with_systemd(
             return std::future::pending::<()>().await;
         };
         let mut last_finished = u64::MAX;
+        let repeats = crate::text::Repeats::default();
         loop {
             tokio::time::sleep(interval / 2).await;
             let finished = progress.finished.load(std::sync::atomic::Ordering::Relaxed);
@@ -107,28 +108,31 @@ async fn watch_with_systemd(
                 tell_systemd(Note::Watchdog);
                 last_finished = finished;
             } else {
-                tracing::warn!(
-                    "no frame finished for {} ms with work outstanding",
-                    (interval / 2).as_millis()
+                repeats.warn(
+                    "watchdog starved",
+                    format_args!(
+                        "no frame finished for {} ms with work outstanding",
+                        (interval / 2).as_millis()
+                    ),
                 );
             }
         }
     };
-    let ended = async {
+    let trouble = async {
         loop {
             tokio::time::sleep(THREAD_CHECK).await;
-            if let Some(name) = service.ended_thread() {
-                return name;
+            if let Some(trouble) = service.trouble() {
+                return trouble;
             }
         }
     };
-    let mut ended_thread = None;
+    let mut failed = None;
     tokio::select! {
         () = shutdown => {}
         () = watchdog => {}
-        name = ended => {
-            tracing::error!("the {name} thread ended unexpectedly; stopping the service");
-            ended_thread = Some(name);
+        e = trouble => {
+            tracing::error!("stopping the service: {e}");
+            failed = Some(e);
         }
     }
     tell_systemd(Note::Stopping);
@@ -145,13 +149,13 @@ async fn watch_with_systemd(
             " (time bound hit)"
         }
     );
-    match ended_thread {
-        Some(name) => Err(WatchError::ThreadEnded(name)),
+    match failed {
+        Some(e) => Err(e),
         None => Ok(summary),
     }
 }
 
-/// How often the service's threads are checked for one that ended.
+/// How often the service is checked for a database fault or a thread that ended.
 const THREAD_CHECK: std::time::Duration = std::time::Duration::from_secs(1);
 
 /// What the service tells systemd.

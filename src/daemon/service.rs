@@ -19,10 +19,11 @@ use crossbeam_channel::Sender;
 use crate::daemon::worker::Worker;
 use crate::qc::recorder::{QcError, QcRecorder, QcSetup};
 use crate::settings::Settings;
+use crate::store::health::{DatabaseFault, DatabaseHealth};
 use crate::store::label_images::LabelImageWriter;
 use crate::store::writer::{open_run, RunPolicy, StoreOp, Writer, WriterError, WriterSetup};
 use crate::store::{self, FrameKey, LabelImages, StoreError};
-use crate::text::{shown, shown_path};
+use crate::text::{shown, shown_path, Repeats};
 use crate::watch::scheduler::{scan_loop, SchedMsg, Scheduler};
 use crate::watch::watcher::{start_watcher, WatcherError, Watching};
 use crate::watch::{Job, Progress};
@@ -83,6 +84,10 @@ pub enum WatchError {
     /// stopped so that its supervisor can start it again.
     #[error("the {0} thread ended unexpectedly; the service stopped (frames in hand stay queued and are redone at the next start)")]
     ThreadEnded(&'static str),
+    /// The database was found damaged, deleted or replaced while the
+    /// service ran; the service stopped (the fault says what to do).
+    #[error(transparent)]
+    Database(DatabaseFault),
     /// A thread or the signal handling could not start.
     #[error("cannot start {what}: {source}")]
     Start {
@@ -120,6 +125,8 @@ pub struct Service {
     reporter: Option<(Sender<()>, JoinHandle<()>)>,
     /// Where the report goes, and the database it reads.
     report: Option<(PathBuf, PathBuf)>,
+    /// The database's file and the faults found in it.
+    health: Arc<DatabaseHealth>,
 }
 
 impl Service {
@@ -149,6 +156,8 @@ impl Service {
         // again and judge the run with half its memory.
         let claim = store::claim_writer(db)?;
         let mut conn = store::open_for_writing(db)?;
+        // The file just opened: if another takes its path, the service stops.
+        let health = Arc::new(DatabaseHealth::new(db));
         let sqlite = |source| StoreError::Sqlite {
             path: db.clone(),
             source,
@@ -201,6 +210,7 @@ impl Service {
                     source,
                 },
             )?,
+            health: Arc::clone(&health),
         };
         let (writer, store_tx) =
             Writer::start(conn, policy, run, setup).map_err(|source| WatchError::Writer {
@@ -222,6 +232,7 @@ impl Service {
                 sched_tx: sched_tx.clone(),
                 stopping: Arc::clone(&stopping),
                 progress: Arc::clone(&progress),
+                repeats: Repeats::default(),
             };
             workers.push(spawn(&format!("worker-{i}"), move || worker.run())?);
         }
@@ -233,8 +244,9 @@ impl Service {
             let watch = watch.clone();
             let sched_tx = sched_tx.clone();
             let stopping = Arc::clone(&stopping);
+            let health = Arc::clone(&health);
             spawn("scanner", move || {
-                scan_loop(&scan_rx, &reader, &watch, &sched_tx, &stopping)
+                scan_loop(&scan_rx, &reader, &health, &watch, &sched_tx, &stopping)
             })?
         };
         // Catch-up: everything already in the folders that is not recorded as finished.
@@ -249,7 +261,9 @@ impl Service {
             store_tx,
             scan_tx,
             reader: store::open_read_only(db)?,
+            health: Arc::clone(&health),
             progress: Arc::clone(&progress),
+            repeats: Repeats::default(),
         };
         let scheduler = spawn("scheduler", move || sched.run())?;
         let run_id = writer.run_id;
@@ -296,6 +310,7 @@ impl Service {
             claim,
             reporter,
             report,
+            health,
         })
     }
 
@@ -304,23 +319,28 @@ impl Service {
         Arc::clone(&self.progress)
     }
 
-    /// The first of the service's threads found ended while the service runs
-    /// (each ends only when told to stop, so an ended one has panicked): the
-    /// service cannot go on without it and must stop with an error, so that a
-    /// supervisor (systemd) starts it again rather than leaving a process that
-    /// records nothing.
-    pub fn ended_thread(&self) -> Option<&'static str> {
-        if self.scheduler.is_finished() {
-            Some("scheduler")
-        } else if self.scanner.is_finished() {
-            Some("scanner")
-        } else if self.workers.iter().any(JoinHandle::is_finished) {
-            Some("worker")
-        } else if self.writer.is_finished() {
-            Some("store writer")
-        } else {
-            None
+    /// Why the service cannot go on, if it cannot: a fault of its database
+    /// (damaged, deleted or replaced: the writer stops on it), or the first
+    /// of its threads found ended (each ends only when told to stop, so an
+    /// ended one has panicked). The service must then stop with this error,
+    /// so that a supervisor (systemd) starts it again rather than leaving a
+    /// process that records nothing.
+    pub fn trouble(&self) -> Option<WatchError> {
+        if let Some(fault) = self.health.fault() {
+            return Some(WatchError::Database(fault));
         }
+        let ended = if self.scheduler.is_finished() {
+            "scheduler"
+        } else if self.scanner.is_finished() {
+            "scanner"
+        } else if self.workers.iter().any(JoinHandle::is_finished) {
+            "worker"
+        } else if self.writer.is_finished() {
+            "store writer"
+        } else {
+            return None;
+        };
+        Some(WatchError::ThreadEnded(ended))
     }
 
     /// The run being recorded into.
@@ -386,7 +406,7 @@ impl Service {
 /// Rewrites the HTML report of run `run_id` (atomically: a temporary file
 /// renamed over it); a failure is logged and the service goes on.
 fn write_report(db: &Path, run_id: i64, path: &Path) {
-    match crate::html_report::write(db, Some(run_id), path) {
+    match crate::html_report::write(db, Some(run_id), Some(1), path) {
         Ok(w) => tracing::info!(
             "report of run {run_id} written to {} ({} kB)",
             shown_path(path),
@@ -427,6 +447,7 @@ fn qc_setup(settings: &Settings) -> QcSetup {
         quality: settings.quality.clone(),
         alerts: settings.alerts.clone(),
         volumes,
+        database: settings.store.database.clone(),
     }
 }
 

@@ -16,7 +16,7 @@ use crate::pipeline::{
 };
 use crate::store::writer::StoreOp;
 use crate::store::FrameKey;
-use crate::text::{shown, shown_path};
+use crate::text::{shown, shown_path, Repeats};
 use crate::watch::scheduler::SchedMsg;
 use crate::watch::{Job, Progress};
 
@@ -55,6 +55,8 @@ pub(crate) struct Worker {
     pub(crate) sched_tx: Sender<SchedMsg>,
     pub(crate) stopping: Arc<AtomicBool>,
     pub(crate) progress: Arc<Progress>,
+    /// This worker's repeated errors, limited.
+    pub(crate) repeats: Repeats,
 }
 
 impl Worker {
@@ -120,9 +122,12 @@ impl Worker {
                         self.progress.failed.fetch_add(1, Ordering::Relaxed);
                     }
                     if self.store_tx.send(op).is_err() {
-                        tracing::error!(
-                            "the store writer has stopped; {} not recorded",
-                            shown_path(&job.path)
+                        self.repeats.error(
+                            "store writer stopped",
+                            format_args!(
+                                "the store writer has stopped; {} not recorded",
+                                shown_path(&job.path)
+                            ),
                         );
                     }
                 }
@@ -131,8 +136,8 @@ impl Worker {
         }
     }
 
-    /// The file's analysis and, when label images are on, its first result's
-    /// label image as runs (encoded later, only if kept). Labels that do not
+    /// The file's analysis and, when label images are on, the label image of
+    /// its count used (the recount's where there is one) as runs (encoded later, only if kept). Labels that do not
     /// fit the frame are logged and left out; the frame is still recorded.
     fn analyze(&self, path: &Path) -> Result<(FileAnalysis, Option<LabelRuns>), FileError> {
         if !self.label_images {
@@ -141,7 +146,12 @@ impl Worker {
         let (analysis, labels) = analyze_file_with_labels(path, &self.pipeline)?;
         let r = &analysis.result;
         let image = LabelRuns::new(r.width, r.height, &labels)
-            .map_err(|e| tracing::error!(file = %shown_path(path), "no label image: {e}"))
+            .map_err(|e| {
+                self.repeats.error(
+                    "no label image",
+                    format_args!("{}: no label image: {e}", shown_path(path)),
+                );
+            })
             .ok();
         Ok((analysis, image))
     }

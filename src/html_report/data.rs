@@ -1,7 +1,13 @@
 //! What the report shows, read from the store in one snapshot: the run's
-//! frames in recording order with their position and measures, the alert
+//! frames in acquisition order with their position and measures, the alert
 //! episodes, and the flags of each frame; and the drift charts replayed over
 //! the frames as the run monitor drew them.
+//!
+//! The plots' time axis is acquisition time (when each file was first
+//! written), not recording time: a run recorded after the fact (files copied
+//! in with their modification times kept) plots as it was acquired. Alert
+//! episodes, stamped when recorded, are placed on that axis through the frames
+//! recorded by then.
 
 use std::collections::BTreeMap;
 
@@ -10,7 +16,7 @@ use rusqlite::Connection;
 use crate::qc::drift::Chart;
 use crate::qc::metrics::Metric;
 use crate::qc::params::ChartParams;
-use crate::store::{COUNT_USED_SQL, POSITION_SQL};
+use crate::store::{ACQUISITION_ORDER_SQL, COUNT_USED_SQL, POSITION_SQL};
 
 /// One recorded frame of the run.
 #[derive(Debug, Clone, PartialEq)]
@@ -29,6 +35,10 @@ pub struct FrameRow {
     pub error: Option<String>,
     /// When its outcome was recorded (ms since the Unix epoch).
     pub at_ms: i64,
+    /// When its file was acquired: the modification time of the file's first
+    /// version (`frames.acquired_ns`), in ms since the Unix epoch; when that
+    /// is unknown, when it was recorded.
+    pub acquired_ms: i64,
     /// The count used; `None` for a failure.
     pub count: Option<i64>,
     /// The charted metrics' values, in [`Metric::ALL`] order (NaN when unknown).
@@ -52,12 +62,18 @@ pub struct Episode {
     pub message: String,
     /// What ended it.
     pub closed_message: Option<String>,
+    /// Where it opened on the acquisition time axis: the acquisition time of
+    /// the frame that opened it, else of the last frame recorded by then.
+    pub opened_acquired_ms: i64,
+    /// Where it closed on the acquisition time axis (as `opened_acquired_ms`).
+    pub closed_acquired_ms: Option<i64>,
 }
 
-/// The run's frames (done and failed, in recording order) and alert episodes.
+/// The run's frames (done and failed, in acquisition order) and alert episodes.
 #[derive(Debug, Clone, PartialEq)]
 pub struct RunData {
-    /// Frames in the order the monitor saw them.
+    /// Frames in acquisition order ([`ACQUISITION_ORDER_SQL`]), the order the
+    /// monitor charts them in.
     pub frames: Vec<FrameRow>,
     /// Alert episodes, oldest first.
     pub episodes: Vec<Episode>,
@@ -70,9 +86,10 @@ pub struct RunData {
 pub fn read(conn: &Connection, run_id: i64) -> rusqlite::Result<RunData> {
     let mut stmt = conn.prepare(&format!(
         "SELECT id, file, {POSITION_SQL}, well, status, error, COALESCE(analyzed_at_ms, 0),
+                COALESCE(acquired_ns / 1000000, analyzed_at_ms, 0),
                 CASE WHEN status = 'done' THEN {COUNT_USED_SQL} END,
                 background_level, illumination_change, threshold, separability, focus, object_count
-         FROM frames WHERE run_id = ?1 AND status IN ('done', 'failed') ORDER BY analyzed_at_ms, id"
+         FROM frames WHERE run_id = ?1 AND status IN ('done', 'failed') ORDER BY {ACQUISITION_ORDER_SQL}"
     ))?;
     let mut frames: Vec<FrameRow> = stmt
         .query_map([run_id], |r| {
@@ -87,8 +104,9 @@ pub fn read(conn: &Connection, run_id: i64) -> rusqlite::Result<RunData> {
                 status: r.get(4)?,
                 error: r.get(5)?,
                 at_ms: r.get(6)?,
-                count: r.get(7)?,
-                metrics: [num(8)?, num(9)?, num(10)?, num(11)?, num(12)?, num(13)?],
+                acquired_ms: r.get(7)?,
+                count: r.get(8)?,
+                metrics: [num(9)?, num(10)?, num(11)?, num(12)?, num(13)?, num(14)?],
                 flags: Vec::new(),
             })
         })?
@@ -109,29 +127,59 @@ pub fn read(conn: &Connection, run_id: i64) -> rusqlite::Result<RunData> {
     }
     let mut alerts = conn.prepare(
         "SELECT condition, opened_at_ms, closed_at_ms,
-                COALESCE(file, (SELECT file FROM frames WHERE id = alerts.frame_id)), message, closed_message
+                COALESCE(file, (SELECT file FROM frames WHERE id = alerts.frame_id)), message, closed_message,
+                (SELECT acquired_ns / 1000000 FROM frames WHERE id = alerts.frame_id)
          FROM alerts WHERE run_id = ?1 ORDER BY opened_at_ms, id",
     )?;
+    let recorded = RecordedToAcquired::new(&frames);
     let episodes = alerts
         .query_map([run_id], |r| {
+            let opened_ms = r.get(1)?;
+            let closed_ms: Option<i64> = r.get(2)?;
+            let frame_acquired: Option<i64> = r.get(6)?;
             Ok(Episode {
                 condition: r.get(0)?,
-                opened_ms: r.get(1)?,
-                closed_ms: r.get(2)?,
+                opened_ms,
+                closed_ms,
                 file: r.get(3)?,
                 message: r.get(4)?,
                 closed_message: r.get(5)?,
+                opened_acquired_ms: frame_acquired.unwrap_or_else(|| recorded.at(opened_ms)),
+                closed_acquired_ms: closed_ms.map(|c| recorded.at(c)),
             })
         })?
         .collect::<Result<_, _>>()?;
     Ok(RunData { frames, episodes })
 }
 
+/// Recording times to acquisition times, through the frames: a moment of
+/// recording is placed at the acquisition time of the last frame recorded by
+/// then (the first frame's when none was).
+struct RecordedToAcquired {
+    /// (recorded, acquired), by recording time.
+    frames: Vec<(i64, i64)>,
+}
+
+impl RecordedToAcquired {
+    fn new(frames: &[FrameRow]) -> RecordedToAcquired {
+        let mut frames: Vec<(i64, i64)> = frames.iter().map(|f| (f.at_ms, f.acquired_ms)).collect();
+        frames.sort_unstable();
+        RecordedToAcquired { frames }
+    }
+
+    fn at(&self, recorded_ms: i64) -> i64 {
+        let by_then = self.frames.partition_point(|f| f.0 <= recorded_ms);
+        self.frames
+            .get(by_then.saturating_sub(1))
+            .map_or(recorded_ms, |f| f.1)
+    }
+}
+
 /// One charted frame of one position.
 #[derive(Debug, Clone, Copy, PartialEq)]
 pub struct TracePoint {
-    /// When it was recorded (ms since the Unix epoch).
-    pub at_ms: i64,
+    /// When its file was acquired ([`FrameRow::acquired_ms`]).
+    pub acquired_ms: i64,
     /// The metric's value.
     pub value: f64,
     /// The EWMA statistic after it, in baseline sigmas; `None` while the
@@ -148,7 +196,7 @@ pub struct TracePoint {
 pub struct Trace {
     /// The position.
     pub position: String,
-    /// Every done frame's value, in recording order.
+    /// Every done frame's value, in acquisition order.
     pub points: Vec<TracePoint>,
     /// Baseline mean and sigma (after the floor), once the baseline is complete.
     pub baseline: Option<(f64, f64)>,
@@ -157,7 +205,7 @@ pub struct Trace {
 }
 
 /// The drift charts of `metric` at every position, replayed over the done
-/// frames in recording order exactly as the run monitor builds them: a
+/// frames in acquisition order (as [`read`] gives them) exactly as the run monitor builds them: a
 /// baseline from the first `baseline_frames` frames, then one chart step per
 /// frame ([`Chart::from_baseline`], [`Chart::update`]).
 pub fn replay(frames: &[FrameRow], metric: Metric, params: &ChartParams) -> Vec<Trace> {
@@ -181,7 +229,7 @@ pub fn replay(frames: &[FrameRow], metric: Metric, params: &ChartParams) -> Vec<
             chart: None,
         });
         let mut point = TracePoint {
-            at_ms: f.at_ms,
+            acquired_ms: f.acquired_ms,
             value,
             ewma: None,
             limit: None,
@@ -225,6 +273,7 @@ mod tests {
             status: "done".into(),
             error: None,
             at_ms,
+            acquired_ms: at_ms,
             count: Some(count as i64),
             metrics: [0.0, 0.0, 0.0, 0.0, 0.0, count],
             flags: Vec::new(),
@@ -252,5 +301,23 @@ mod tests {
         // z = (10 - 100) / 10 = -9, clipped; the EWMA's first step is λ·z.
         let first = b.points[n].ewma.unwrap();
         assert!((first - params.ewma_lambda * -params.outlier_clip).abs() < 1e-12);
+    }
+
+    #[test]
+    fn a_recording_time_is_placed_at_the_last_frame_recorded_by_then() {
+        // Recorded at 100, 200, 300 ms; acquired at 10, 20, 30 ms.
+        let frames: Vec<FrameRow> = [(300, 30), (100, 10), (200, 20)]
+            .iter()
+            .map(|&(recorded, acquired)| FrameRow {
+                acquired_ms: acquired,
+                ..frame("A01", recorded, 1.0)
+            })
+            .collect();
+        let map = RecordedToAcquired::new(&frames);
+        assert_eq!(
+            [50, 100, 199, 200, 250, 300, 1000].map(|t| map.at(t)),
+            [10, 10, 10, 20, 20, 30, 30]
+        );
+        assert_eq!(RecordedToAcquired::new(&[]).at(77), 77);
     }
 }

@@ -58,13 +58,19 @@ pub struct Written {
     pub bytes: usize,
 }
 
-/// Writes the report of run `run` (the last one by default) of `db` to `out`:
+/// Writes the report of run `run` (the last one by default) of `db`, as
+/// analysis `analysis` gave it (the newest by default), to `out`:
 /// first to a temporary file beside it, then renamed over it.
 ///
 /// # Errors
 /// [`ReportError`].
-pub fn write(db: &Path, run: Option<i64>, out: &Path) -> Result<Written, ReportError> {
-    let (run_id, html) = render(db, run)?;
+pub fn write(
+    db: &Path,
+    run: Option<i64>,
+    analysis: Option<i64>,
+    out: &Path,
+) -> Result<Written, ReportError> {
+    let (run_id, html) = render(db, run, analysis)?;
     let failed = |source| ReportError::Write {
         path: out.to_path_buf(),
         source,
@@ -95,25 +101,29 @@ struct RunRow {
     settings_format: String,
 }
 
-/// The report of run `run` (the last one by default) as HTML, with the run's
-/// number.
+/// The report of run `run` (the last one by default) as analysis `analysis`
+/// gave it (the newest by default) as HTML, with the run's number.
 ///
 /// # Errors
 /// [`ReportError`].
-pub fn render(db: &Path, run: Option<i64>) -> Result<(i64, String), ReportError> {
-    let status = status::read(db, 0, run)?;
+pub fn render(
+    db: &Path,
+    run: Option<i64>,
+    analysis: Option<i64>,
+) -> Result<(i64, String), ReportError> {
+    let status = status::read(db, 0, run, analysis)?;
     let Some(info) = &status.run else {
         return Err(ReportError::NoRun(db.to_path_buf()));
     };
-    let mut conn = store::open_read_only(db)?;
     let sqlite = |source| StoreError::Sqlite {
         path: db.to_path_buf(),
         source,
     };
-    let tx = conn.transaction().map_err(sqlite)?;
-    let row = run_row(&tx, info.id).map_err(sqlite)?;
-    let data = data::read(&tx, info.id).map_err(sqlite)?;
-    tx.finish().map_err(sqlite)?;
+    let (row, data) = store::read_run(db, Some(info.id), Some(info.analysis), |tx, _| {
+        let row = run_row(tx, info.id, info.analysis).map_err(sqlite)?;
+        let data = data::read(tx, info.id).map_err(sqlite)?;
+        Ok::<_, StoreError>((row, data))
+    })?;
     let Some(row) = row else {
         return Err(ReportError::NoRun(db.to_path_buf()));
     };
@@ -121,6 +131,7 @@ pub fn render(db: &Path, run: Option<i64>) -> Result<(i64, String), ReportError>
         .then(|| Settings::from_toml(&row.settings, &format!("run {} settings", row.id)));
     let html = Page {
         db,
+        label_images: info.analysis == 1,
         status: &status,
         run: &row,
         data: &data,
@@ -131,21 +142,37 @@ pub fn render(db: &Path, run: Option<i64>) -> Result<(i64, String), ReportError>
     Ok((row.id, html))
 }
 
-fn run_row(conn: &Connection, id: i64) -> rusqlite::Result<Option<RunRow>> {
-    conn.query_row(
-        "SELECT id, started_at_ms, ended_at_ms, settings, settings_format FROM runs WHERE id = ?1",
-        [id],
-        |r| {
-            Ok(RunRow {
-                id: r.get(0)?,
-                started_ms: r.get(1)?,
-                ended_ms: r.get(2)?,
-                settings: r.get(3)?,
-                settings_format: r.get(4)?,
-            })
-        },
-    )
-    .optional()
+/// The run's row, with the settings of its analysis `analysis` (a
+/// reprocess's own; the run's for the watch service's).
+fn run_row(conn: &Connection, id: i64, analysis: i64) -> rusqlite::Result<Option<RunRow>> {
+    let row = conn
+        .query_row(
+            "SELECT id, started_at_ms, ended_at_ms, settings, settings_format FROM runs WHERE id = ?1",
+            [id],
+            |r| {
+                Ok(RunRow {
+                    id: r.get(0)?,
+                    started_ms: r.get(1)?,
+                    ended_ms: r.get(2)?,
+                    settings: r.get(3)?,
+                    settings_format: r.get(4)?,
+                })
+            },
+        )
+        .optional()?;
+    if analysis == 1 {
+        return Ok(row);
+    }
+    let settings: String = conn.query_row(
+        "SELECT settings FROM analyses WHERE run_id = ?1 AND number = ?2",
+        [id, analysis],
+        |r| r.get(0),
+    )?;
+    Ok(row.map(|row| RunRow {
+        settings,
+        settings_format: "toml".into(),
+        ..row
+    }))
 }
 
 /// Text made safe inside HTML elements and attribute values.
@@ -164,10 +191,9 @@ fn esc(text: &str) -> String {
     out
 }
 
-/// What a picture's outlines show: the first segmentation, as the label
-/// images hold it, also where the count used is the recount's.
-const FIRST_SEGMENTATION: &str =
-    "the first segmentation; where the count is the recount's, its extra objects are not outlined";
+/// What a picture's outlines show: the objects counted, as the label images
+/// hold them.
+const COUNTED: &str = "the objects counted: the recount's where it ran";
 
 /// A time in the computer's time zone with its UTC offset.
 fn local(ms: i64) -> String {
@@ -211,6 +237,9 @@ code{overflow-wrap:anywhere}
 
 struct Page<'a> {
     db: &'a Path,
+    /// Whether the frames' label images (the watch service's segmentation)
+    /// outline the pictures: not for a reprocess's analysis.
+    label_images: bool,
     status: &'a StatusReport,
     run: &'a RunRow,
     data: &'a RunData,
@@ -231,17 +260,20 @@ impl Page<'_> {
         self.settings.and_then(|s| s.as_ref().ok())
     }
 
+    /// The plots' time axis, in acquisition time: from the run's start (or
+    /// the first acquisition, when earlier: a run recorded after the fact) to
+    /// the last acquisition or alert.
     fn axis(&self) -> TimeAxis {
-        let last = self
-            .data
-            .frames
-            .iter()
-            .map(|f| f.at_ms)
-            .chain(self.data.episodes.iter().map(|e| e.opened_ms))
-            .chain(self.run.ended_ms)
-            .max()
+        let acquired = || self.data.frames.iter().map(|f| f.acquired_ms);
+        let start = acquired()
+            .chain([self.run.started_ms])
+            .min()
             .unwrap_or(self.run.started_ms);
-        TimeAxis::new(self.run.started_ms, last)
+        let last = acquired()
+            .chain(self.data.episodes.iter().map(|e| e.opened_acquired_ms))
+            .max()
+            .unwrap_or(start);
+        TimeAxis::new(start, last)
     }
 
     fn html(&self) -> Result<String, String> {
@@ -257,7 +289,9 @@ impl Page<'_> {
         );
         let _ = writeln!(
             h,
-            "<p class=\"note\">Written {} by framewarden {} from <code>{}</code>. Times are local, with their offset from UTC.</p>",
+            "<p class=\"note\">Written {} by framewarden {} from <code>{}</code>. Times are local, with their offset from UTC. \
+             The plots' time axes are acquisition times \
+             (when each file was first written), so a run recorded after the fact plots as it was acquired.</p>",
             local(store::now_ms()),
             env!("CARGO_PKG_VERSION"),
             esc(&self.db.display().to_string())
@@ -297,6 +331,18 @@ impl Page<'_> {
             })
             .unwrap_or_default();
         item("folders", "folders", folders);
+        if let Some(r) = &s.run {
+            let whose = if r.analysis == 1 {
+                "the watch service's"
+            } else {
+                "a reprocess"
+            };
+            item(
+                "analysis",
+                "analysis",
+                format!("analysis {} of {} ({whose})", r.analysis, r.analyses),
+            );
+        }
         item("started", "started", local(self.run.started_ms));
         item(
             "ended",
@@ -365,14 +411,14 @@ impl Page<'_> {
             .unwrap_or(1)
             .max(1) as f64
             * 1.08;
-        h.push_str("<section id=\"positions\"><h2>Counts per position</h2>\n<p class=\"note key\">Objects counted (the recount where the uneven-illumination remedy ran) against time since the run started; the same scale on every plot.\
+        h.push_str("<section id=\"positions\"><h2>Counts per position</h2>\n<p class=\"note key\">Objects counted (the recount where the uneven-illumination remedy ran) against the time each file was acquired; the same scale on every plot.\
             <span style=\"background:#0072b2\"></span>count<span style=\"background:#e69f00;border-radius:50%\"></span>flagged frame<span style=\"background:#d55e00\"></span>failed frame (× on the time axis)</p>\n");
         let mut plots: BTreeMap<&str, String> = BTreeMap::new();
         for (position, frames) in &by_position {
             let points: Vec<CountPoint> = frames
                 .iter()
                 .map(|f| CountPoint {
-                    at_ms: f.at_ms,
+                    acquired_ms: f.acquired_ms,
                     count: f.count,
                     flagged: !f.flags.is_empty(),
                 })
@@ -583,11 +629,16 @@ impl Page<'_> {
             Err(e) => return none(format!("the file cannot be read now: {e}")),
         };
         let label_path = store::label_image_path(self.db, frame.id);
-        let (labels, source, kind) = match thumbs::read_label_image(&label_path) {
+        let kept = if self.label_images {
+            thumbs::read_label_image(&label_path)
+        } else {
+            Err("a reprocess keeps no label images".into())
+        };
+        let (labels, source, kind) = match kept {
             Ok((labels, w, h)) if w == pixels.width && h == pixels.height => (
                 Some(labels),
                 format!(
-                    "outlines from the label image {} ({FIRST_SEGMENTATION})",
+                    "outlines from the label image {} ({COUNTED})",
                     label_path.display()
                 ),
                 "label-image",
@@ -595,7 +646,7 @@ impl Page<'_> {
             _ => match analyze_file_with_labels(path, &settings.pipeline) {
                 Ok((_, labels)) => (
                     Some(labels),
-                    format!("no label image kept: outlines from segmenting the file again with the run's stored settings ({FIRST_SEGMENTATION})"),
+                    format!("no label image kept: outlines from segmenting the file again with the run's stored settings ({COUNTED})"),
                     "resegmented",
                 ),
                 Err(e) => (None, format!("no outlines: {e}"), "none"),
@@ -625,9 +676,9 @@ impl Page<'_> {
         }
         let _ = write!(
             h,
-            "<figcaption><b>{caption}</b> <code>{}</code><br><small>{}; {}</small></figcaption></figure>",
+            "<figcaption><b>{caption}</b> <code>{}</code><br><small>acquired {}; {}</small></figcaption></figure>",
             esc(&file_name(&frame.file)),
-            local(frame.at_ms),
+            local(frame.acquired_ms),
             esc(&pic.source)
         );
     }
@@ -662,7 +713,7 @@ impl Page<'_> {
                 .frames
                 .iter()
                 .filter(|g| g.position == f.position && g.status == "done" && g.flags.is_empty())
-                .min_by_key(|g| (g.at_ms - f.at_ms).abs());
+                .min_by_key(|g| (g.acquired_ms - f.acquired_ms).abs());
             match good {
                 Some(g) => self.figure(h, g, "good frame of the same position", "comparison"),
                 None => h.push_str("<p>No unflagged frame of this position to compare with.</p>"),

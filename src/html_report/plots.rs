@@ -31,11 +31,11 @@ pub mod palette {
 
 use palette::{BLACK, BLUE, GREEN, ORANGE, PURPLE, SERIES, SKY_BLUE, VERMILLION};
 
-/// The time axis: milliseconds since the Unix epoch to minutes or hours since
-/// the run's start.
+/// The time axis (acquisition time): milliseconds since the Unix epoch to
+/// seconds, minutes or hours since the axis' start.
 #[derive(Debug, Clone, Copy)]
 pub struct TimeAxis {
-    /// The run's start (ms since the Unix epoch).
+    /// The axis' start (ms since the Unix epoch).
     pub start_ms: i64,
     /// Milliseconds per unit.
     pub unit_ms: f64,
@@ -80,7 +80,7 @@ impl TimeAxis {
     }
 
     fn label(&self) -> String {
-        format!("time since start [{}]", self.unit)
+        format!("acquired, time since start [{}]", self.unit)
     }
 }
 
@@ -115,8 +115,8 @@ fn err(e: impl std::fmt::Display) -> String {
 /// One frame on a count plot.
 #[derive(Debug, Clone, Copy)]
 pub struct CountPoint {
-    /// When (ms since the Unix epoch).
-    pub at_ms: i64,
+    /// When its file was acquired (ms since the Unix epoch).
+    pub acquired_ms: i64,
     /// The count used; `None` for a failed frame.
     pub count: Option<i64>,
     /// True when the frame carries flags.
@@ -152,7 +152,7 @@ pub fn count_plot(points: &[CountPoint], axis: &TimeAxis, y_max: f64) -> Result<
             .map_err(err)?;
         let done: Vec<(f64, f64)> = points
             .iter()
-            .filter_map(|p| p.count.map(|c| (axis.at(p.at_ms), c as f64)))
+            .filter_map(|p| p.count.map(|c| (axis.at(p.acquired_ms), c as f64)))
             .collect();
         chart
             .draw_series(LineSeries::new(done.iter().copied(), BLUE.stroke_width(2)))
@@ -160,33 +160,54 @@ pub fn count_plot(points: &[CountPoint], axis: &TimeAxis, y_max: f64) -> Result<
         chart
             .draw_series(points.iter().filter(|p| p.flagged).filter_map(|p| {
                 p.count
-                    .map(|c| Circle::new((axis.at(p.at_ms), c as f64), 3, ORANGE.filled()))
+                    .map(|c| Circle::new((axis.at(p.acquired_ms), c as f64), 3, ORANGE.filled()))
             }))
             .map_err(err)?;
         chart
             .draw_series(
-                points
-                    .iter()
-                    .filter(|p| p.count.is_none())
-                    .map(|p| Cross::new((axis.at(p.at_ms), 0.0), 4, VERMILLION.stroke_width(2))),
+                points.iter().filter(|p| p.count.is_none()).map(|p| {
+                    Cross::new((axis.at(p.acquired_ms), 0.0), 4, VERMILLION.stroke_width(2))
+                }),
             )
             .map_err(err)?;
         Ok(())
     })
 }
 
-/// Spans of alert episodes on the axis (open ones run to its end).
+/// Spans of alert episodes on the (acquisition time) axis; open ones run to
+/// its end.
 fn spans(episodes: &[&Episode], axis: &TimeAxis) -> Vec<(f64, f64)> {
     episodes
         .iter()
         .map(|e| {
-            let end = e.closed_ms.map_or(axis.end, |c| axis.at(c));
-            (
-                axis.at(e.opened_ms),
-                end.max(axis.at(e.opened_ms) + axis.end * 0.003),
-            )
+            let start = axis.at(e.opened_acquired_ms);
+            let end = e.closed_acquired_ms.map_or(axis.end, |c| axis.at(c));
+            (start, end.max(start + axis.end * 0.003))
         })
         .collect()
+}
+
+type Chart<'a, 'b> = ChartContext<
+    'a,
+    SVGBackend<'b>,
+    Cartesian2d<plotters::coord::types::RangedCoordf64, plotters::coord::types::RangedCoordf64>,
+>;
+
+/// Shades the alert episodes across a chart whose values run from `lo` to `hi`.
+fn shade_episodes(
+    chart: &mut Chart,
+    episodes: &[&Episode],
+    axis: &TimeAxis,
+    (lo, hi): (f64, f64),
+) -> Result<(), String> {
+    chart
+        .draw_series(
+            spans(episodes, axis)
+                .into_iter()
+                .map(|(a, b)| Rectangle::new([(a, lo), (b, hi)], PURPLE.mix(0.25).filled())),
+        )
+        .map_err(err)?;
+    Ok(())
 }
 
 fn range(values: impl Iterator<Item = f64>) -> (f64, f64) {
@@ -220,7 +241,7 @@ pub fn metric_overview(
         .map(|t| {
             t.points
                 .iter()
-                .filter_map(|p| p.limit.map(|l| (axis.at(p.at_ms), l)))
+                .filter_map(|p| p.limit.map(|l| (axis.at(p.acquired_ms), l)))
                 .collect()
         })
         .unwrap_or_default();
@@ -247,13 +268,7 @@ pub fn metric_overview(
             .axis_desc_style(("sans-serif", 11))
             .draw()
             .map_err(err)?;
-        chart
-            .draw_series(
-                spans(episodes, axis)
-                    .into_iter()
-                    .map(|(a, b)| Rectangle::new([(a, lo), (b, hi)], PURPLE.mix(0.25).filled())),
-            )
-            .map_err(err)?;
+        shade_episodes(&mut chart, episodes, axis, (lo, hi))?;
         for sign in [1.0, -1.0] {
             chart
                 .draw_series(DashedLineSeries::new(
@@ -276,7 +291,7 @@ pub fn metric_overview(
                 .draw_series(LineSeries::new(
                     t.points
                         .iter()
-                        .filter_map(|p| p.ewma.map(|e| (axis.at(p.at_ms), e))),
+                        .filter_map(|p| p.ewma.map(|e| (axis.at(p.acquired_ms), e))),
                     RGBColor(150, 150, 150).mix(0.7),
                 ))
                 .map_err(err)?;
@@ -295,7 +310,7 @@ pub fn metric_overview(
                 .draw_series(LineSeries::new(
                     t.points
                         .iter()
-                        .filter_map(|p| p.ewma.map(|e| (axis.at(p.at_ms), e))),
+                        .filter_map(|p| p.ewma.map(|e| (axis.at(p.acquired_ms), e))),
                     colour.stroke_width(if legend { 2 } else { 1 }),
                 ))
                 .map_err(err)?;
@@ -335,14 +350,14 @@ pub fn metric_position(
     let ewma: Vec<(f64, f64)> = trace
         .points
         .iter()
-        .filter_map(|p| p.ewma.map(|e| (axis.at(p.at_ms), mean + e * sigma)))
+        .filter_map(|p| p.ewma.map(|e| (axis.at(p.acquired_ms), mean + e * sigma)))
         .collect();
     let limits: Vec<(f64, f64, f64)> = trace
         .points
         .iter()
         .filter_map(|p| {
             p.limit
-                .map(|l| (axis.at(p.at_ms), mean - l * sigma, mean + l * sigma))
+                .map(|l| (axis.at(p.acquired_ms), mean - l * sigma, mean + l * sigma))
         })
         .collect();
     let (lo, hi) = range(
@@ -373,13 +388,7 @@ pub fn metric_position(
             .axis_desc_style(("sans-serif", 10))
             .draw()
             .map_err(err)?;
-        chart
-            .draw_series(
-                spans(episodes, axis)
-                    .into_iter()
-                    .map(|(a, b)| Rectangle::new([(a, lo), (b, hi)], PURPLE.mix(0.25).filled())),
-            )
-            .map_err(err)?;
+        shade_episodes(&mut chart, episodes, axis, (lo, hi))?;
         if mean.is_finite() {
             chart
                 .draw_series(LineSeries::new([(0.0, mean), (axis.end, mean)], BLACK))
@@ -400,7 +409,7 @@ pub fn metric_position(
         chart
             .draw_series(trace.points.iter().map(|p| {
                 let colour = if p.in_drift { VERMILLION } else { BLUE };
-                Circle::new((axis.at(p.at_ms), p.value), 2, colour.filled())
+                Circle::new((axis.at(p.acquired_ms), p.value), 2, colour.filled())
             }))
             .map_err(err)?;
         chart

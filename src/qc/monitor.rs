@@ -9,12 +9,13 @@
 use std::collections::{BTreeMap, VecDeque};
 use std::time::Duration;
 
+use crate::pipeline::FileAnalysis;
 use crate::qc::alerts::{
     list_positions, AlertBook, AlertEvent, AlertState, Entry, Exit, Group, GroupBook,
     PositionEvidence,
 };
 use crate::qc::drift::{median, Chart, Signal, Step};
-use crate::qc::flags::{frame_flags, num, FrameFlag, PositionContext};
+use crate::qc::flags::{explain_recount, frame_flags, num, FrameFlag, PositionContext};
 use crate::qc::metrics::{Direction, FrameMetrics, Metric};
 use crate::qc::params::{AlertSettings, QualitySettings};
 
@@ -24,6 +25,8 @@ pub const STALLED: &str = "stalled";
 pub const FAILURE_RATE: &str = "failure_rate";
 /// Notice that the run has recorded every expected frame.
 pub const RUN_COMPLETE: &str = "run_complete";
+/// Condition of writes to the database failing for lack of space.
+pub const DATABASE_FULL: &str = "database_full";
 
 /// The alert condition of a drift on `metric`.
 pub fn drift_condition(metric: Metric) -> String {
@@ -151,6 +154,35 @@ impl RunMonitor {
         self.flagged += u64::from(!flags.is_empty());
         events.extend(self.count_recorded(at_ms, file));
         Verdict { flags, events }
+    }
+
+    /// Judges one recorded file's analysis at `position`, as the service
+    /// records it: a first version is observed ([`RunMonitor::observe`]), a
+    /// version that supersedes one already judged is judged again without
+    /// charting ([`RunMonitor::judge_again`]). Flags and charts use the first
+    /// result, so the run's metrics stay comparable; where a recount ran, the
+    /// flags say so ([`explain_recount`]).
+    pub fn judge(
+        &mut self,
+        position: &str,
+        file: &str,
+        at_ms: i64,
+        analysis: &FileAnalysis,
+        supersedes: bool,
+    ) -> Verdict {
+        let metrics = FrameMetrics::from(&analysis.result);
+        let mut verdict = if supersedes {
+            Verdict {
+                flags: self.judge_again(position, &metrics),
+                events: Vec::new(),
+            }
+        } else {
+            self.observe(position, file, at_ms, &metrics)
+        };
+        if let Some(recount) = &analysis.recount {
+            explain_recount(&mut verdict.flags, &analysis.result, recount);
+        }
+        verdict
     }
 
     /// Judges a new version, with other pixels, of a frame already observed
@@ -379,6 +411,25 @@ impl RunMonitor {
                 format!("{} MiB free again on {name}", free_bytes >> 20)
             }
         })
+    }
+
+    /// Whether writes to the database `db` fail for lack of space (`cause`
+    /// says how) or succeed again (`None`): one episode from the first
+    /// failed write to the first that succeeds. Raised whether or not the run
+    /// is complete: results wait in memory until then.
+    pub fn set_database_full(
+        &mut self,
+        db: &str,
+        cause: Option<&str>,
+        now_ms: i64,
+    ) -> Option<AlertEvent> {
+        self.book
+            .set(DATABASE_FULL, cause.is_some(), now_ms, None, || match cause {
+                Some(cause) => format!(
+                    "cannot write to the database {db} ({cause}): its volume is full; results wait (nothing is lost) and are recorded once space is freed"
+                ),
+                None => format!("the database {db} is written again"),
+            })
     }
 
     /// Forgets the open episodes (after a replay, whose events are discarded:
@@ -862,6 +913,26 @@ mod tests {
         );
         let back = m.check_free_space("/data", limit, 3).unwrap();
         assert_eq!(back.state, AlertState::Recovered);
+    }
+
+    /// Failed writes open one episode, however many fail; the first write
+    /// that succeeds closes it; the sentences name the database.
+    #[test]
+    fn failed_writes_for_lack_of_space_are_one_episode() {
+        let mut m = RunMonitor::new(QualitySettings::default());
+        assert_eq!(m.set_database_full("/d/fw.db", None, 0), None, "never full");
+        let full = m
+            .set_database_full("/d/fw.db", Some("database or disk is full"), 1)
+            .unwrap();
+        assert_eq!(
+            (full.condition.as_str(), full.state),
+            (DATABASE_FULL, AlertState::Opened)
+        );
+        assert!(full.message.contains("/d/fw.db (database or disk is full)"));
+        assert_eq!(m.set_database_full("/d/fw.db", Some("again"), 2), None);
+        let back = m.set_database_full("/d/fw.db", None, 3).unwrap();
+        assert_eq!((back.state, back.opened_at_ms), (AlertState::Recovered, 1));
+        assert_eq!(back.message, "the database /d/fw.db is written again");
     }
 
     #[test]

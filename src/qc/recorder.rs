@@ -14,14 +14,14 @@ use rusqlite::{params, Connection, OptionalExtension, Transaction};
 use crate::analysis::Method;
 use crate::pipeline::FileAnalysis;
 use crate::qc::alerts::{AlertEvent, AlertState};
-use crate::qc::flags::explain_recount;
 use crate::qc::metrics::FrameMetrics;
-use crate::qc::monitor::{RunMonitor, Verdict};
+use crate::qc::monitor::RunMonitor;
 use crate::qc::params::{AlertSettings, QualitySettings};
 use crate::qc::sinks::{AlertDispatcher, Outcome, SinkError};
+use crate::store::health::DatabaseFault;
 use crate::store::writer::FrameObserver;
 use crate::store::{now_ms, FrameKey, ACQUISITION_ORDER_SQL, FRAME_KEY_SQL, POSITION_SQL};
-use crate::text::shown;
+use crate::text::{shown, shown_path, Repeats};
 
 /// Why quality control could not start.
 #[derive(Debug, thiserror::Error)]
@@ -46,6 +46,8 @@ pub struct QcSetup {
     pub alerts: AlertSettings,
     /// Folders whose volumes' free space is watched (watched folders, database folder).
     pub volumes: Vec<PathBuf>,
+    /// The database (named in the alerts about it).
+    pub database: PathBuf,
 }
 
 /// The monitor of the writer's current run, and the sinks.
@@ -63,6 +65,14 @@ pub struct QcRecorder {
     /// The state before the open transaction, restored if it rolls back, so a
     /// retried batch is judged once.
     checkpoint: Option<(i64, RunMonitor)>,
+    /// Events raised outside a transaction and announced, not stored yet (the
+    /// database's volume was full): stored, in order, at the next try, their
+    /// deliveries as made.
+    unstored: Vec<AlertEvent>,
+    /// Delivery outcomes not recorded yet (the database's volume was full).
+    unrecorded: Vec<Outcome>,
+    /// Repeated warnings (alerts that cannot be stored yet), limited.
+    repeats: Repeats,
 }
 
 /// One frame's log line: what was recorded and how it was judged.
@@ -92,6 +102,9 @@ impl QcRecorder {
             pending: Vec::new(),
             pending_lines: Vec::new(),
             checkpoint: None,
+            unstored: Vec::new(),
+            unrecorded: Vec::new(),
+            repeats: Repeats::default(),
         };
         let replayed = recorder.replay(conn)?;
         recorder.close_earlier_runs(conn)?;
@@ -137,22 +150,9 @@ impl FrameObserver for QcRecorder {
         self.switch_run(tx, run_id)?;
         let at_ms = now_ms();
         let result = &analysis.result;
-        let metrics = FrameMetrics::from(result);
-        let mut verdict = if supersedes {
-            Verdict {
-                flags: self.monitor.judge_again(&position, &metrics),
-                events: Vec::new(),
-            }
-        } else {
-            self.monitor.observe(&position, &file, at_ms, &metrics)
-        };
-        if let Some(recount) = &analysis.recount {
-            tx.prepare_cached(
-                "UPDATE frames SET recount_threshold = ?2, recount_object_count = ?3, count_source = 'recount' WHERE id = ?1",
-            )?
-            .execute(params![frame_id, recount.threshold, recount.object_count as i64])?;
-            explain_recount(&mut verdict.flags, result, recount);
-        }
+        let verdict = self
+            .monitor
+            .judge(&position, &file, at_ms, analysis, supersedes);
         tx.prepare_cached("DELETE FROM flags WHERE frame_id = ?1")?
             .execute([frame_id])?;
         let mut insert = tx.prepare_cached(
@@ -219,7 +219,7 @@ impl FrameObserver for QcRecorder {
     /// Periodic checks that need no frame: the stall, and free space on the
     /// watched and database volumes.
     fn tick(&mut self, conn: &Connection) -> rusqlite::Result<()> {
-        record_outcomes(conn, &self.dispatcher.outcomes())?;
+        let recorded = self.record_outcomes(conn);
         let now = now_ms();
         let mut events: Vec<AlertEvent> = self.monitor.check_stall(now).into_iter().collect();
         for volume in &self.setup.volumes {
@@ -228,28 +228,148 @@ impl FrameObserver for QcRecorder {
                 events.extend(self.monitor.check_free_space(&name, free, now));
             }
         }
-        for event in &events {
-            self.store_event(conn, event, None)?;
-        }
-        // Outside a transaction each statement is already committed.
-        self.announce_pending();
-        Ok(())
+        self.record_now(conn, events);
+        recorded
+    }
+
+    /// Writes to the database fail for lack of space, or succeed again: the
+    /// `database_full` episode.
+    fn out_of_space(&mut self, conn: &Connection, cause: Option<&str>) {
+        let db = shown_path(&self.setup.database);
+        let event = self.monitor.set_database_full(&db, cause, now_ms());
+        self.record_now(conn, event.into_iter().collect());
+    }
+
+    /// Announces the fault (log and sinks) as a notice; it cannot be stored.
+    fn database_failed(&mut self, fault: &DatabaseFault) {
+        let event = AlertEvent::notice(fault.condition(), now_ms(), None, fault.to_string());
+        self.announce(&event, None);
     }
 
     /// Gives the sinks a short grace to deliver what is queued, cuts short
     /// the rest (left unfinished for the next start), and records the
-    /// outcomes.
-    fn close(self: Box<Self>, conn: &Connection) {
-        let outcomes = self.dispatcher.close();
-        if let Err(e) = record_outcomes(conn, &outcomes) {
-            tracing::error!(
-                "alert deliveries not recorded as made (sent again at the next start): {e}"
-            );
+    /// outcomes, unless the database has failed (`None`): nothing is
+    /// written into it then.
+    fn close(self: Box<Self>, conn: Option<&Connection>) {
+        let QcRecorder {
+            dispatcher,
+            mut unrecorded,
+            ..
+        } = *self;
+        unrecorded.extend(dispatcher.close());
+        if let Some(conn) = conn {
+            if let Err(e) = finish_deliveries(conn, &unrecorded) {
+                tracing::error!(
+                    "alert deliveries not recorded as made (sent again at the next start): {e}"
+                );
+            }
         }
     }
 }
 
 impl QcRecorder {
+    /// Records the outcomes of the deliveries finished since the last call.
+    /// Those that cannot be recorded now (the database's volume is full) are
+    /// kept and recorded at the next call, so a delivery made is not sent
+    /// again at the next start.
+    fn record_outcomes(&mut self, conn: &Connection) -> rusqlite::Result<()> {
+        self.unrecorded.extend(self.dispatcher.outcomes());
+        finish_deliveries(conn, &self.unrecorded)?;
+        self.unrecorded.clear();
+        Ok(())
+    }
+
+    /// Stores `events`, raised outside a transaction, each with its
+    /// deliveries' rows, and announces them. One that cannot be stored now
+    /// (the database's volume is full) is announced all the same, its
+    /// deliveries untracked; it is kept, with those after it, and stored at
+    /// a later call, in order, so a recovery never comes before the opening
+    /// it closes. Its delivery rows are then stored finished: the sinks had
+    /// the event when it was raised, so it is never sent twice, and it is
+    /// never lost while the service runs.
+    fn record_now(&mut self, conn: &Connection, events: Vec<AlertEvent>) {
+        let mut stored = 0;
+        for event in &self.unstored {
+            if let Err(e) = self.store_alone(conn, event, true) {
+                self.warn_unstored(event, &e);
+                break;
+            }
+            stored += 1;
+        }
+        self.unstored.drain(..stored);
+        for event in events {
+            if self.unstored.is_empty() {
+                match self.store_alone(conn, &event, false) {
+                    Ok(deliveries) => {
+                        self.announce(&event, Some(&deliveries));
+                        continue;
+                    }
+                    Err(e) => self.warn_unstored(&event, &e),
+                }
+            }
+            self.announce(&event, None);
+            self.unstored.push(event);
+        }
+    }
+
+    /// Stores `event` of the current run outside the writer's transaction,
+    /// with its deliveries' rows (finished already when `sent`), all or
+    /// nothing: a failed try leaves no half-stored alert to be stored again.
+    fn store_alone(
+        &self,
+        conn: &Connection,
+        event: &AlertEvent,
+        sent: bool,
+    ) -> rusqlite::Result<Vec<(&'static str, i64)>> {
+        conn.execute_batch("SAVEPOINT record_now")?;
+        let stored = store_rows(conn, self.run_id, event, None)
+            .and_then(|alert_id| self.store_deliveries(conn, alert_id, event, sent))
+            .and_then(|deliveries| {
+                conn.execute_batch("RELEASE record_now")?;
+                Ok(deliveries)
+            });
+        if stored.is_err() && !conn.is_autocommit() {
+            // Best effort: the error already says what went wrong.
+            let _ = conn.execute_batch("ROLLBACK TO record_now; RELEASE record_now");
+        }
+        stored
+    }
+
+    /// Stores one row per configured sink for `event` (alert row
+    /// `alert_id`), finished already when `sent`. Returns each sink with its
+    /// row.
+    fn store_deliveries(
+        &self,
+        conn: &Connection,
+        alert_id: Option<i64>,
+        event: &AlertEvent,
+        sent: bool,
+    ) -> rusqlite::Result<Vec<(&'static str, i64)>> {
+        let json = crate::qc::sinks::to_json(event);
+        let now = now_ms();
+        let mut insert = conn.prepare_cached(
+            "INSERT INTO alert_deliveries (alert_id, sink, event, queued_at_ms, finished_at_ms)
+             VALUES (?1, ?2, ?3, ?4, ?5)",
+        )?;
+        let mut deliveries = Vec::new();
+        for sink in self.dispatcher.sink_names() {
+            insert.execute(params![alert_id, sink, json, now, sent.then_some(now)])?;
+            deliveries.push((sink, conn.last_insert_rowid()));
+        }
+        Ok(deliveries)
+    }
+
+    /// An alert that cannot be stored yet (logged limited).
+    fn warn_unstored(&self, event: &AlertEvent, e: &rusqlite::Error) {
+        self.repeats.warn(
+            "alert not stored",
+            format_args!(
+                "alert {} not stored yet ({e}); it is stored at the next check",
+                shown(&event.condition)
+            ),
+        );
+    }
+
     /// Logs the recorded frames' lines and announces the stored alerts.
     fn announce_pending(&mut self) {
         for line in self.pending_lines.drain(..) {
@@ -263,7 +383,7 @@ impl QcRecorder {
             );
         }
         for (event, deliveries) in std::mem::take(&mut self.pending) {
-            self.announce(&event, &deliveries);
+            self.announce(&event, Some(&deliveries));
         }
     }
 
@@ -333,89 +453,15 @@ impl QcRecorder {
         event: &AlertEvent,
         frame_id: Option<i64>,
     ) -> rusqlite::Result<()> {
-        // The open episode the event is about: its condition and opening.
-        const EPISODE: &str =
-            "run_id = ?1 AND condition = ?2 AND opened_at_ms = ?3 AND closed_at_ms IS NULL";
-        let alert_id: Option<i64> = match event.state {
-            AlertState::Opened | AlertState::Notice => {
-                // A notice is an episode closed as it opens.
-                let notice = event.state == AlertState::Notice;
-                conn.prepare_cached(
-                    "INSERT INTO alerts (run_id, opened_at_ms, condition, message, frame_id, file, closed_at_ms, closed_state)
-                     VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8)",
-                )?
-                .execute(params![
-                    run_id,
-                    event.at_ms,
-                    event.condition,
-                    event.message,
-                    frame_id,
-                    event.file,
-                    notice.then_some(event.at_ms),
-                    notice.then_some(AlertState::Notice.as_str())
-                ])?;
-                Some(conn.last_insert_rowid())
-            }
-            AlertState::Updated => conn
-                .prepare_cached(&format!(
-                    "UPDATE alerts SET message = ?4 WHERE {EPISODE} RETURNING id"
-                ))?
-                .query_row(
-                    params![run_id, event.condition, event.opened_at_ms, event.message],
-                    |r| r.get(0),
-                )
-                .optional()?,
-            AlertState::Recovered | AlertState::Closed => conn
-                .prepare_cached(&format!(
-                    "UPDATE alerts SET closed_at_ms = ?4, closed_message = ?5, closed_state = ?6 WHERE {EPISODE} RETURNING id"
-                ))?
-                .query_row(
-                    params![
-                        run_id,
-                        event.condition,
-                        event.opened_at_ms,
-                        event.at_ms,
-                        event.message,
-                        event.state.as_str()
-                    ],
-                    |r| r.get(0),
-                )
-                .optional()?,
-        };
-        if let (Some(alert_id), Some(evidence), true) = (
-            alert_id,
-            &event.evidence,
-            matches!(
-                event.state,
-                AlertState::Opened | AlertState::Notice | AlertState::Updated
-            ),
-        ) {
-            conn.prepare_cached(
-                "INSERT OR REPLACE INTO alert_positions (alert_id, position, joined_at_ms, frame_id, message)
-                 VALUES (?1, ?2, ?3, ?4, ?5)",
-            )?
-            .execute(params![
-                alert_id,
-                evidence.position,
-                event.at_ms,
-                frame_id,
-                evidence.message
-            ])?;
-        }
-        let mut deliveries = Vec::new();
-        let json = crate::qc::sinks::to_json(event);
-        for sink in self.dispatcher.sink_names() {
-            conn.prepare_cached(
-                "INSERT INTO alert_deliveries (alert_id, sink, event, queued_at_ms) VALUES (?1, ?2, ?3, ?4)",
-            )?
-            .execute(params![alert_id, sink, json, now_ms()])?;
-            deliveries.push((sink, conn.last_insert_rowid()));
-        }
+        let alert_id = store_rows(conn, run_id, event, frame_id)?;
+        let deliveries = self.store_deliveries(conn, alert_id, event, false)?;
         self.pending.push((event.clone(), deliveries));
         Ok(())
     }
 
-    fn announce(&self, event: &AlertEvent, deliveries: &[(&'static str, i64)]) {
+    /// Logs `event` and hands it to the sinks: as the deliveries of the
+    /// given rows, or, with `None` (it is not stored), untracked to every sink.
+    fn announce(&self, event: &AlertEvent, deliveries: Option<&[(&'static str, i64)]>) {
         match event.state {
             AlertState::Opened => tracing::warn!(
                 condition = %shown(&event.condition),
@@ -445,8 +491,13 @@ impl QcRecorder {
                 shown(&event.message)
             ),
         }
-        for (sink, id) in deliveries {
-            self.dispatcher.send_to(sink, Some(*id), event);
+        match deliveries {
+            Some(deliveries) => {
+                for (sink, id) in deliveries {
+                    self.dispatcher.send_to(sink, Some(*id), event);
+                }
+            }
+            None => self.dispatcher.send(event),
         }
     }
 
@@ -543,7 +594,7 @@ fn resend_unfinished(conn: &Connection, dispatcher: &AlertDispatcher) -> rusqlit
             }
         };
         tracing::warn!("alert delivery {id} dropped: {reason}");
-        record_outcomes(
+        finish_deliveries(
             conn,
             &[Outcome {
                 id,
@@ -558,7 +609,7 @@ fn resend_unfinished(conn: &Connection, dispatcher: &AlertDispatcher) -> rusqlit
 }
 
 /// Marks deliveries finished: made, or given up with the reason.
-fn record_outcomes(conn: &Connection, outcomes: &[Outcome]) -> rusqlite::Result<()> {
+fn finish_deliveries(conn: &Connection, outcomes: &[Outcome]) -> rusqlite::Result<()> {
     let mut update = conn.prepare_cached(
         "UPDATE alert_deliveries SET finished_at_ms = ?2, error = ?3 WHERE id = ?1",
     )?;
@@ -566,6 +617,88 @@ fn record_outcomes(conn: &Connection, outcomes: &[Outcome]) -> rusqlite::Result<
         update.execute(params![o.id, now_ms(), o.result.as_ref().err()])?;
     }
     Ok(())
+}
+
+/// Stores one event of run `run_id` in `conn`: an opening or a notice is a
+/// new row; an update rewrites the open alert's sentence; a recovery or a
+/// run's end closes it. Each position an event brings in is stored with its
+/// evidence. Returns the alert's row (`None` when the episode is not open).
+fn store_rows(
+    conn: &Connection,
+    run_id: i64,
+    event: &AlertEvent,
+    frame_id: Option<i64>,
+) -> rusqlite::Result<Option<i64>> {
+    // The open episode the event is about: its condition and opening.
+    const EPISODE: &str =
+        "run_id = ?1 AND condition = ?2 AND opened_at_ms = ?3 AND closed_at_ms IS NULL";
+    let alert_id: Option<i64> = match event.state {
+        AlertState::Opened | AlertState::Notice => {
+            // A notice is an episode closed as it opens.
+            let notice = event.state == AlertState::Notice;
+            conn.prepare_cached(
+                "INSERT INTO alerts (run_id, opened_at_ms, condition, message, frame_id, file, closed_at_ms, closed_state)
+                 VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8)",
+            )?
+            .execute(params![
+                run_id,
+                event.at_ms,
+                event.condition,
+                event.message,
+                frame_id,
+                event.file,
+                notice.then_some(event.at_ms),
+                notice.then_some(AlertState::Notice.as_str())
+            ])?;
+            Some(conn.last_insert_rowid())
+        }
+        AlertState::Updated => conn
+            .prepare_cached(&format!(
+                "UPDATE alerts SET message = ?4 WHERE {EPISODE} RETURNING id"
+            ))?
+            .query_row(
+                params![run_id, event.condition, event.opened_at_ms, event.message],
+                |r| r.get(0),
+            )
+            .optional()?,
+        AlertState::Recovered | AlertState::Closed => conn
+            .prepare_cached(&format!(
+                "UPDATE alerts SET closed_at_ms = ?4, closed_message = ?5, closed_state = ?6 WHERE {EPISODE} RETURNING id"
+            ))?
+            .query_row(
+                params![
+                    run_id,
+                    event.condition,
+                    event.opened_at_ms,
+                    event.at_ms,
+                    event.message,
+                    event.state.as_str()
+                ],
+                |r| r.get(0),
+            )
+            .optional()?,
+    };
+    if let (Some(alert_id), Some(evidence), true) = (
+        alert_id,
+        &event.evidence,
+        matches!(
+            event.state,
+            AlertState::Opened | AlertState::Notice | AlertState::Updated
+        ),
+    ) {
+        conn.prepare_cached(
+            "INSERT OR REPLACE INTO alert_positions (alert_id, position, joined_at_ms, frame_id, message)
+             VALUES (?1, ?2, ?3, ?4, ?5)",
+        )?
+        .execute(params![
+            alert_id,
+            evidence.position,
+            event.at_ms,
+            frame_id,
+            evidence.message
+        ])?;
+    }
+    Ok(alert_id)
 }
 
 /// SQL for the positions an alert row names, as a JSON array in order.
@@ -624,6 +757,7 @@ mod tests {
                 ..AlertSettings::default()
             },
             volumes: Vec::new(),
+            database: dir.path().join("fw.db"),
         };
         let mut conn = crate::store::open_for_writing(&dir.path().join("fw.db")).unwrap();
         conn.execute(
@@ -653,7 +787,7 @@ mod tests {
         recorder.begin();
         judge(&mut recorder, &mut conn, &keys).commit().unwrap();
         recorder.committed();
-        Box::new(recorder).close(&conn);
+        Box::new(recorder).close(Some(&conn));
         let stored: i64 = conn
             .query_row(
                 "SELECT COUNT(*) FROM alerts WHERE condition = 'failure_rate'",
@@ -684,6 +818,7 @@ mod tests {
                 ..AlertSettings::default()
             },
             volumes: Vec::new(),
+            database: dir.path().join("fw.db"),
         };
         let conn = crate::store::open_for_writing(&dir.path().join("fw.db")).unwrap();
         conn.execute_batch(
@@ -697,7 +832,7 @@ mod tests {
         )
         .unwrap();
         let recorder = QcRecorder::start(&conn, 2, setup).unwrap();
-        Box::new(recorder).close(&conn);
+        Box::new(recorder).close(Some(&conn));
         let rows: Vec<(i64, Option<String>, Option<String>)> = conn
             .prepare("SELECT run_id, closed_state, closed_message FROM alerts ORDER BY id")
             .unwrap()

@@ -30,6 +30,7 @@ use rustls::pki_types::{pem::PemObject, CertificateDer};
 
 use crate::qc::alerts::AlertEvent;
 use crate::qc::params::{AlertSettings, CommandSink, WebhookSink};
+use crate::text::Repeats;
 
 /// What went wrong with a sink: a delivery that failed, or (when the
 /// configuration loads) a webhook URL or CA file that cannot be used. Each
@@ -196,6 +197,8 @@ pub struct AlertDispatcher {
     /// thread then stops.
     stop: Option<Sender<()>>,
     outcomes: Receiver<Outcome>,
+    /// Events dropped for a sink, logged limited.
+    repeats: Repeats,
 }
 
 enum Sink {
@@ -248,6 +251,7 @@ impl AlertDispatcher {
             threads: Vec::new(),
             stop: Some(stop_tx),
             outcomes: outcome_rx,
+            repeats: Repeats::default(),
         };
         for sink in sinks {
             let (event_tx, event_rx) = crossbeam_channel::bounded(QUEUE_CAPACITY);
@@ -289,16 +293,20 @@ impl AlertDispatcher {
         };
         match queue.try_send(delivery) {
             Ok(()) => {}
-            Err(TrySendError::Full(_)) => tracing::warn!(
-                "alert sink {name} is {QUEUE_CAPACITY} events behind; dropped {} for it",
-                event.condition
+            Err(TrySendError::Full(_)) => self.repeats.warn(
+                "sink queue full",
+                format_args!(
+                    "alert sink {name} is {QUEUE_CAPACITY} events behind; dropped {} for it",
+                    event.condition
+                ),
             ),
-            Err(TrySendError::Disconnected(_)) => {
-                tracing::error!(
+            Err(TrySendError::Disconnected(_)) => self.repeats.error(
+                "sink stopped",
+                format_args!(
                     "alert sink {name} has stopped; {} not sent",
                     event.condition
-                )
-            }
+                ),
+            ),
         }
     }
 
@@ -354,6 +362,8 @@ fn deliver_loop(
     stop: &Receiver<()>,
     outcomes: &Sender<Outcome>,
 ) {
+    // A sink that is down fails every event: one line per window.
+    let repeats = Repeats::default();
     while let Ok(Delivery { id, event }) = deliveries.recv() {
         if stopping(stop) {
             return; // the rest stays pending
@@ -369,10 +379,13 @@ fn deliver_loop(
                 );
                 return;
             }
-            Err(e) => tracing::warn!(
-                "alert {} could not be sent to the {} sink: {e}",
-                event.condition,
-                sink.name()
+            Err(e) => repeats.warn(
+                "delivery failed",
+                format_args!(
+                    "alert {} could not be sent to the {} sink: {e}",
+                    event.condition,
+                    sink.name()
+                ),
             ),
         }
         if let Some(id) = id {

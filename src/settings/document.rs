@@ -95,6 +95,7 @@ pub struct SegmentSection {
     pub connectivity: u8,
     pub split: String,
     pub split_min_depth_px: f64,
+    pub split_min_separation_px: f64,
     pub min_area_px: u64,
     pub max_area_px: u64,
     pub min_area_um2: f64,
@@ -118,9 +119,15 @@ impl SegmentSection {
             Background::RollingBall { radius_px } => ("rolling-ball", *radius_px),
             Background::FlatField(_) => ("flat-field", DEFAULT_ROLLING_BALL_RADIUS_PX),
         };
-        let split_min_depth_px = match p.split {
-            Split::None => Split::DEFAULT_MIN_DEPTH_PX,
-            Split::Distance { min_depth_px } => min_depth_px,
+        let (split_min_depth_px, split_min_separation_px) = match p.split {
+            Split::None => (
+                Split::DEFAULT_MIN_DEPTH_PX,
+                Split::DEFAULT_MIN_SEPARATION_PX,
+            ),
+            Split::Distance {
+                min_depth_px,
+                min_separation_px,
+            } => (min_depth_px, min_separation_px),
         };
         let flat = files.map(|f| &f.flat);
         let dark = files.and_then(|f| f.dark.as_ref());
@@ -141,6 +148,7 @@ impl SegmentSection {
             connectivity: p.connectivity.neighbours(),
             split: p.split.name().into(),
             split_min_depth_px,
+            split_min_separation_px,
             min_area_px: p.filter.min_area_px,
             max_area_px: p.filter.max_area_px,
             min_area_um2: p.filter.min_area_um2,

@@ -384,6 +384,10 @@ exclude_border = true
                 "segment.split_min_depth_px = 0",
             ),
             (
+                "[segment]\nsplit = \"distance\"\nsplit_min_separation_px = -1.0",
+                "segment.split_min_separation_px = -1",
+            ),
+            (
                 "[segment]\nmethod = \"multi-otsu\"\nclasses = 3\nboundary = 3",
                 "segment.boundary",
             ),
@@ -488,6 +492,7 @@ fill_holes = false
 connectivity = 4
 split = "distance"
 split_min_depth_px = 3.5
+split_min_separation_px = 6.5
 min_area_px = 12
 max_area_px = 5000
 min_area_um2 = 3.5

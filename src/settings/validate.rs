@@ -197,6 +197,12 @@ pub fn segment(
                 |v| v > 0.0 && v <= 1000.0,
                 "above 0, up to 1000",
             )?,
+            min_separation_px: check(
+                "segment.split_min_separation_px",
+                s.split_min_separation_px,
+                |v| (0.0..=10_000.0).contains(&v),
+                "0 to 10000",
+            )?,
         },
         other => return Err(choice("segment.split", other, "none or distance")),
     };

@@ -21,7 +21,7 @@ use crossbeam_channel::{Receiver, Sender};
 
 use crate::encode::{write_label_file, LabelRuns, PARTIAL_SUFFIX};
 use crate::store::{label_folder, label_image_path, LabelImages};
-use crate::text::{shown, shown_path};
+use crate::text::{shown, shown_path, Repeats};
 
 /// Label images waiting to be written before the writer waits in turn: a
 /// bound on the memory they hold (each held as runs, mostly far smaller than
@@ -42,6 +42,8 @@ pub struct LabelImageWriter {
     keep: LabelImages,
     tx: Sender<Pending>,
     thread: JoinHandle<()>,
+    /// Images that could not be queued, logged limited.
+    repeats: Repeats,
 }
 
 impl LabelImageWriter {
@@ -60,7 +62,12 @@ impl LabelImageWriter {
         let thread = std::thread::Builder::new()
             .name("label-images".into())
             .spawn(move || write_loop(&db, &rx))?;
-        Ok(Some(LabelImageWriter { keep, tx, thread }))
+        Ok(Some(LabelImageWriter {
+            keep,
+            tx,
+            thread,
+            repeats: Repeats::default(),
+        }))
     }
 
     /// Whether a frame's image is kept, given whether it got a flag.
@@ -81,9 +88,12 @@ impl LabelImageWriter {
             runs,
         };
         if self.tx.send(pending).is_err() {
-            tracing::error!(
-                file = %shown(file),
-                "the label image thread has stopped; no label image for frame {frame_id}"
+            self.repeats.error(
+                "label image thread stopped",
+                format_args!(
+                    "{}: the label image thread has stopped; no label image for frame {frame_id}",
+                    shown(file)
+                ),
             );
         }
     }
@@ -99,14 +109,19 @@ impl LabelImageWriter {
 
 fn write_loop(db: &Path, rx: &Receiver<Pending>) {
     remove_partial_files(&label_folder(db));
+    // A full volume fails every image: one line per kind and window.
+    let repeats = Repeats::default();
     for p in rx {
         let path = label_image_path(db, p.frame_id);
         if let Err(cause) = encode_and_write(&path, &p.runs) {
-            tracing::error!(
-                file = %shown(&p.file),
-                "label image of frame {} not written ({}); the frame's row is recorded",
-                p.frame_id,
-                shown(&cause)
+            repeats.error(
+                "label image not written",
+                format_args!(
+                    "{}: label image of frame {} not written ({}); the frame's row is recorded",
+                    shown(&p.file),
+                    p.frame_id,
+                    shown(&cause)
+                ),
             );
         }
     }

@@ -6,6 +6,8 @@
 //! [`read_run`]. This file only opens connections, migrates, and
 //! answers the watcher's "is this version of this file already recorded?".
 
+pub mod analyses;
+pub mod health;
 pub mod label_images;
 pub mod writer;
 
@@ -178,6 +180,18 @@ pub enum StoreError {
         path: PathBuf,
         /// The run number asked for.
         run: i64,
+    },
+    /// The run has no analysis with the number asked for.
+    #[error("run {run} of {path} has no analysis {analysis} (it has {count}: 1 is the watch service's, each reprocess adds one)")]
+    NoAnalysis {
+        /// The database.
+        path: PathBuf,
+        /// The run.
+        run: i64,
+        /// The analysis number asked for.
+        analysis: i64,
+        /// How many analyses the run has.
+        count: i64,
     },
     /// Another process holds the writer's lock on the database.
     #[error("another framewarden watch is recording into {db} (it holds {lock}); one service per database")]
@@ -477,19 +491,24 @@ fn check_ours(conn: &Connection, path: &Path) -> Result<(), StoreError> {
 }
 
 /// Reads run `run` (by default the current or last one) of the database at
-/// `db` in one read-only snapshot: opens it with [`open_read_only`], picks the
-/// run and calls `read` with the snapshot and the run's number (`None` when the
-/// database has no run yet and none was asked for). The readers (`status`,
-/// `export`) share it, so they open, check and pick runs alike; a running
-/// `watch` is never disturbed (WAL: readers do not block the writer).
+/// `db`, as analysis `analysis` gave it (by default the newest), in one
+/// read-only snapshot: opens it with [`open_read_only`], picks the run and
+/// the analysis, lays the analysis under the usual table names
+/// ([`analyses::present`]) and calls `read` with the snapshot and what it
+/// shows (`None` when the database has no run yet and none was asked for).
+/// The readers (`status`, `export`, the report) share it, so they open, check
+/// and pick runs alike; a running `watch` is never disturbed (WAL: readers do
+/// not block the writer).
 ///
 /// # Errors
 /// [`open_read_only`]'s errors, [`StoreError::NoRun`] for a run number the
-/// database does not have, and whatever `read` returns.
+/// database does not have, [`StoreError::NoAnalysis`] for an analysis number
+/// the run does not have, and whatever `read` returns.
 pub fn read_run<T, E: From<StoreError>>(
     db: &Path,
     run: Option<i64>,
-    read: impl FnOnce(&Connection, Option<i64>) -> Result<T, E>,
+    analysis: Option<i64>,
+    read: impl FnOnce(&Connection, Option<analyses::Shown>) -> Result<T, E>,
 ) -> Result<T, E> {
     let mut conn = open_read_only(db)?;
     let tx = conn.transaction().map_err(StoreError::sqlite(db))?;
@@ -508,7 +527,31 @@ pub fn read_run<T, E: From<StoreError>>(
         }
         .into());
     }
-    let out = read(&tx, run_id)?;
+    let shown = match run_id {
+        None => None,
+        Some(run_id) => {
+            let picked = analyses::pick(&tx, run_id, analysis).map_err(StoreError::sqlite(db))?;
+            let Some((id, number, count)) = picked else {
+                let count = analyses::pick(&tx, run_id, None)
+                    .map_err(StoreError::sqlite(db))?
+                    .map_or(1, |p| p.2);
+                return Err(StoreError::NoAnalysis {
+                    path: db.to_path_buf(),
+                    run: run_id,
+                    analysis: analysis.unwrap_or(1),
+                    count,
+                }
+                .into());
+            };
+            analyses::present(&tx, id, number).map_err(StoreError::sqlite(db))?;
+            Some(analyses::Shown {
+                run_id,
+                analysis: number,
+                analyses: count,
+            })
+        }
+    };
+    let out = read(&tx, shown)?;
     tx.finish().map_err(StoreError::sqlite(db))?;
     Ok(out)
 }
@@ -965,6 +1008,72 @@ mod tests {
             immutable_uri(Path::new("/var/lib/fw/run 1#?%.db")),
             "file:/var/lib/fw/run%201%23%3F%25.db?immutable=1"
         );
+    }
+
+    #[test]
+    fn v8_makes_the_recorded_results_analysis_1_of_their_run() {
+        let dir = tempfile::tempdir().unwrap();
+        let db = dir.path().join("fw.db");
+        {
+            let mut conn = Connection::open(&db).unwrap();
+            let tx = conn.transaction().unwrap();
+            for sql in &MIGRATIONS[..7] {
+                tx.execute_batch(sql).unwrap();
+            }
+            tx.pragma_update(None, "user_version", 7).unwrap();
+            tx.pragma_update(None, "application_id", APPLICATION_ID)
+                .unwrap();
+            tx.execute_batch(
+                "INSERT INTO runs (folders, started_at_ms, last_frame_at_ms, settings) VALUES ('[]', 5, 5, 'a'), ('[]', 9, 9, 'b');",
+            )
+            .unwrap();
+            tx.commit().unwrap();
+        }
+        let shown = |analysis: Option<i64>| {
+            read_run(&db, None, analysis, |_, shown| Ok::<_, StoreError>(shown))
+        };
+        let only_the_first = analyses::Shown {
+            run_id: 2,
+            analysis: 1,
+            analyses: 1,
+        };
+        // Read as it is (no migration: a reader never writes): the watch
+        // service's results are analysis 1 of 1, and there is no other.
+        assert_eq!(shown(None).unwrap(), Some(only_the_first));
+        assert!(matches!(
+            shown(Some(2)),
+            Err(StoreError::NoAnalysis {
+                analysis: 2,
+                count: 1,
+                ..
+            })
+        ));
+        let conn = open_for_writing(&db).unwrap();
+        let rows = |conn: &Connection| -> Vec<(i64, i64, String, String, i64)> {
+            conn.prepare(
+                "SELECT run_id, number, settings, source, finished_at_ms FROM analyses ORDER BY run_id",
+            )
+            .unwrap()
+            .query_map([], |r| Ok((r.get(0)?, r.get(1)?, r.get(2)?, r.get(3)?, r.get(4)?)))
+            .unwrap()
+            .collect::<Result<_, _>>()
+            .unwrap()
+        };
+        assert_eq!(
+            rows(&conn),
+            [
+                (1, 1, "a".into(), "watch".into(), 5),
+                (2, 1, "b".into(), "watch".into(), 9)
+            ]
+        );
+        assert_eq!(shown(None).unwrap(), Some(only_the_first));
+        // A run started later has its analysis 1 from the start.
+        conn.execute(
+            "INSERT INTO runs (folders, started_at_ms, last_frame_at_ms, settings) VALUES ('[]', 12, 12, 'c')",
+            [],
+        )
+        .unwrap();
+        assert_eq!(rows(&conn)[2], (3, 1, "c".into(), "watch".into(), 12));
     }
 
     #[test]

@@ -16,19 +16,22 @@
 //! only records and calls the observer inside its transaction.
 
 use std::path::PathBuf;
+use std::sync::Arc;
 use std::thread::JoinHandle;
-use std::time::Duration;
+use std::time::{Duration, Instant};
 
 use crossbeam_channel::{Receiver, Sender};
+use rusqlite::types::Value;
 use rusqlite::{params, Connection, OptionalExtension, Transaction, TransactionBehavior};
 
 use crate::analysis::ObjectMeasures;
 use crate::encode::LabelRuns;
 use crate::naming::NameParts;
 use crate::pipeline::FileAnalysis;
+use crate::store::health::{is_out_of_space, DatabaseFault, DatabaseHealth};
 use crate::store::label_images::LabelImageWriter;
 use crate::store::{now_ms, FrameKey, COUNTED_SQL, FRAME_KEY_SQL};
-use crate::text::shown;
+use crate::text::{shown, Repeats};
 
 /// Why the writer could not start.
 #[derive(Debug, thiserror::Error)]
@@ -76,15 +79,25 @@ pub trait FrameObserver: Send {
     fn committed(&mut self);
     /// The transaction failed and was rolled back.
     fn rolled_back(&mut self);
-    /// Periodic checks that need no frame, outside any transaction (the
-    /// writer calls this while idle).
+    /// Periodic checks that need no frame, outside any transaction: the
+    /// writer calls this on a clock, busy or idle, also while a commit waits
+    /// to be tried again.
     ///
     /// # Errors
-    /// SQLite errors.
+    /// SQLite errors (the writer logs them and calls again on its clock).
     fn tick(&mut self, conn: &Connection) -> rusqlite::Result<()>;
+    /// A commit failed for lack of space on the database's volume (`cause`
+    /// says how), or, with `None`, one succeeded again after such failures.
+    /// Called outside any transaction, once per change.
+    fn out_of_space(&mut self, conn: &Connection, cause: Option<&str>);
+    /// The database cannot be used any more (damaged, deleted or replaced):
+    /// the writer stops without writing anything more into it, so nothing
+    /// about it can be stored; called once, before [`FrameObserver::close`].
+    fn database_failed(&mut self, fault: &DatabaseFault);
     /// The writer is ending: finish what is queued, recording in `conn`
-    /// (outside any transaction) what needs recording.
-    fn close(self: Box<Self>, conn: &Connection);
+    /// (outside any transaction) what needs recording; `None` after
+    /// [`FrameObserver::database_failed`], when nothing can be recorded.
+    fn close(self: Box<Self>, conn: Option<&Connection>);
 }
 
 /// One thing to record.
@@ -125,7 +138,8 @@ pub enum StoreOp {
         attempts: u32,
         /// The result (and recount) to record.
         analysis: Box<FileAnalysis>,
-        /// The first result's label image when label images are on; encoded
+        /// The label image of the count used (the recount's where there is
+        /// one) when label images are on; encoded
         /// and written once the row commits, if the frame's image is kept.
         label_image: Option<LabelRuns>,
     },
@@ -214,6 +228,9 @@ pub struct WriterSetup {
     pub observer: Option<Box<dyn FrameObserver>>,
     /// Writes the kept label images after each commit; `None` = off.
     pub label_images: Option<LabelImageWriter>,
+    /// The database's file and faults, shared with the service's other
+    /// connections; checked on the writer's clock.
+    pub health: Arc<DatabaseHealth>,
 }
 
 impl Writer {
@@ -238,6 +255,11 @@ impl Writer {
             label_images: setup.label_images,
             held: Vec::new(),
             session_started_ms: now_ms(),
+            health: setup.health,
+            out_of_space: false,
+            next_check: Instant::now(),
+            next_tick: Instant::now() + OBSERVER_TICK,
+            repeats: Repeats::default(),
         };
         let run_id = state.run.id;
         let thread = std::thread::Builder::new()
@@ -248,7 +270,7 @@ impl Writer {
     }
 
     /// True once the thread has ended: before every sender is dropped, only
-    /// by a panic.
+    /// by a database fault ([`DatabaseHealth::fault`] says which) or a panic.
     pub fn is_finished(&self) -> bool {
         self.thread.is_finished()
     }
@@ -274,6 +296,15 @@ struct WriterState {
     /// Rows queued from this moment on are this session's: only they are
     /// waited for (a row an earlier process left queued may never come back).
     session_started_ms: i64,
+    health: Arc<DatabaseHealth>,
+    /// Whether the last commit failed for lack of space.
+    out_of_space: bool,
+    /// When the database's file is looked at next.
+    next_check: Instant,
+    /// When the observer's periodic checks run next.
+    next_tick: Instant,
+    /// The writer's repeated warnings (retries), limited.
+    repeats: Repeats,
 }
 
 /// A recorded frame whose label image is kept: its op's place in the batch
@@ -290,8 +321,12 @@ struct Committed {
     kept: Vec<KeptImage>,
 }
 
-/// How often the writer, when idle, lets the observer check for a stall.
+/// How often the writer lets the observer check for a stall and free space,
+/// busy or idle.
 const OBSERVER_TICK: Duration = Duration::from_secs(5);
+
+/// How often the writer looks at its database file (deleted or replaced).
+const HEALTH_CHECK: Duration = Duration::from_secs(1);
 
 impl WriterState {
     fn run_loop(&mut self, ops_rx: &Receiver<StoreOp>) {
@@ -299,16 +334,16 @@ impl WriterState {
         // waiting. Under load batches grow; when quiet a frame commits at once,
         // so batching never adds latency.
         loop {
-            let first = match ops_rx.recv_timeout(OBSERVER_TICK) {
+            if self.on_clock().is_some() {
+                break;
+            }
+            let wait = self
+                .next_check
+                .min(self.next_tick)
+                .saturating_duration_since(Instant::now());
+            let first = match ops_rx.recv_timeout(wait) {
                 Ok(op) => op,
-                Err(crossbeam_channel::RecvTimeoutError::Timeout) => {
-                    if let Some(observer) = self.observer.as_mut() {
-                        if let Err(e) = observer.tick(&self.conn) {
-                            tracing::error!("quality control: {e}");
-                        }
-                    }
-                    continue;
-                }
+                Err(crossbeam_channel::RecvTimeoutError::Timeout) => continue,
                 Err(crossbeam_channel::RecvTimeoutError::Disconnected) => break,
             };
             // Held outcomes first: they are older than anything new.
@@ -326,6 +361,11 @@ impl WriterState {
                 waiting,
                 kept,
             } = self.commit_with_retry(&batch);
+            if self.health.fault().is_some() {
+                // Nothing of this batch is recorded; its frames are redone
+                // at the next start.
+                break;
+            }
             if done {
                 for op in &batch {
                     if let StoreOp::InHand { committed, .. } = op {
@@ -356,6 +396,10 @@ impl WriterState {
             }
             (self.on_commit)(&finished);
         }
+        if let Some(fault) = self.health.fault() {
+            self.stop_on(&fault);
+            return;
+        }
         if !self.held.is_empty() {
             tracing::info!(
                 "{} results waiting for earlier frames stay queued; the next start redoes them",
@@ -370,7 +414,7 @@ impl WriterState {
             tracing::error!("cannot mark run {} ended: {e}", self.run.id);
         }
         if let Some(observer) = self.observer.take() {
-            observer.close(&self.conn);
+            observer.close(Some(&self.conn));
         }
         // Everything into the database file and the log emptied, so that a
         // reader who cannot write the folder finds a database complete on its
@@ -390,12 +434,71 @@ impl WriterState {
         }
     }
 
+    /// The writer's clock, busy or idle: the database's file every
+    /// [`HEALTH_CHECK`], the observer's periodic checks every
+    /// [`OBSERVER_TICK`]. Returns the fault that ends the writer, if any
+    /// (found here or by another connection).
+    fn on_clock(&mut self) -> Option<DatabaseFault> {
+        let now = Instant::now();
+        if now >= self.next_check {
+            self.next_check = now + HEALTH_CHECK;
+            if let Some(fault) = self.health.check() {
+                return Some(fault);
+            }
+        }
+        if now >= self.next_tick {
+            self.next_tick = now + OBSERVER_TICK;
+            if let Some(observer) = self.observer.as_mut() {
+                if let Err(e) = observer.tick(&self.conn) {
+                    self.repeats
+                        .error("observer tick", format_args!("quality control: {e}"));
+                }
+            }
+        }
+        self.health.fault()
+    }
+
+    /// Waits `pause` before a commit is tried again, keeping the clock;
+    /// returns early with a fault.
+    fn wait_to_retry(&mut self, pause: Duration) -> Option<DatabaseFault> {
+        let until = Instant::now() + pause;
+        loop {
+            if let Some(fault) = self.on_clock() {
+                return Some(fault);
+            }
+            let now = Instant::now();
+            if now >= until {
+                return None;
+            }
+            let next = self.next_check.min(self.next_tick).min(until);
+            std::thread::sleep(next.saturating_duration_since(now));
+        }
+    }
+
+    /// Ends the writer on a fault: nothing more is written into the
+    /// database (not even the run's end), the observer announces the fault,
+    /// and the kept label images already queued are written.
+    fn stop_on(&mut self, fault: &DatabaseFault) {
+        tracing::error!("{fault}");
+        if let Some(mut observer) = self.observer.take() {
+            observer.database_failed(fault);
+            observer.close(None);
+        }
+        if let Some(images) = self.label_images.take() {
+            images.finish();
+        }
+    }
+
     /// Commits `batch`, retrying: for as long as it takes while the database
     /// is busy, locked, full or failing I/O (conditions that clear: another
     /// program's transaction ends, space is freed), so nothing is dropped and
     /// the bounded channel holds the pipeline back meanwhile; up to
-    /// `GIVE_UP_AFTER` attempts for any other error. Returns the positions in
-    /// `batch` of the outcomes still waiting for earlier frames.
+    /// `GIVE_UP_AFTER` attempts for any other error. A damaged database is
+    /// not retried: it is a fault ([`DatabaseHealth::report`]), and so is a
+    /// fault found on the clock while waiting to retry. A commit that fails
+    /// for lack of space, and the first that succeeds after, are told to the
+    /// observer. Returns the positions in `batch` of the outcomes still
+    /// waiting for earlier frames.
     fn commit_with_retry(&mut self, batch: &[StoreOp]) -> Committed {
         const GIVE_UP_AFTER: u32 = 5;
         let mut attempt = 0u32;
@@ -412,18 +515,41 @@ impl WriterState {
                 }
             }
             match result {
-                Ok(committed) => return committed,
+                Ok(committed) => {
+                    if std::mem::take(&mut self.out_of_space) {
+                        if let Some(observer) = self.observer.as_mut() {
+                            observer.out_of_space(&self.conn, None);
+                        }
+                    }
+                    return committed;
+                }
+                Err(e) if self.health.report(&e) => return Committed::default(),
                 Err(e) if attempt < GIVE_UP_AFTER || clears_by_itself(&e) => {
-                    tracing::warn!(
-                        "store: commit of {} ops failed ({e}); retrying (attempt {attempt})",
-                        batch.len()
+                    if is_out_of_space(&e, self.health.database()) && !self.out_of_space {
+                        self.out_of_space = true;
+                        if let Some(observer) = self.observer.as_mut() {
+                            observer.out_of_space(&self.conn, Some(&e.to_string()));
+                        }
+                    }
+                    self.repeats.warn(
+                        "commit failed",
+                        format_args!(
+                            "store: commit of {} ops failed ({e}); retrying (attempt {attempt})",
+                            batch.len()
+                        ),
                     );
-                    std::thread::sleep(Duration::from_millis(200 * u64::from(attempt.min(25))));
+                    let pause = Duration::from_millis(200 * u64::from(attempt.min(25)));
+                    if self.wait_to_retry(pause).is_some() {
+                        return Committed::default();
+                    }
                 }
                 Err(e) => {
                     // Nothing is lost for good: the frames stay unrecorded or
                     // queued, and the next start's catch-up scan redoes them.
-                    tracing::error!("store: giving up on a batch of {} ops: {e}", batch.len());
+                    self.repeats.error(
+                        "batch given up",
+                        format_args!("store: giving up on a batch of {} ops: {e}", batch.len()),
+                    );
                     return Committed::default();
                 }
             }
@@ -756,6 +882,57 @@ fn set_in_hand(tx: &Transaction<'_>, key: &FrameKey, in_hand: bool) -> rusqlite:
     Ok(())
 }
 
+/// The columns of a frame's result that an analysis fills (in `frames` for
+/// the watch service's analysis, in `analysis_frames` for a reprocess), in
+/// the order of [`result_values`].
+pub const RESULT_COLUMNS: &str = "width, height, bit_depth, method, threshold, separability, \
+     object_count, foreground_fraction, background_level, saturation_fraction, focus, \
+     illumination_change, pixel_size_um, pixel_size_source, bimodality, size_filtered, \
+     merged_fraction, pixel_hash, recount_threshold, recount_object_count, count_source";
+
+/// The values of [`RESULT_COLUMNS`] for one file's analysis; the recount's
+/// threshold, count and `count_source = 'recount'` where it ran, else NULL.
+pub fn result_values(analysis: &FileAnalysis) -> Vec<Value> {
+    let r = &analysis.result;
+    let real = Value::Real;
+    let int = |n: usize| Value::Integer(n as i64);
+    let recount = analysis.recount.as_ref();
+    vec![
+        int(r.width),
+        int(r.height),
+        Value::Integer(i64::from(r.bit_depth)),
+        Value::Text(r.method.clone()),
+        real(r.threshold),
+        real(r.separability),
+        int(r.object_count),
+        real(r.foreground_fraction),
+        real(r.background_level),
+        real(r.saturation_fraction),
+        real(r.focus),
+        real(r.illumination_change),
+        r.pixel_size_um.map_or(Value::Null, real),
+        analysis
+            .pixel_size_source
+            .map_or(Value::Null, |s| Value::Text(s.as_str().into())),
+        real(r.bimodality),
+        int(r.size_filtered),
+        real(r.merged_fraction),
+        Value::Integer(analysis.pixel_hash as i64),
+        recount.map_or(Value::Null, |c| real(c.threshold)),
+        recount.map_or(Value::Null, |c| int(c.object_count)),
+        recount.map_or(Value::Null, |_| Value::Text("recount".into())),
+    ]
+}
+
+/// `?first, ?first+1, …`: one numbered placeholder per [`RESULT_COLUMNS`] entry.
+pub fn result_placeholders(first: usize) -> String {
+    let n = RESULT_COLUMNS.split(',').count();
+    (first..first + n)
+        .map(|i| format!("?{i}"))
+        .collect::<Vec<_>>()
+        .join(", ")
+}
+
 /// Returns the frame's id and how it stands to an earlier version, or `None`
 /// when there was no unfinished row to complete.
 fn record_done(
@@ -766,57 +943,34 @@ fn record_done(
 ) -> rusqlite::Result<Option<(i64, Version)>> {
     let r = &analysis.result;
     let now = now_ms();
+    let mut values = vec![
+        Value::Text(key.path.clone()),
+        Value::Integer(key.size_bytes as i64),
+        Value::Integer(key.mtime_ns),
+        Value::Integer(i64::from(attempts)),
+        Value::Integer(now),
+    ];
+    values.extend(result_values(analysis));
     let frame_id: Option<(i64, i64, Position)> = tx
         .prepare_cached(&format!(
             "UPDATE frames SET status = 'done', in_hand = 0, error = NULL, attempts = ?4, analyzed_at_ms = ?5,
-                 latency_ms = MAX(0, ?5 - ready_at_ms),
-                 width = ?6, height = ?7, bit_depth = ?8, method = ?9, threshold = ?10, separability = ?11,
-                 object_count = ?12, foreground_fraction = ?13, background_level = ?14,
-                 saturation_fraction = ?15, focus = ?16, illumination_change = ?17,
-                 pixel_size_um = ?18, pixel_size_source = ?19, bimodality = ?20, size_filtered = ?21,
-                 merged_fraction = ?22, pixel_hash = ?23
+                 latency_ms = MAX(0, ?5 - ready_at_ms), ({RESULT_COLUMNS}) = ({})
              WHERE {FRAME_KEY_SQL} AND status <> 'done'
-             RETURNING id, run_id, time_point, well, site, channel"
+             RETURNING id, run_id, time_point, well, site, channel",
+            result_placeholders(6)
         ))?
-        .query_row(
-            params![
-                key.path,
-                key.size_bytes as i64,
-                key.mtime_ns,
-                attempts,
-                now,
-                r.width as i64,
-                r.height as i64,
-                r.bit_depth,
-                r.method,
-                r.threshold,
-                r.separability,
-                r.object_count as i64,
-                r.foreground_fraction,
-                r.background_level,
-                r.saturation_fraction,
-                r.focus,
-                r.illumination_change,
-                r.pixel_size_um,
-                analysis.pixel_size_source.map(|s| s.as_str()),
-                r.bimodality,
-                r.size_filtered as i64,
-                r.merged_fraction,
-                analysis.pixel_hash as i64,
-            ],
-            |row| {
-                Ok((
-                    row.get(0)?,
-                    row.get(1)?,
-                    Position {
-                        time_point: row.get(2)?,
-                        well: row.get(3)?,
-                        site: row.get(4)?,
-                        channel: row.get(5)?,
-                    },
-                ))
-            },
-        )
+        .query_row(rusqlite::params_from_iter(values), |row| {
+            Ok((
+                row.get(0)?,
+                row.get(1)?,
+                Position {
+                    time_point: row.get(2)?,
+                    well: row.get(3)?,
+                    site: row.get(4)?,
+                    channel: row.get(5)?,
+                },
+            ))
+        })
         .optional()?;
     let Some((frame_id, run_id, position)) = frame_id else {
         tracing::warn!(
@@ -829,9 +983,9 @@ fn record_done(
     tx.prepare_cached("DELETE FROM objects WHERE frame_id = ?1")?
         .execute([frame_id])?;
     if !matches!(version, Version::SamePixels(_)) {
-        insert_objects(tx, frame_id, "raw", &r.objects)?;
+        insert_objects(tx, ObjectsOf::Watch, frame_id, "raw", &r.objects)?;
         if let Some(recount) = &analysis.recount {
-            insert_objects(tx, frame_id, "recount", &recount.objects)?;
+            insert_objects(tx, ObjectsOf::Watch, frame_id, "recount", &recount.objects)?;
         }
     }
     Ok(Some((frame_id, version)))
@@ -892,27 +1046,47 @@ fn compare_with_earlier(
 /// than one statement per object (hundreds of objects per frame).
 const OBJECTS_PER_INSERT: usize = 32;
 
-fn insert_objects(
-    tx: &Transaction<'_>,
+/// Which analysis objects are recorded for: the watch service's own (table
+/// `objects`) or a reprocess's (`analysis_objects`, by `analyses.id`).
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum ObjectsOf {
+    /// The watch service's analysis: `objects`.
+    Watch,
+    /// The analysis with this `analyses.id`: `analysis_objects`.
+    Analysis(i64),
+}
+
+/// Records `objects` of `frame_id`'s result `result` (`raw` or `recount`).
+///
+/// # Errors
+/// SQLite errors.
+pub fn insert_objects(
+    tx: &Connection,
+    of: ObjectsOf,
     frame_id: i64,
     result: &str,
     objects: &[ObjectMeasures],
 ) -> rusqlite::Result<()> {
-    use rusqlite::types::Value;
+    let (table, first, first_value) = match of {
+        ObjectsOf::Watch => ("objects", "", None),
+        ObjectsOf::Analysis(id) => ("analysis_objects", "analysis_id, ", Some(id)),
+    };
+    let width = 21 + usize::from(first_value.is_some());
     for chunk in objects.chunks(OBJECTS_PER_INSERT) {
-        let row = "(?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)";
+        let row = format!("({})", vec!["?"; width].join(", "));
         let sql = format!(
-            "INSERT INTO objects (frame_id, result, label, area_px, area_um2, centroid_x, centroid_y,
+            "INSERT INTO {table} ({first}frame_id, result, label, area_px, area_um2, centroid_x, centroid_y,
                  bbox_x_min, bbox_y_min, bbox_x_max, bbox_y_max, mean_intensity, integrated_intensity,
                  max_intensity, perimeter_px, circularity, major_axis_px, minor_axis_px, eccentricity,
                  solidity, channels)
              VALUES {}",
-            vec![row; chunk.len()].join(", ")
+            vec![row.as_str(); chunk.len()].join(", ")
         );
-        let mut values: Vec<Value> = Vec::with_capacity(chunk.len() * 21);
+        let mut values: Vec<Value> = Vec::with_capacity(chunk.len() * width);
         for o in chunk {
             let channels = (!o.channels.is_empty())
                 .then(|| serde_json::to_string(&o.channels).unwrap_or_default());
+            values.extend(first_value.map(Value::Integer));
             values.extend([
                 Value::Integer(frame_id),
                 Value::Text(result.to_owned()),
@@ -1061,12 +1235,14 @@ mod tests {
         on_commit: CommitHook,
     ) -> (Writer, Sender<StoreOp>) {
         let run = open_run(&mut conn, &policy).unwrap();
+        let db = std::path::PathBuf::from(conn.path().unwrap());
         let setup = WriterSetup {
             capacity,
             max_batch: capacity,
             on_commit,
             observer: None,
             label_images: None,
+            health: Arc::new(DatabaseHealth::new(&db)),
         };
         Writer::start(conn, policy, run, setup).unwrap()
     }
@@ -1204,6 +1380,7 @@ mod tests {
                 // Without an observer no frame is flagged.
                 observer: None,
                 label_images: LabelImageWriter::start(&db, keep).unwrap(),
+                health: Arc::new(DatabaseHealth::new(&db)),
             };
             let (w, tx) = Writer::start(conn, policy, run, setup).unwrap();
             let a = key("/acq/a.tif", 10);
@@ -1382,7 +1559,9 @@ mod tests {
         fn tick(&mut self, _: &Connection) -> rusqlite::Result<()> {
             Ok(())
         }
-        fn close(self: Box<Self>, _: &Connection) {}
+        fn out_of_space(&mut self, _: &Connection, _: Option<&str>) {}
+        fn database_failed(&mut self, _: &DatabaseFault) {}
+        fn close(self: Box<Self>, _: Option<&Connection>) {}
     }
 
     fn start_judged(db: &std::path::Path) -> (Writer, Sender<StoreOp>, JudgedLog) {
@@ -1395,6 +1574,7 @@ mod tests {
             on_commit: Box::new(|_| {}),
             observer: Some(Box::new(Judged(Arc::clone(&judged)))),
             label_images: None,
+            health: Arc::new(DatabaseHealth::new(db)),
         };
         let (w, tx) = Writer::start(conn, policy(false), run, setup).unwrap();
         (w, tx, judged)

@@ -22,9 +22,10 @@ use crossbeam_channel::{Receiver, RecvTimeoutError, Sender};
 use notify::event::{CreateKind, EventKind, ModifyKind};
 use rusqlite::Connection;
 
+use crate::store::health::DatabaseHealth;
 use crate::store::writer::StoreOp;
 use crate::store::{lookup, now_ms, FrameKey, FrameStatus};
-use crate::text::shown_path;
+use crate::text::{shown_path, Repeats};
 use crate::watch::params::WatchSettings;
 use crate::watch::queue::{Job, Progress};
 
@@ -97,8 +98,12 @@ pub struct Scheduler {
     pub scan_tx: Sender<PathBuf>,
     /// A read-only connection for "is this version already recorded?".
     pub reader: Connection,
+    /// Where the reader's errors that mean a damaged database go.
+    pub health: Arc<DatabaseHealth>,
     /// Shared counters.
     pub progress: Arc<Progress>,
+    /// The scheduler's repeated warnings, limited.
+    pub repeats: Repeats,
 }
 
 impl Scheduler {
@@ -122,7 +127,10 @@ impl Scheduler {
                 Ok(SchedMsg::Stop) | Err(RecvTimeoutError::Disconnected) => break,
                 Ok(SchedMsg::Event(Ok(event))) => self.on_event(&event, &mut pending),
                 Ok(SchedMsg::Event(Err(e))) => {
-                    tracing::warn!("watcher error ({e}); rescanning");
+                    self.repeats.warn(
+                        "watcher error",
+                        format_args!("watcher error ({e}); rescanning"),
+                    );
                     self.rescan_all();
                 }
                 Ok(SchedMsg::Found(paths)) => {
@@ -276,9 +284,14 @@ impl Scheduler {
         let recorded = match lookup(&self.reader, &key) {
             Ok(status) => status,
             Err(e) => {
-                tracing::warn!(
-                    "store look-up for {} failed ({e}); trying again",
-                    shown_path(path)
+                // A damaged database stops the service (the writer sees it).
+                self.health.report(&e);
+                self.repeats.warn(
+                    "store look-up failed",
+                    format_args!(
+                        "store look-up for {} failed ({e}); trying again",
+                        shown_path(path)
+                    ),
                 );
                 c.due = now + Duration::from_millis(500);
                 return Look::Again;
@@ -387,7 +400,10 @@ impl Scheduler {
 
     fn send_store(&self, op: StoreOp) {
         if self.store_tx.send(op).is_err() {
-            tracing::error!("the store writer has stopped; a record was not written");
+            self.repeats.error(
+                "store writer stopped",
+                "the store writer has stopped; a record was not written",
+            );
         }
     }
 }
@@ -405,6 +421,7 @@ enum Look {
 pub fn scan_loop(
     requests: &Receiver<PathBuf>,
     reader: &Connection,
+    health: &DatabaseHealth,
     watch: &WatchSettings,
     sched_tx: &Sender<SchedMsg>,
     stopping: &AtomicBool,
@@ -430,7 +447,12 @@ pub fn scan_loop(
                 Ok(Some(FrameStatus::Done | FrameStatus::Failed)) => {}
                 // Unrecorded, queued by an earlier process, or a look-up error:
                 // hand it over; the scheduler checks again before queueing.
-                _ => found.push(entry.into_path()),
+                Ok(_) => found.push(entry.into_path()),
+                Err(e) => {
+                    // A damaged database stops the service (the writer sees it).
+                    health.report(&e);
+                    found.push(entry.into_path());
+                }
             }
         }
         tracing::debug!(

@@ -185,32 +185,42 @@ def read_csv(path, want):
     return df.to_dict("records"), list(df.columns)
 
 
-last_run = db.execute("SELECT max(id) FROM runs").fetchone()[0]
-tables = {"frames": frames, "objects": objects, "alerts": alerts, "flags": flags}
-for name, expected in tables.items():
-    want = expected(last_run)
-    if not want:
-        failures.append(f"{name}: the test database has no rows for it")
-    compare(f"{name}.csv (pandas)", *read_csv(DIR / f"{name}.csv", want), want)
-    table = pq.read_table(DIR / f"{name}.parquet")
-    compare(f"{name}.parquet (pyarrow)", table.to_pylist(), table.column_names, want)
-    df = pd.read_parquet(DIR / f"{name}.parquet")
-    compare(f"{name}.parquet (pandas)", df.to_dict("records"), list(df.columns), want)
-    # DuckDB reads the Parquet file on its own (its own reader, not pyarrow's).
-    rel = duckdb.sql(f"SELECT * FROM read_parquet('{DIR / f'{name}.parquet'}')")
-    compare(f"{name}.parquet (duckdb)", [dict(zip(rel.columns, r)) for r in rel.fetchall()], rel.columns, want)
-    # Types a reader can rely on: integers, doubles, text.
-    for field in table.schema:
-        kinds = {type(r[field.name]) for r in want} - {type(None)}
-        if kinds == {int} and field.type != pa.int64():
-            failures.append(f"{name}.parquet {field.name}: {field.type}, expected int64")
-        if kinds == {float} and field.type != pa.float64():
-            failures.append(f"{name}.parquet {field.name}: {field.type}, expected double")
-        if kinds == {str} and field.type != pa.string():
-            failures.append(f"{name}.parquet {field.name}: {field.type}, expected string")
-compare("frames_run1.csv (pandas)", *read_csv(DIR / "frames_run1.csv", frames(1)), frames(1))
+def main():
+    last_run = db.execute("SELECT max(id) FROM runs").fetchone()[0]
+    for name, expected in TABLES.items():
+        want = expected(last_run)
+        if not want:
+            failures.append(f"{name}: the test database has no rows for it")
+        compare(f"{name}.csv (pandas)", *read_csv(DIR / f"{name}.csv", want), want)
+        table = pq.read_table(DIR / f"{name}.parquet")
+        compare(f"{name}.parquet (pyarrow)", table.to_pylist(), table.column_names, want)
+        df = pd.read_parquet(DIR / f"{name}.parquet")
+        compare(f"{name}.parquet (pandas)", df.to_dict("records"), list(df.columns), want)
+        # DuckDB reads the Parquet file on its own (its own reader, not pyarrow's).
+        rel = duckdb.sql(f"SELECT * FROM read_parquet('{DIR / f'{name}.parquet'}')")
+        compare(f"{name}.parquet (duckdb)", [dict(zip(rel.columns, r)) for r in rel.fetchall()], rel.columns, want)
+        # Types a reader can rely on: integers, doubles, text.
+        for field in table.schema:
+            kinds = {type(r[field.name]) for r in want} - {type(None)}
+            if kinds == {int} and field.type != pa.int64():
+                failures.append(f"{name}.parquet {field.name}: {field.type}, expected int64")
+            if kinds == {float} and field.type != pa.float64():
+                failures.append(f"{name}.parquet {field.name}: {field.type}, expected double")
+            if kinds == {str} and field.type != pa.string():
+                failures.append(f"{name}.parquet {field.name}: {field.type}, expected string")
+    compare("frames_run1.csv (pandas)", *read_csv(DIR / "frames_run1.csv", frames(1)), frames(1))
+    finish("exports equal the database")
 
-if failures:
-    print("\n".join(failures), file=sys.stderr)
-    sys.exit(1)
-print("exports equal the database")
+
+def finish(success):
+    """Exits 1 listing every mismatch, else prints `success`."""
+    if failures:
+        print("\n".join(failures), file=sys.stderr)
+        sys.exit(1)
+    print(success)
+
+
+TABLES = {"frames": frames, "objects": objects, "alerts": alerts, "flags": flags}
+
+if __name__ == "__main__":
+    main()

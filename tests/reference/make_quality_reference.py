@@ -7,11 +7,12 @@ Writes q_*.tif and quality_references.json with, per image:
 - gaussian: scipy.ndimage.gaussian_filter(float64 image, sigma, mode="reflect",
   truncate=4.0), rounded and clipped to the bit depth (raw little-endian uint16
   in q_NAME.gauss.bin);
-- focus: with L = scipy.ndimage.laplace(float64 image)[1:-1, 1:-1] and the
-  interior's background B = image[1:-1, 1:-1] <= t: (numpy.var(L) -
-  numpy.var(L[B])) * L.size / (BOUNDARY_PX * contrast^2), contrast =
-  numpy.mean(image[image > t]) - background_level, BOUNDARY_PX = 1000 (the
-  documented definition; the test passes the same boundary);
+- focus: with B = scipy.ndimage.convolve(float64 image, k_B)[1:-1, 1:-1],
+  k_B = [1 2 1]^T [1 2 1] / 16; L = scipy.ndimage.laplace(B)[1:-1, 1:-1];
+  v = numpy.var(convolve(image, [1 -2 1]^T [1 -2 1])[1:-1, 1:-1]) / 36
+  (Immerkaer 1996); k_L = laplace of k_B padded by one; b = background_level:
+  (numpy.var(L) - v sum(k_L^2)) / (numpy.mean((B - b)^2) - v sum(k_B^2)), 0
+  unless both are positive (the documented definition);
 - background_level: numpy.median(image[image <= t]) at the given threshold;
 - saturation_fraction: numpy.mean(image == top of the bit depth);
 - bimodality: Sarle's coefficient (G1^2 + 1) / (G2 + 3 (n-1)^2 / ((n-2)(n-3)))
@@ -103,22 +104,18 @@ def rolling_ball_background(img, r):
     return np.round(opened)
 
 
-# The summed object perimeter handed to the focus measure, here and in the test.
-BOUNDARY_PX = 1000.0
-
-
 def focus(img, t):
     f = img.astype(np.float64)
-    lap = ndi.laplace(f)[1:-1, 1:-1]
-    bg = img[1:-1, 1:-1] <= t
-    noise = float(np.var(lap[bg])) if bg.any() else 0.0
-    fg = img > t
-    if not fg.any():
-        return 0.0
-    contrast = float(np.mean(img[fg])) - float(np.median(img[img <= t]))
-    if contrast <= 0:
-        return 0.0
-    return max(float(np.var(lap)) - noise, 0.0) * lap.size / (BOUNDARY_PX * contrast**2)
+    binomial = np.outer([1.0, 2.0, 1.0], [1.0, 2.0, 1.0]) / 16.0
+    immerkaer = np.outer([1.0, -2.0, 1.0], [1.0, -2.0, 1.0])
+    b = ndi.convolve(f, binomial)[1:-1, 1:-1]
+    lap = ndi.laplace(b)[1:-1, 1:-1]
+    v = float(np.var(ndi.convolve(f, immerkaer)[1:-1, 1:-1])) / 36.0
+    log_kernel = ndi.laplace(np.pad(binomial, 1))
+    background = float(np.median(img[img <= t]))
+    top = float(np.var(lap)) - v * float(np.sum(log_kernel**2))
+    bottom = float(np.mean((b - background) ** 2)) - v * float(np.sum(binomial**2))
+    return top / bottom if top > 0 and bottom > 0 else 0.0
 
 
 cases = []
