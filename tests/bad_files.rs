@@ -188,6 +188,77 @@ fn huge_tiles_on_a_small_frame_are_refused_before_allocation() {
     assert_names_file(&e, &p);
 }
 
+/// A little-endian BigTIFF (version 43, 8-byte offsets, 20-byte entries:
+/// the BigTIFF layout) of one 32 × 32 8-bit page in four 16 × 16 tiles; the
+/// tile offsets array (four LONG8 values, out of line) lies at `offsets_at`
+/// (`None`: where it really is) and the first directory at `directory_at`.
+fn big_tiled(offsets_at: Option<u64>, directory_at: u64) -> Vec<u8> {
+    const ENTRIES: u64 = 10;
+    let end = 16 + 8 + ENTRIES * 20 + 8;
+    let (offsets, counts, pixels) = (end, end + 32, end + 64);
+    let entries: [(u16, u16, u64, u64); ENTRIES as usize] = [
+        (256, 4, 1, 32),
+        (257, 4, 1, 32),
+        (258, 3, 1, 8),
+        (259, 3, 1, 1),
+        (262, 3, 1, 1),
+        (277, 3, 1, 1),
+        (322, 4, 1, 16),
+        (323, 4, 1, 16),
+        (324, 16, 4, offsets_at.unwrap_or(offsets)),
+        (325, 16, 4, counts),
+    ];
+    let mut b = b"II".to_vec();
+    for v in [43u16, 8, 0] {
+        b.extend_from_slice(&v.to_le_bytes());
+    }
+    b.extend_from_slice(&directory_at.to_le_bytes());
+    b.extend_from_slice(&ENTRIES.to_le_bytes());
+    for (tag, typ, count, value) in entries {
+        b.extend_from_slice(&tag.to_le_bytes());
+        b.extend_from_slice(&typ.to_le_bytes());
+        b.extend_from_slice(&count.to_le_bytes());
+        b.extend_from_slice(&value.to_le_bytes());
+    }
+    b.extend_from_slice(&0u64.to_le_bytes());
+    for i in 0..4 {
+        b.extend_from_slice(&(pixels + 256 * i).to_le_bytes());
+    }
+    for _ in 0..4 {
+        b.extend_from_slice(&256u64.to_le_bytes());
+    }
+    b.extend_from_slice(&[0u8; 1024]);
+    b
+}
+
+#[test]
+fn offsets_beyond_any_file_size_are_named_as_such() {
+    let dir = tempfile::tempdir().unwrap();
+    // The layout is right: the valid file reads.
+    let ok = write(dir.path(), "ok.tif", &big_tiled(None, 16));
+    let frame = read_page(&ok, 0, &DecodeLimits::default()).unwrap();
+    assert_eq!((frame.width, frame.height), (32, 32));
+    // The tile offsets array, then the first directory, at 2^63 + 16.
+    for (name, bytes, says) in [
+        (
+            "offsets.tif",
+            big_tiled(Some((1 << 63) + 16), 16),
+            "directory entry 8 (tag 324) says its values lie at byte 9223372036854775824, beyond any possible file size",
+        ),
+        (
+            "directory.tif",
+            big_tiled(None, (1 << 63) + 16),
+            "the first directory is said to start at byte 9223372036854775824, beyond any possible file size",
+        ),
+    ] {
+        let p = write(dir.path(), name, &bytes);
+        let e = read_page(&p, 0, &DecodeLimits::default()).unwrap_err();
+        assert!(matches!(e, DecodeError::Corrupt { .. }), "{e}");
+        assert!(e.to_string().contains(says), "{e}");
+        assert_names_file(&e, &p);
+    }
+}
+
 #[test]
 fn a_missing_page_names_the_page_count() {
     let dir = tempfile::tempdir().unwrap();

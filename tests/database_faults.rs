@@ -246,6 +246,26 @@ fn a_full_database_volume_is_announced_waited_out_and_nothing_is_lost() {
     drop(conn);
     bench.signal("TERM");
     assert_eq!(bench.wait_exit(Duration::from_secs(60)), Some(0));
+    // Sent while the volume was full, the opening's deliveries (one per sink:
+    // file and command) were stored finished with it, so the next start
+    // sends nothing again; every other delivery was recorded as made.
+    let conn = rusqlite::Connection::open_with_flags(
+        &bench.db,
+        rusqlite::OpenFlags::SQLITE_OPEN_READ_ONLY,
+    )
+    .unwrap();
+    let count = |sql: &str| -> i64 { conn.query_row(sql, [], |r| r.get(0)).unwrap() };
+    assert_eq!(
+        count(
+            "SELECT COUNT(*) FROM alert_deliveries JOIN alerts ON alerts.id = alert_id
+             WHERE condition = 'database_full' AND json_extract(event, '$.state') = 'opened'"
+        ),
+        2
+    );
+    assert_eq!(
+        count("SELECT COUNT(*) FROM alert_deliveries WHERE finished_at_ms IS NULL OR error IS NOT NULL"),
+        0
+    );
 }
 
 /// Counts the log's warning and error lines.

@@ -13,6 +13,11 @@ use framewarden::qc::alerts::{AlertEvent, AlertState, PositionEvidence};
 use framewarden::qc::params::{AlertSettings, CommandSink, WebhookSink};
 use framewarden::qc::sinks::{AlertDispatcher, SinkError, WebhookClient};
 
+#[allow(dead_code)]
+mod watch_support;
+#[cfg(target_os = "linux")]
+use watch_support::{process_runs, wait_for, Bench};
+
 fn event(file: &str) -> AlertEvent {
     AlertEvent {
         condition: "drift:background_level".into(),
@@ -367,6 +372,156 @@ fn a_hanging_command_is_killed_at_its_timeout() {
     assert!(!marker.exists());
 }
 
+#[cfg(target_os = "linux")]
+#[test]
+fn a_hanging_command_is_killed_at_its_timeout_with_its_children() {
+    // The command starts two children of its own (a background job and a
+    // pipeline) and waits; at the timeout the whole group ends, not just the
+    // shell (procfs says which processes still run).
+    let dir = tempfile::tempdir().unwrap();
+    let pids = dir.path().join("pids");
+    let d = AlertDispatcher::start(&AlertSettings {
+        command: Some(CommandSink {
+            program: "/bin/sh".into(),
+            args: vec![
+                "-c".into(),
+                "sleep 60 & echo $! >> \"$0\"; sleep 61 | cat & echo $! >> \"$0\"; wait".into(),
+                pids.to_string_lossy().into_owned(),
+            ],
+            timeout: Duration::from_secs(1),
+        }),
+        ..AlertSettings::default()
+    })
+    .unwrap();
+    d.send(&event("a.tif"));
+    d.close();
+    let children: Vec<u32> = std::fs::read_to_string(&pids)
+        .unwrap()
+        .lines()
+        .map(|l| l.parse().unwrap())
+        .collect();
+    assert_eq!(children.len(), 2);
+    // A killed process leaves the table as soon as it is collected; allow that.
+    wait_for(
+        "the command's children to end",
+        Duration::from_secs(5),
+        || !children.iter().any(|&p| process_runs(p)),
+    );
+}
+
+/// The PIDs a file holds, one a line.
+#[cfg(target_os = "linux")]
+fn pids_in(path: &Path) -> Vec<u32> {
+    std::fs::read_to_string(path)
+        .unwrap_or_default()
+        .lines()
+        .map(|l| l.parse().unwrap())
+        .collect()
+}
+
+/// The alert deliveries the service recorded: (sink, finished, error).
+#[cfg(target_os = "linux")]
+fn deliveries(db: &Path) -> Vec<(String, bool, Option<String>)> {
+    let conn =
+        rusqlite::Connection::open_with_flags(db, rusqlite::OpenFlags::SQLITE_OPEN_READ_ONLY)
+            .unwrap();
+    conn.busy_timeout(Duration::from_secs(10)).unwrap();
+    let mut stmt = conn
+        .prepare("SELECT sink, finished_at_ms IS NOT NULL, error FROM alert_deliveries ORDER BY id")
+        .unwrap();
+    let rows = stmt
+        .query_map([], |r| Ok((r.get(0)?, r.get(1)?, r.get(2)?)))
+        .unwrap()
+        .collect::<Result<_, _>>()
+        .unwrap();
+    rows
+}
+
+#[cfg(target_os = "linux")]
+#[test]
+fn sigterm_with_a_stuck_command_ends_it_and_its_children_and_the_next_start_delivers() {
+    // The real binary with a command sink that hangs (a child `sleep 600`
+    // and a wait) until a file says it may answer; a limit on free space no
+    // disk meets raises alerts at once. SIGTERM must not wait for the 600 s
+    // command timeout (the shutdown bound is 60 s): the command's group is
+    // killed, and the deliveries not made stay in the database, to be made
+    // by the next start once the command answers.
+    let sink_dir = tempfile::tempdir().unwrap();
+    let script = sink_dir.path().join("sink.sh");
+    std::fs::write(
+        &script,
+        "#!/bin/sh\nif [ -e \"$1/answer\" ]; then cat >> \"$1/events.jsonl\"; exit 0; fi\n\
+         sleep 600 &\necho $! >> \"$1/children\"\nwait\n",
+    )
+    .unwrap();
+    {
+        use std::os::unix::fs::PermissionsExt;
+        std::fs::set_permissions(&script, std::fs::Permissions::from_mode(0o755)).unwrap();
+    }
+    let mut bench = Bench::new(&format!(
+        "shutdown_timeout_s = 60\n[quality]\nmin_free_space_mib = 1000000000\n\
+         [alerts]\ncommand = [\"{}\", \"{}\"]\ncommand_timeout_s = 600\n",
+        script.display(),
+        sink_dir.path().display()
+    ));
+    bench.start();
+    let children = sink_dir.path().join("children");
+    wait_for("the command to hang", Duration::from_secs(30), || {
+        !pids_in(&children).is_empty()
+    });
+    bench.signal("TERM");
+    assert_eq!(
+        bench.wait_exit(Duration::from_secs(30)),
+        Some(0),
+        "{}",
+        bench.logs()
+    );
+    wait_for("the command's child to end", Duration::from_secs(5), || {
+        !pids_in(&children).into_iter().any(process_runs)
+    });
+    let left = deliveries(&bench.db);
+    assert!(!left.is_empty());
+    assert!(
+        left.iter()
+            .all(|(sink, finished, _)| sink == "command" && !finished),
+        "{left:?}"
+    );
+    // The command answers now; the next start makes every delivery left.
+    std::fs::write(sink_dir.path().join("answer"), "").unwrap();
+    bench.start();
+    let events = sink_dir.path().join("events.jsonl");
+    wait_for(
+        "the deliveries left to be made",
+        Duration::from_secs(30),
+        || {
+            deliveries(&bench.db)
+                .iter()
+                .take(left.len())
+                .all(|(_, finished, _)| *finished)
+        },
+    );
+    bench.signal("TERM");
+    assert_eq!(bench.wait_exit(Duration::from_secs(30)), Some(0));
+    let made = deliveries(&bench.db);
+    assert!(made.iter().all(|(_, _, error)| error.is_none()), "{made:?}");
+    let received: Vec<serde_json::Value> = std::fs::read_to_string(&events)
+        .unwrap()
+        .lines()
+        .map(|l| serde_json::from_str(l).unwrap())
+        .collect();
+    assert!(received.len() >= left.len(), "{received:?}");
+    assert!(
+        received.iter().all(|e| e["condition"]
+            .as_str()
+            .unwrap()
+            .starts_with("low_disk_space:")),
+        "{received:?}"
+    );
+    assert!(bench
+        .logs()
+        .contains("alert deliveries not made before the last stop are sent now"));
+}
+
 #[test]
 fn the_file_sink_appends_one_json_line_per_event() {
     let dir = tempfile::tempdir().unwrap();
@@ -650,4 +805,69 @@ fn an_https_webhook_from_the_configuration_reaches_the_in_house_server() {
     let got: serde_json::Value =
         serde_json::from_str(&bodies.recv_timeout(Duration::from_secs(5)).unwrap()).unwrap();
     assert_eq!(got["file"], HOSTILE);
+}
+
+/// A server that reads one request, then sends its answer one byte every
+/// `every`, headers and all; it stops when the client goes away.
+fn trickling_server(every: Duration, headers_at_once: bool) -> String {
+    let listener = TcpListener::bind("127.0.0.1:0").unwrap();
+    let url = format!("http://{}/hooks/night", listener.local_addr().unwrap());
+    std::thread::spawn(move || {
+        let Ok((mut stream, _)) = listener.accept() else {
+            return;
+        };
+        stream
+            .set_read_timeout(Some(Duration::from_secs(5)))
+            .unwrap();
+        let mut request = [0u8; 4096];
+        let _ = stream.read(&mut request);
+        let answer = format!(
+            "HTTP/1.1 200 OK\r\nContent-Length: 40\r\nConnection: close\r\n\r\n{}",
+            "x".repeat(40)
+        );
+        let (head, rest) = if headers_at_once {
+            answer.split_at(answer.find("\r\n\r\n").unwrap() + 4)
+        } else {
+            ("", answer.as_str())
+        };
+        if stream.write_all(head.as_bytes()).is_err() {
+            return;
+        }
+        for byte in rest.as_bytes() {
+            if stream.write_all(&[*byte]).is_err() {
+                return;
+            }
+            std::thread::sleep(every);
+        }
+    });
+    url
+}
+
+#[test]
+fn a_webhook_that_trickles_its_answer_is_cut_at_the_timeout() {
+    // The answer at one byte per 150 ms would take 15 s. Each read gets a
+    // byte well within the 600 ms timeout, yet the attempt as a whole is
+    // bounded by it: trickled headers end in a timeout; once the status line
+    // and headers are in, the attempt is over and the body is not waited for.
+    for headers_at_once in [false, true] {
+        let url = trickling_server(Duration::from_millis(150), headers_at_once);
+        let started = std::time::Instant::now();
+        let result = post_once(&url, "{}", Duration::from_millis(600), None);
+        let waited = started.elapsed();
+        if headers_at_once {
+            assert!(result.is_ok(), "{result:?}");
+        } else {
+            assert!(
+                matches!(
+                    result,
+                    Err(SinkError::WebhookTimeout {
+                        waiting_for: "answer",
+                        ..
+                    })
+                ),
+                "{result:?}"
+            );
+        }
+        assert!(waited < Duration::from_secs(3), "{waited:?}");
+    }
 }

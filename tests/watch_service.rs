@@ -4,6 +4,7 @@
 //! Each test states a promise of `framewarden watch` (exactly once, never early,
 //! nothing lost) and checks it on the rows; no test asserts a time.
 
+#[allow(dead_code)]
 mod watch_support;
 
 use std::collections::HashMap;
@@ -79,6 +80,37 @@ fn temporary_name_then_rename_gives_one_row_under_the_final_name() {
         "temporary names are never recorded: {rows:?}"
     );
     assert!(rows.iter().all(|r| r.object_count == Some(truth as i64)));
+}
+
+#[test]
+fn a_watched_folder_deleted_and_made_again_is_watched_again() {
+    // The rescan is an hour away: only events set up again on the new folder
+    // can bring the file written into it.
+    let mut bench = Bench::new("rescan_interval_s = 3600");
+    bench.start();
+    let (bytes, truth) = tiff_bytes(15, 96, 4);
+    bench.write("E05_t0001.tif", &bytes);
+    bench.wait_finished(1, LONG);
+    std::fs::remove_dir_all(&bench.acq).unwrap();
+    wait_for("the folder's loss to be logged", LONG, || {
+        bench.logs().contains("has gone; watching for its return")
+    });
+    std::fs::create_dir(&bench.acq).unwrap();
+    wait_for("the folder's return to be logged", LONG, || {
+        bench
+            .logs()
+            .contains("is back; its events are set up again")
+    });
+    bench.write("E05_t0002.tif", &bytes);
+    let rows = bench.wait_finished(2, Duration::from_secs(30));
+    let new = rows
+        .iter()
+        .find(|r| r.path.ends_with("E05_t0002.tif"))
+        .unwrap();
+    assert_eq!(new.status, "done", "{new:?}");
+    assert_eq!(new.object_count, Some(truth as i64));
+    bench.signal("TERM");
+    assert_eq!(bench.wait_exit(LONG), Some(0));
 }
 
 #[test]

@@ -177,7 +177,7 @@ multiversion! {
             let (up, row, down) = (raw.row(y - 1), raw.row(y), raw.row(y + 1));
             let out = &mut smooth[y % 3];
             let (mut b_sum, mut b_sq, mut n_sum, mut n_sq) = (0i64, 0f64, 0i64, 0f64);
-            for x in 1..w - 1 {
+            for (x, slot) in out.iter_mut().enumerate().take(w - 1).skip(1) {
                 let c = |r: &[u16], i: usize| i32::from(r[i]);
                 // Horizontal [1 2 1] and [1 -2 1] of the three rows.
                 let (su, sr, sd) = (
@@ -192,7 +192,7 @@ multiversion! {
                 );
                 let b = su + 2 * sr + sd;
                 let noise = du - 2 * dr + dd;
-                out[x] = b;
+                *slot = b;
                 b_sum += i64::from(b);
                 b_sq += f64::from(b) * f64::from(b);
                 n_sum += i64::from(noise);

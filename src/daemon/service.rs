@@ -15,7 +15,6 @@ use std::thread::JoinHandle;
 use std::time::Duration;
 
 use crossbeam_channel::Sender;
-use notify::Watcher;
 
 use crate::daemon::worker::Worker;
 use crate::qc::recorder::{QcError, QcRecorder, QcSetup};
@@ -26,7 +25,7 @@ use crate::store::writer::{open_run, RunPolicy, StoreOp, Writer, WriterError, Wr
 use crate::store::{self, FrameKey, LabelImages, StoreError};
 use crate::text::{shown, shown_path, Repeats};
 use crate::watch::scheduler::{scan_loop, SchedMsg, Scheduler};
-use crate::watch::watcher::{start_watcher, WatcherError};
+use crate::watch::watcher::{start_watcher, WatcherError, Watching};
 use crate::watch::{Job, Progress};
 
 /// Per-start choices that are not configuration.
@@ -110,7 +109,7 @@ impl WatchError {
 /// The running service's threads and channels.
 pub struct Service {
     /// Held for its `Drop`, which stops watching.
-    watcher: Box<dyn Watcher + Send>,
+    watcher: Watching,
     sched_tx: Sender<SchedMsg>,
     scheduler: JoinHandle<()>,
     scanner: JoinHandle<()>,

@@ -121,6 +121,13 @@ fn check_first_directory<R: Read + Seek>(
         path: path.into(),
         source,
     };
+    // No file reaches 2^63 bytes (a seek there fails with "Invalid argument").
+    const NO_FILE_REACHES: u64 = i64::MAX as u64;
+    if offset > NO_FILE_REACHES {
+        return Err(corrupt(format!(
+            "the first directory is said to start at byte {offset}, beyond any possible file size"
+        )));
+    }
     reader.seek(std::io::SeekFrom::Start(offset)).map_err(io)?;
     let mut count = [0u8; 8];
     if read_up_to(reader, &mut count[..count_len]).map_err(io)? < count_len {
@@ -132,13 +139,23 @@ fn check_first_directory<R: Read + Seek>(
         if read_up_to(reader, &mut entry[..entry_len]).map_err(io)? < entry_len {
             break;
         }
-        let (tag, kind, values, _) = layout.entry(&entry[..entry_len]);
+        let (tag, kind, values, field) = layout.entry(&entry[..entry_len]);
         let Some(size) = type_size(kind) else {
             continue; // unknown types are skipped by the crate
         };
-        if values.saturating_mul(size) > len {
+        let bytes = values.saturating_mul(size);
+        if bytes > len {
             return Err(corrupt(format!(
                 "directory entry {i} (tag {tag}) declares {values} values, more than the file's {len} bytes hold"
+            )));
+        }
+        // A value longer than the entry's value field lies elsewhere, at the
+        // offset the field gives (only a BigTIFF's 8-byte offset can point
+        // past 2^63).
+        let at = layout.uint(field);
+        if bytes > field.len() as u64 && at.saturating_add(bytes) > NO_FILE_REACHES {
+            return Err(corrupt(format!(
+                "directory entry {i} (tag {tag}) says its values lie at byte {at}, beyond any possible file size"
             )));
         }
     }

@@ -10,12 +10,12 @@
 
 use std::collections::BTreeMap;
 
-use serde::Serialize;
+use serde::{Deserialize, Serialize};
 
 /// Whether an event opens, grows or closes an episode, or is a one-off notice
 /// (an episode that opens and closes at once: the service restarted, the run
 /// is complete).
-#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize)]
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
 #[serde(rename_all = "snake_case")]
 pub enum AlertState {
     /// The condition became true: an episode opens (JSON `opened`).
@@ -45,7 +45,7 @@ impl AlertState {
 }
 
 /// One alert event, as stored, logged and sent to the sinks.
-#[derive(Debug, Clone, PartialEq, Serialize)]
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 pub struct AlertEvent {
     /// What is wrong: `drift:<metric>`, `stalled`, `low_disk_space:<volume>`,
     /// `failure_rate`; or what happened: `service_restarted`, `run_complete`.
@@ -72,7 +72,7 @@ pub struct AlertEvent {
 
 /// One position's part in a drift episode: the value and the chart's
 /// statistics at the frame that brought it in (or out).
-#[derive(Debug, Clone, PartialEq, Serialize)]
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 pub struct PositionEvidence {
     /// The position (well, site, channel).
     pub position: String,

@@ -17,7 +17,7 @@ use crate::qc::alerts::{AlertEvent, AlertState};
 use crate::qc::metrics::FrameMetrics;
 use crate::qc::monitor::RunMonitor;
 use crate::qc::params::{AlertSettings, QualitySettings};
-use crate::qc::sinks::{AlertDispatcher, SinkError};
+use crate::qc::sinks::{AlertDispatcher, Outcome, SinkError};
 use crate::store::health::DatabaseFault;
 use crate::store::writer::FrameObserver;
 use crate::store::{now_ms, FrameKey, ACQUISITION_ORDER_SQL, FRAME_KEY_SQL, POSITION_SQL};
@@ -56,17 +56,21 @@ pub struct QcRecorder {
     run_id: i64,
     monitor: RunMonitor,
     dispatcher: AlertDispatcher,
-    /// Events stored in the writer's open transaction, announced (logged and
-    /// sent to the sinks) only once it commits.
-    pending: Vec<AlertEvent>,
+    /// Events stored in the writer's open transaction, each with its
+    /// deliveries' rows (sink, id), announced (logged and sent to the sinks)
+    /// only once it commits.
+    pending: Vec<(AlertEvent, Vec<(&'static str, i64)>)>,
     /// The per-frame log lines of the open transaction, logged once it commits.
     pending_lines: Vec<FrameLine>,
     /// The state before the open transaction, restored if it rolls back, so a
     /// retried batch is judged once.
     checkpoint: Option<(i64, RunMonitor)>,
     /// Events raised outside a transaction and announced, not stored yet (the
-    /// database's volume was full): stored, in order, at the next try.
+    /// database's volume was full): stored, in order, at the next try, their
+    /// deliveries as made.
     unstored: Vec<AlertEvent>,
+    /// Delivery outcomes not recorded yet (the database's volume was full).
+    unrecorded: Vec<Outcome>,
     /// Repeated warnings (alerts that cannot be stored yet), limited.
     repeats: Repeats,
 }
@@ -89,6 +93,7 @@ impl QcRecorder {
     /// [`QcError`]: SQLite errors, or a sink thread that cannot start.
     pub fn start(conn: &Connection, run_id: i64, setup: QcSetup) -> Result<QcRecorder, QcError> {
         let dispatcher = AlertDispatcher::start(&setup.alerts).map_err(QcError::Sinks)?;
+        resend_unfinished(conn, &dispatcher)?;
         let mut recorder = QcRecorder {
             monitor: new_monitor(&setup),
             setup,
@@ -98,6 +103,7 @@ impl QcRecorder {
             pending_lines: Vec::new(),
             checkpoint: None,
             unstored: Vec::new(),
+            unrecorded: Vec::new(),
             repeats: Repeats::default(),
         };
         let replayed = recorder.replay(conn)?;
@@ -212,7 +218,8 @@ impl FrameObserver for QcRecorder {
 
     /// Periodic checks that need no frame: the stall, and free space on the
     /// watched and database volumes.
-    fn tick(&mut self, conn: &Connection) {
+    fn tick(&mut self, conn: &Connection) -> rusqlite::Result<()> {
+        let recorded = self.record_outcomes(conn);
         let now = now_ms();
         let mut events: Vec<AlertEvent> = self.monitor.check_stall(now).into_iter().collect();
         for volume in &self.setup.volumes {
@@ -222,6 +229,7 @@ impl FrameObserver for QcRecorder {
             }
         }
         self.record_now(conn, events);
+        recorded
     }
 
     /// Writes to the database fail for lack of space, or succeed again: the
@@ -235,41 +243,131 @@ impl FrameObserver for QcRecorder {
     /// Announces the fault (log and sinks) as a notice; it cannot be stored.
     fn database_failed(&mut self, fault: &DatabaseFault) {
         let event = AlertEvent::notice(fault.condition(), now_ms(), None, fault.to_string());
-        self.announce(&event);
+        self.announce(&event, None);
     }
 
-    /// Waits for the sinks to deliver what is queued.
-    fn close(self: Box<Self>) {
-        self.dispatcher.close();
+    /// Gives the sinks a short grace to deliver what is queued, cuts short
+    /// the rest (left unfinished for the next start), and records the
+    /// outcomes, unless the database has failed (`None`): nothing is
+    /// written into it then.
+    fn close(self: Box<Self>, conn: Option<&Connection>) {
+        let QcRecorder {
+            dispatcher,
+            mut unrecorded,
+            ..
+        } = *self;
+        unrecorded.extend(dispatcher.close());
+        if let Some(conn) = conn {
+            if let Err(e) = finish_deliveries(conn, &unrecorded) {
+                tracing::error!(
+                    "alert deliveries not recorded as made (sent again at the next start): {e}"
+                );
+            }
+        }
     }
 }
 
 impl QcRecorder {
-    /// Announces `events`, raised outside a transaction, and stores them
-    /// (each statement commits by itself). One that cannot be stored now (the
-    /// database's volume is full) has been announced all the same; it is
-    /// kept, with those after it, and stored at the next call, in order, so a
-    /// recovery never comes before the opening it closes.
+    /// Records the outcomes of the deliveries finished since the last call.
+    /// Those that cannot be recorded now (the database's volume is full) are
+    /// kept and recorded at the next call, so a delivery made is not sent
+    /// again at the next start.
+    fn record_outcomes(&mut self, conn: &Connection) -> rusqlite::Result<()> {
+        self.unrecorded.extend(self.dispatcher.outcomes());
+        finish_deliveries(conn, &self.unrecorded)?;
+        self.unrecorded.clear();
+        Ok(())
+    }
+
+    /// Stores `events`, raised outside a transaction, each with its
+    /// deliveries' rows, and announces them. One that cannot be stored now
+    /// (the database's volume is full) is announced all the same, its
+    /// deliveries untracked; it is kept, with those after it, and stored at
+    /// a later call, in order, so a recovery never comes before the opening
+    /// it closes. Its delivery rows are then stored finished: the sinks had
+    /// the event when it was raised, so it is never sent twice, and it is
+    /// never lost while the service runs.
     fn record_now(&mut self, conn: &Connection, events: Vec<AlertEvent>) {
-        for event in &events {
-            self.announce(event);
-        }
-        self.unstored.extend(events);
         let mut stored = 0;
         for event in &self.unstored {
-            if let Err(e) = store_rows(conn, self.run_id, event, None) {
-                self.repeats.warn(
-                    "alert not stored",
-                    format_args!(
-                        "alert {} not stored yet ({e}); it is stored at the next check",
-                        shown(&event.condition)
-                    ),
-                );
+            if let Err(e) = self.store_alone(conn, event, true) {
+                self.warn_unstored(event, &e);
                 break;
             }
             stored += 1;
         }
         self.unstored.drain(..stored);
+        for event in events {
+            if self.unstored.is_empty() {
+                match self.store_alone(conn, &event, false) {
+                    Ok(deliveries) => {
+                        self.announce(&event, Some(&deliveries));
+                        continue;
+                    }
+                    Err(e) => self.warn_unstored(&event, &e),
+                }
+            }
+            self.announce(&event, None);
+            self.unstored.push(event);
+        }
+    }
+
+    /// Stores `event` of the current run outside the writer's transaction,
+    /// with its deliveries' rows (finished already when `sent`), all or
+    /// nothing: a failed try leaves no half-stored alert to be stored again.
+    fn store_alone(
+        &self,
+        conn: &Connection,
+        event: &AlertEvent,
+        sent: bool,
+    ) -> rusqlite::Result<Vec<(&'static str, i64)>> {
+        conn.execute_batch("SAVEPOINT record_now")?;
+        let stored = store_rows(conn, self.run_id, event, None)
+            .and_then(|alert_id| self.store_deliveries(conn, alert_id, event, sent))
+            .and_then(|deliveries| {
+                conn.execute_batch("RELEASE record_now")?;
+                Ok(deliveries)
+            });
+        if stored.is_err() && !conn.is_autocommit() {
+            // Best effort: the error already says what went wrong.
+            let _ = conn.execute_batch("ROLLBACK TO record_now; RELEASE record_now");
+        }
+        stored
+    }
+
+    /// Stores one row per configured sink for `event` (alert row
+    /// `alert_id`), finished already when `sent`. Returns each sink with its
+    /// row.
+    fn store_deliveries(
+        &self,
+        conn: &Connection,
+        alert_id: Option<i64>,
+        event: &AlertEvent,
+        sent: bool,
+    ) -> rusqlite::Result<Vec<(&'static str, i64)>> {
+        let json = crate::qc::sinks::to_json(event);
+        let now = now_ms();
+        let mut insert = conn.prepare_cached(
+            "INSERT INTO alert_deliveries (alert_id, sink, event, queued_at_ms, finished_at_ms)
+             VALUES (?1, ?2, ?3, ?4, ?5)",
+        )?;
+        let mut deliveries = Vec::new();
+        for sink in self.dispatcher.sink_names() {
+            insert.execute(params![alert_id, sink, json, now, sent.then_some(now)])?;
+            deliveries.push((sink, conn.last_insert_rowid()));
+        }
+        Ok(deliveries)
+    }
+
+    /// An alert that cannot be stored yet (logged limited).
+    fn warn_unstored(&self, event: &AlertEvent, e: &rusqlite::Error) {
+        self.repeats.warn(
+            "alert not stored",
+            format_args!(
+                "alert {} not stored yet ({e}); it is stored at the next check",
+                shown(&event.condition)
+            ),
+        );
     }
 
     /// Logs the recorded frames' lines and announces the stored alerts.
@@ -284,8 +382,8 @@ impl QcRecorder {
                 "frame"
             );
         }
-        for event in std::mem::take(&mut self.pending) {
-            self.announce(&event);
+        for (event, deliveries) in std::mem::take(&mut self.pending) {
+            self.announce(&event, Some(&deliveries));
         }
     }
 
@@ -355,12 +453,15 @@ impl QcRecorder {
         event: &AlertEvent,
         frame_id: Option<i64>,
     ) -> rusqlite::Result<()> {
-        store_rows(conn, run_id, event, frame_id)?;
-        self.pending.push(event.clone());
+        let alert_id = store_rows(conn, run_id, event, frame_id)?;
+        let deliveries = self.store_deliveries(conn, alert_id, event, false)?;
+        self.pending.push((event.clone(), deliveries));
         Ok(())
     }
 
-    fn announce(&self, event: &AlertEvent) {
+    /// Logs `event` and hands it to the sinks: as the deliveries of the
+    /// given rows, or, with `None` (it is not stored), untracked to every sink.
+    fn announce(&self, event: &AlertEvent, deliveries: Option<&[(&'static str, i64)]>) {
         match event.state {
             AlertState::Opened => tracing::warn!(
                 condition = %shown(&event.condition),
@@ -390,7 +491,14 @@ impl QcRecorder {
                 shown(&event.message)
             ),
         }
-        self.dispatcher.send(event);
+        match deliveries {
+            Some(deliveries) => {
+                for (sink, id) in deliveries {
+                    self.dispatcher.send_to(sink, Some(*id), event);
+                }
+            }
+            None => self.dispatcher.send(event),
+        }
     }
 
     /// Feeds the run's recorded frames to a fresh monitor, in acquisition
@@ -457,16 +565,70 @@ impl QcRecorder {
     }
 }
 
+/// Hands the deliveries that an earlier process left unfinished (cut short by
+/// its shutdown, still queued, or killed) to their sinks again, oldest first;
+/// those of a sink no longer configured are finished with that reason.
+fn resend_unfinished(conn: &Connection, dispatcher: &AlertDispatcher) -> rusqlite::Result<()> {
+    let unfinished: Vec<(i64, String, String)> = conn
+        .prepare(
+            "SELECT id, sink, event FROM alert_deliveries WHERE finished_at_ms IS NULL ORDER BY id",
+        )?
+        .query_map([], |r| Ok((r.get(0)?, r.get(1)?, r.get(2)?)))?
+        .collect::<Result<_, _>>()?;
+    if unfinished.is_empty() {
+        return Ok(());
+    }
+    let configured = dispatcher.sink_names();
+    let mut sent = 0;
+    for (id, sink, json) in unfinished {
+        let reason = if !configured.contains(&sink.as_str()) {
+            format!("the {sink} sink is no longer configured")
+        } else {
+            match serde_json::from_str::<AlertEvent>(&json) {
+                Ok(event) => {
+                    dispatcher.send_to(&sink, Some(id), &event);
+                    sent += 1;
+                    continue;
+                }
+                Err(e) => format!("the stored event cannot be read: {e}"),
+            }
+        };
+        tracing::warn!("alert delivery {id} dropped: {reason}");
+        finish_deliveries(
+            conn,
+            &[Outcome {
+                id,
+                result: Err(reason),
+            }],
+        )?;
+    }
+    if sent > 0 {
+        tracing::info!("{sent} alert deliveries not made before the last stop are sent now");
+    }
+    Ok(())
+}
+
+/// Marks deliveries finished: made, or given up with the reason.
+fn finish_deliveries(conn: &Connection, outcomes: &[Outcome]) -> rusqlite::Result<()> {
+    let mut update = conn.prepare_cached(
+        "UPDATE alert_deliveries SET finished_at_ms = ?2, error = ?3 WHERE id = ?1",
+    )?;
+    for o in outcomes {
+        update.execute(params![o.id, now_ms(), o.result.as_ref().err()])?;
+    }
+    Ok(())
+}
+
 /// Stores one event of run `run_id` in `conn`: an opening or a notice is a
 /// new row; an update rewrites the open alert's sentence; a recovery or a
 /// run's end closes it. Each position an event brings in is stored with its
-/// evidence.
+/// evidence. Returns the alert's row (`None` when the episode is not open).
 fn store_rows(
     conn: &Connection,
     run_id: i64,
     event: &AlertEvent,
     frame_id: Option<i64>,
-) -> rusqlite::Result<()> {
+) -> rusqlite::Result<Option<i64>> {
     // The open episode the event is about: its condition and opening.
     const EPISODE: &str =
         "run_id = ?1 AND condition = ?2 AND opened_at_ms = ?3 AND closed_at_ms IS NULL";
@@ -499,22 +661,31 @@ fn store_rows(
                 |r| r.get(0),
             )
             .optional()?,
-        AlertState::Recovered | AlertState::Closed => {
-            conn.prepare_cached(&format!(
-                "UPDATE alerts SET closed_at_ms = ?4, closed_message = ?5, closed_state = ?6 WHERE {EPISODE}"
+        AlertState::Recovered | AlertState::Closed => conn
+            .prepare_cached(&format!(
+                "UPDATE alerts SET closed_at_ms = ?4, closed_message = ?5, closed_state = ?6 WHERE {EPISODE} RETURNING id"
             ))?
-            .execute(params![
-                run_id,
-                event.condition,
-                event.opened_at_ms,
-                event.at_ms,
-                event.message,
-                event.state.as_str()
-            ])?;
-            None
-        }
+            .query_row(
+                params![
+                    run_id,
+                    event.condition,
+                    event.opened_at_ms,
+                    event.at_ms,
+                    event.message,
+                    event.state.as_str()
+                ],
+                |r| r.get(0),
+            )
+            .optional()?,
     };
-    if let (Some(alert_id), Some(evidence)) = (alert_id, &event.evidence) {
+    if let (Some(alert_id), Some(evidence), true) = (
+        alert_id,
+        &event.evidence,
+        matches!(
+            event.state,
+            AlertState::Opened | AlertState::Notice | AlertState::Updated
+        ),
+    ) {
         conn.prepare_cached(
             "INSERT OR REPLACE INTO alert_positions (alert_id, position, joined_at_ms, frame_id, message)
              VALUES (?1, ?2, ?3, ?4, ?5)",
@@ -527,7 +698,7 @@ fn store_rows(
             evidence.message
         ])?;
     }
-    Ok(())
+    Ok(alert_id)
 }
 
 /// SQL for the positions an alert row names, as a JSON array in order.
@@ -617,7 +788,7 @@ mod tests {
         recorder.begin();
         judge(&mut recorder, &mut conn, &keys).commit().unwrap();
         recorder.committed();
-        Box::new(recorder).close();
+        Box::new(recorder).close(Some(&conn));
         let stored: i64 = conn
             .query_row(
                 "SELECT COUNT(*) FROM alerts WHERE condition = 'failure_rate'",
@@ -662,7 +833,7 @@ mod tests {
         )
         .unwrap();
         let recorder = QcRecorder::start(&conn, 2, setup).unwrap();
-        Box::new(recorder).close();
+        Box::new(recorder).close(Some(&conn));
         let rows: Vec<(i64, Option<String>, Option<String>)> = conn
             .prepare("SELECT run_id, closed_state, closed_message FROM alerts ORDER BY id")
             .unwrap()

@@ -6,6 +6,14 @@
 //! event is dropped for that sink and logged (it is stored in the database
 //! anyway). Deciding what to send is the monitor's.
 //!
+//! A delivery the recorder stored (see [`crate::qc::recorder`]) carries its
+//! row's id, and its outcome comes back through [`AlertDispatcher::outcomes`];
+//! one cut short by [`AlertDispatcher::close`] reports none, so its row stays
+//! pending and the next start sends it again.
+//!
+//! A command runs in a process group of its own: at its timeout, or when the
+//! dispatcher closes, the whole group is killed, children included.
+//!
 //! The webhook is posted with `ureq` over rustls (ring's primitives); its URL and
 //! extra CA certificates are checked when the configuration loads
 //! ([`WebhookUrl`], [`CaFile`]), and its HTTP agent is made once, when the
@@ -17,7 +25,7 @@ use std::process::{Command, ExitStatus, Stdio};
 use std::thread::JoinHandle;
 use std::time::{Duration, Instant};
 
-use crossbeam_channel::{Receiver, Sender, TrySendError};
+use crossbeam_channel::{Receiver, RecvTimeoutError, Sender, TryRecvError, TrySendError};
 use rustls::pki_types::{pem::PemObject, CertificateDer};
 
 use crate::qc::alerts::AlertEvent;
@@ -54,6 +62,11 @@ pub enum SinkError {
         /// `command_timeout_s`.
         timeout: Duration,
     },
+    /// The service is stopping: the delivery was cut short (a command's
+    /// process group killed, a webhook's retries dropped) and is left for the
+    /// next start.
+    #[error("cut short: the service is stopping")]
+    Interrupted,
     /// Waiting for the command failed.
     #[error("waiting for {program}: {source}")]
     CommandWait {
@@ -151,11 +164,39 @@ pub enum SinkError {
 /// Events waiting per sink before new ones are dropped for it.
 const QUEUE_CAPACITY: usize = 256;
 
+/// How long [`AlertDispatcher::close`] lets the sinks work through their
+/// queues before it cuts the deliveries short.
+pub const CLOSE_GRACE: Duration = Duration::from_secs(2);
+
+/// How long [`AlertDispatcher::close`] then waits for a delivery it cut short
+/// (a webhook attempt cannot be interrupted; it ends at its own timeout).
+const CLOSE_CUT: Duration = Duration::from_millis(500);
+
+/// One event for one sink; `id` is the row of the delivery when the recorder
+/// stored it (its outcome is then reported), `None` when nobody tracks it.
+struct Delivery {
+    id: Option<i64>,
+    event: AlertEvent,
+}
+
+/// The outcome of a stored delivery, for its row.
+#[derive(Debug)]
+pub struct Outcome {
+    /// The delivery's row.
+    pub id: i64,
+    /// `Ok` when it was delivered, else why every attempt failed.
+    pub result: Result<(), String>,
+}
+
 /// The running sinks. Dropping the value without [`AlertDispatcher::close`]
 /// lets the threads finish their queues on their own.
 pub struct AlertDispatcher {
-    queues: Vec<(&'static str, Sender<AlertEvent>)>,
+    queues: Vec<(&'static str, Sender<Delivery>)>,
     threads: Vec<JoinHandle<()>>,
+    /// Dropped by [`AlertDispatcher::close`] after its grace: every sink
+    /// thread then stops.
+    stop: Option<Sender<()>>,
+    outcomes: Receiver<Outcome>,
     /// Events dropped for a sink, logged limited.
     repeats: Repeats,
 }
@@ -175,10 +216,10 @@ impl Sink {
         }
     }
 
-    fn deliver(&self, event: &AlertEvent) -> Result<(), SinkError> {
+    fn deliver(&self, event: &AlertEvent, stop: &Receiver<()>) -> Result<(), SinkError> {
         match self {
-            Sink::Command(c) => run_command(c, event),
-            Sink::Webhook(w) => w.post_with_retries(event),
+            Sink::Command(c) => run_command(c, event, stop),
+            Sink::Webhook(w) => w.post_with_retries(event, stop),
             Sink::File(path) => append_line(path, event),
         }
     }
@@ -203,17 +244,22 @@ impl AlertDispatcher {
             .into_iter()
             .chain(webhook.map(Sink::Webhook))
             .chain(settings.file.clone().map(Sink::File));
+        let (stop_tx, stop_rx) = crossbeam_channel::bounded(0);
+        let (outcome_tx, outcome_rx) = crossbeam_channel::unbounded();
         let mut dispatcher = AlertDispatcher {
             queues: Vec::new(),
             threads: Vec::new(),
+            stop: Some(stop_tx),
+            outcomes: outcome_rx,
             repeats: Repeats::default(),
         };
         for sink in sinks {
             let (event_tx, event_rx) = crossbeam_channel::bounded(QUEUE_CAPACITY);
             let name = sink.name();
+            let (stop_rx, outcome_tx) = (stop_rx.clone(), outcome_tx.clone());
             let thread = std::thread::Builder::new()
                 .name(format!("alert-{name}"))
-                .spawn(move || deliver_loop(&sink, &event_rx))
+                .spawn(move || deliver_loop(&sink, &event_rx, &stop_rx, &outcome_tx))
                 .map_err(|source| SinkError::Thread { sink: name, source })?;
             dispatcher.queues.push((name, event_tx));
             dispatcher.threads.push(thread);
@@ -221,47 +267,118 @@ impl AlertDispatcher {
         Ok(dispatcher)
     }
 
-    /// Hands `event` to every sink without waiting.
+    /// The configured sinks' names (`command`, `webhook`, `file`), in the
+    /// order they are started.
+    pub fn sink_names(&self) -> Vec<&'static str> {
+        self.queues.iter().map(|(name, _)| *name).collect()
+    }
+
+    /// Hands `event` to every sink without waiting; nobody tracks the outcome.
     pub fn send(&self, event: &AlertEvent) {
-        for (name, queue) in &self.queues {
-            match queue.try_send(event.clone()) {
-                Ok(()) => {}
-                Err(TrySendError::Full(_)) => self.repeats.warn(
-                    "sink queue full",
-                    format_args!(
-                        "alert sink {name} is {QUEUE_CAPACITY} events behind; dropped {} for it",
-                        event.condition
-                    ),
-                ),
-                Err(TrySendError::Disconnected(_)) => self.repeats.error(
-                    "sink stopped",
-                    format_args!(
-                        "alert sink {name} has stopped; {} not sent",
-                        event.condition
-                    ),
-                ),
-            }
+        for (name, _) in &self.queues {
+            self.send_to(name, None, event);
         }
     }
 
-    /// Stops taking events and waits for the queues to drain (each delivery is
-    /// bounded by its sink's timeouts and retries).
-    pub fn close(self) {
-        drop(self.queues);
-        for t in self.threads {
+    /// Hands `event` to the sink `name` without waiting, as the delivery of
+    /// row `id`, whose outcome is then reported through
+    /// [`AlertDispatcher::outcomes`]. A sink not configured is skipped.
+    pub fn send_to(&self, name: &str, id: Option<i64>, event: &AlertEvent) {
+        let Some((name, queue)) = self.queues.iter().find(|(n, _)| *n == name) else {
+            return;
+        };
+        let delivery = Delivery {
+            id,
+            event: event.clone(),
+        };
+        match queue.try_send(delivery) {
+            Ok(()) => {}
+            Err(TrySendError::Full(_)) => self.repeats.warn(
+                "sink queue full",
+                format_args!(
+                    "alert sink {name} is {QUEUE_CAPACITY} events behind; dropped {} for it",
+                    event.condition
+                ),
+            ),
+            Err(TrySendError::Disconnected(_)) => self.repeats.error(
+                "sink stopped",
+                format_args!(
+                    "alert sink {name} has stopped; {} not sent",
+                    event.condition
+                ),
+            ),
+        }
+    }
+
+    /// The outcomes of tracked deliveries finished since the last call.
+    pub fn outcomes(&self) -> Vec<Outcome> {
+        self.outcomes.try_iter().collect()
+    }
+
+    /// Stops taking events, lets the sinks work through their queues for
+    /// [`CLOSE_GRACE`], then cuts short what is left: a running command's
+    /// process group is killed, a webhook's retries are dropped, queued
+    /// events are not sent. A thread still in a webhook attempt after a
+    /// further moment is left to end on its own. Returns the outcomes of
+    /// tracked deliveries not yet taken; a delivery cut short has none.
+    pub fn close(mut self) -> Vec<Outcome> {
+        drop(std::mem::take(&mut self.queues));
+        let threads = std::mem::take(&mut self.threads);
+        let finished = |threads: &[JoinHandle<()>], within: Duration| {
+            let deadline = Instant::now() + within;
+            while threads.iter().any(|t| !t.is_finished()) && Instant::now() < deadline {
+                std::thread::sleep(Duration::from_millis(10));
+            }
+        };
+        finished(&threads, CLOSE_GRACE);
+        if threads.iter().any(|t| !t.is_finished()) {
+            tracing::warn!(
+                "alert sinks still busy {} s into the shutdown; the deliveries not made are sent at the next start",
+                CLOSE_GRACE.as_secs()
+            );
+        }
+        drop(self.stop.take());
+        finished(&threads, CLOSE_CUT);
+        for t in threads {
+            if !t.is_finished() {
+                continue; // in a webhook attempt: ends at its timeout
+            }
             if t.join().is_err() {
                 tracing::error!("an alert sink thread panicked");
             }
         }
+        self.outcomes()
     }
 }
 
-fn deliver_loop(sink: &Sink, event_rx: &Receiver<AlertEvent>) {
+/// Whether the dispatcher has told its sinks to stop.
+fn stopping(stop: &Receiver<()>) -> bool {
+    matches!(stop.try_recv(), Err(TryRecvError::Disconnected))
+}
+
+fn deliver_loop(
+    sink: &Sink,
+    deliveries: &Receiver<Delivery>,
+    stop: &Receiver<()>,
+    outcomes: &Sender<Outcome>,
+) {
     // A sink that is down fails every event: one line per window.
     let repeats = Repeats::default();
-    while let Ok(event) = event_rx.recv() {
-        match sink.deliver(&event) {
+    while let Ok(Delivery { id, event }) = deliveries.recv() {
+        if stopping(stop) {
+            return; // the rest stays pending
+        }
+        let result = sink.deliver(&event, stop);
+        match &result {
             Ok(()) => tracing::debug!("alert {} sent to {}", event.condition, sink.name()),
+            Err(SinkError::Interrupted) => {
+                tracing::info!(
+                    "alert {} to the {} sink cut short by the shutdown",
+                    event.condition,
+                    sink.name()
+                );
+                return;
+            }
             Err(e) => repeats.warn(
                 "delivery failed",
                 format_args!(
@@ -270,6 +387,11 @@ fn deliver_loop(sink: &Sink, event_rx: &Receiver<AlertEvent>) {
                     sink.name()
                 ),
             ),
+        }
+        if let Some(id) = id {
+            let result = result.map_err(|e| e.to_string());
+            // The dispatcher may be gone (dropped without close).
+            let _ = outcomes.send(Outcome { id, result });
         }
     }
 }
@@ -281,9 +403,14 @@ pub fn to_json(event: &AlertEvent) -> String {
 }
 
 /// Runs the program with its fixed arguments; the alert goes only to stdin and
-/// the environment, so no file name or message can become a command.
-fn run_command(c: &CommandSink, event: &AlertEvent) -> Result<(), SinkError> {
-    let mut child = Command::new(&c.program)
+/// the environment, so no file name or message can become a command. The
+/// program leads a process group of its own, which is killed whole at the
+/// timeout or when `stop` says the service is stopping.
+fn run_command(c: &CommandSink, event: &AlertEvent, stop: &Receiver<()>) -> Result<(), SinkError> {
+    let mut command = Command::new(&c.program);
+    #[cfg(unix)]
+    std::os::unix::process::CommandExt::process_group(&mut command, 0);
+    let mut child = command
         .args(&c.args)
         .env("FRAMEWARDEN_ALERT_CONDITION", &event.condition)
         .env("FRAMEWARDEN_ALERT_STATE", event.state.as_str())
@@ -318,12 +445,15 @@ fn run_command(c: &CommandSink, event: &AlertEvent) -> Result<(), SinkError> {
                 })
             }
             Ok(None) if Instant::now() >= deadline => {
-                let _ = child.kill();
-                let _ = child.wait();
+                end_group(&mut child);
                 return Err(SinkError::CommandTimeout {
                     program: c.program.clone(),
                     timeout: c.timeout,
                 });
+            }
+            Ok(None) if stopping(stop) => {
+                end_group(&mut child);
+                return Err(SinkError::Interrupted);
             }
             Ok(None) => std::thread::sleep(Duration::from_millis(20)),
             Err(source) => {
@@ -334,6 +464,20 @@ fn run_command(c: &CommandSink, event: &AlertEvent) -> Result<(), SinkError> {
             }
         }
     }
+}
+
+/// Kills the command and every process of its group (its children, theirs),
+/// then collects the command.
+fn end_group(child: &mut std::process::Child) {
+    #[cfg(unix)]
+    {
+        let group = rustix::process::Pid::from_child(child);
+        if let Err(e) = rustix::process::kill_process_group(group, rustix::process::Signal::KILL) {
+            tracing::warn!("cannot end the alert command's process group: {e}");
+        }
+    }
+    let _ = child.kill();
+    let _ = child.wait();
 }
 
 /// The extra trusted CA certificates of `[alerts] webhook_ca_file` (PEM), read
@@ -458,11 +602,17 @@ impl WebhookClient {
     }
 
     /// Posts the alert, retrying a failed attempt `retries` times after
-    /// `backoff`, doubling the delay each time.
+    /// `backoff`, doubling the delay each time; the retries end when `stop`'s
+    /// sender is dropped (the service is stopping).
     ///
     /// # Errors
-    /// The only attempt's error, or [`SinkError::WebhookGaveUp`] with the last.
-    pub fn post_with_retries(&self, event: &AlertEvent) -> Result<(), SinkError> {
+    /// The only attempt's error, [`SinkError::WebhookGaveUp`] with the last,
+    /// or [`SinkError::Interrupted`] when stopped between attempts.
+    pub fn post_with_retries(
+        &self,
+        event: &AlertEvent,
+        stop: &Receiver<()>,
+    ) -> Result<(), SinkError> {
         let body = to_json(event);
         let mut delay = self.sink.backoff;
         let mut attempt = 1;
@@ -481,7 +631,9 @@ impl WebhookClient {
                 }
                 Err(e) => tracing::debug!("webhook attempt {attempt} failed: {e}"),
             }
-            std::thread::sleep(delay);
+            if let Err(RecvTimeoutError::Disconnected) = stop.recv_timeout(delay) {
+                return Err(SinkError::Interrupted);
+            }
             delay = delay.saturating_mul(2);
             attempt += 1;
         }

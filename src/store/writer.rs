@@ -83,7 +83,10 @@ pub trait FrameObserver: Send {
     /// Periodic checks that need no frame, outside any transaction: the
     /// writer calls this on a clock, busy or idle, also while a commit waits
     /// to be tried again.
-    fn tick(&mut self, conn: &Connection);
+    ///
+    /// # Errors
+    /// SQLite errors (the writer logs them and calls again on its clock).
+    fn tick(&mut self, conn: &Connection) -> rusqlite::Result<()>;
     /// A commit failed for lack of space on the database's volume (`cause`
     /// says how), or, with `None`, one succeeded again after such failures.
     /// Called outside any transaction, once per change.
@@ -92,8 +95,10 @@ pub trait FrameObserver: Send {
     /// the writer stops without writing anything more into it, so nothing
     /// about it can be stored; called once, before [`FrameObserver::close`].
     fn database_failed(&mut self, fault: &DatabaseFault);
-    /// The writer is ending: finish what is queued.
-    fn close(self: Box<Self>);
+    /// The writer is ending: finish what is queued, recording in `conn`
+    /// (outside any transaction) what needs recording; `None` after
+    /// [`FrameObserver::database_failed`], when nothing can be recorded.
+    fn close(self: Box<Self>, conn: Option<&Connection>);
 }
 
 /// One thing to record.
@@ -409,6 +414,9 @@ impl WriterState {
         if let Err(e) = ended {
             tracing::error!("cannot mark run {} ended: {e}", self.run.id);
         }
+        if let Some(observer) = self.observer.take() {
+            observer.close(Some(&self.conn));
+        }
         // Everything into the database file and the log emptied, so that a
         // reader who cannot write the folder finds a database complete on its
         // own (see `store::open_read_only`).
@@ -421,9 +429,6 @@ impl WriterState {
             Ok(0) => {}
             Ok(_) => tracing::warn!("the final checkpoint was blocked by a reader; the log stays"),
             Err(e) => tracing::warn!("the final checkpoint failed: {e}"),
-        }
-        if let Some(observer) = self.observer.take() {
-            observer.close();
         }
         if let Some(images) = self.label_images.take() {
             images.finish();
@@ -445,7 +450,10 @@ impl WriterState {
         if now >= self.next_tick {
             self.next_tick = now + OBSERVER_TICK;
             if let Some(observer) = self.observer.as_mut() {
-                observer.tick(&self.conn);
+                if let Err(e) = observer.tick(&self.conn) {
+                    self.repeats
+                        .error("observer tick", format_args!("quality control: {e}"));
+                }
             }
         }
         self.health.fault()
@@ -475,7 +483,7 @@ impl WriterState {
         tracing::error!("{fault}");
         if let Some(mut observer) = self.observer.take() {
             observer.database_failed(fault);
-            observer.close();
+            observer.close(None);
         }
         if let Some(images) = self.label_images.take() {
             images.finish();
@@ -1563,10 +1571,12 @@ mod tests {
         }
         fn committed(&mut self) {}
         fn rolled_back(&mut self) {}
-        fn tick(&mut self, _: &Connection) {}
+        fn tick(&mut self, _: &Connection) -> rusqlite::Result<()> {
+            Ok(())
+        }
         fn out_of_space(&mut self, _: &Connection, _: Option<&str>) {}
         fn database_failed(&mut self, _: &DatabaseFault) {}
-        fn close(self: Box<Self>) {}
+        fn close(self: Box<Self>, _: Option<&Connection>) {}
     }
 
     fn start_judged(db: &std::path::Path) -> (Writer, Sender<StoreOp>, JudgedLog) {

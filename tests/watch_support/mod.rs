@@ -261,3 +261,16 @@ pub fn wait_for(what: &str, limit: Duration, mut cond: impl FnMut() -> bool) {
         std::thread::sleep(Duration::from_millis(50));
     }
 }
+
+/// Whether process `pid` still runs (a zombie waiting for its parent to
+/// collect it runs no more), read from procfs.
+#[cfg(target_os = "linux")]
+pub fn process_runs(pid: u32) -> bool {
+    match std::fs::read_to_string(format!("/proc/{pid}/stat")) {
+        // The state follows the command name in parentheses.
+        Ok(stat) => stat
+            .rsplit_once(") ")
+            .is_some_and(|(_, rest)| !rest.starts_with('Z')),
+        Err(_) => false,
+    }
+}
