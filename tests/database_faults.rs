@@ -174,8 +174,7 @@ fn the_free_space_check_runs_while_frames_keep_coming() {
         std::thread::sleep(Duration::from_millis(800));
     }
     bench.wait_finished(written as usize, LONG);
-    bench.signal("TERM");
-    assert_eq!(bench.wait_exit(Duration::from_secs(60)), Some(0));
+    bench.stop();
 }
 
 /// The database's volume (a 4 MiB tmpfs) filled to its last byte while the
@@ -244,8 +243,7 @@ fn a_full_database_volume_is_announced_waited_out_and_nothing_is_lost() {
     );
     assert!(stored.iter().any(|(c, _)| *c == low), "{stored:?}");
     drop(conn);
-    bench.signal("TERM");
-    assert_eq!(bench.wait_exit(Duration::from_secs(60)), Some(0));
+    bench.stop();
     // Sent while the volume was full, the opening's deliveries (one per sink:
     // file and command) were stored finished with it, so the next start
     // sends nothing again; every other delivery was recorded as made.

@@ -147,16 +147,6 @@ fn image_matches(frame: &Frame, image: &ReadBack, failures: &mut Vec<String>) {
     }
 }
 
-fn stop(bench: &mut Bench) {
-    bench.signal("TERM");
-    assert_eq!(
-        bench.wait_exit(Duration::from_secs(60)),
-        Some(0),
-        "{}",
-        bench.logs()
-    );
-}
-
 #[test]
 fn by_default_flagged_frames_get_an_image_that_matches_their_objects() {
     // Sparse frames are flagged for a small foreground, dense ones are not;
@@ -175,7 +165,7 @@ fn by_default_flagged_frames_get_an_image_that_matches_their_objects() {
     bench.write("uneven.tif", &frame_bytes(30, 12, 0.9));
     bench.wait_finished(7, LONG);
     // Images are written after their rows commit; a clean stop writes them all.
-    stop(&mut bench);
+    bench.stop();
 
     let frames = frames(&bench.db);
     assert_eq!(frames.len(), 7);
@@ -236,7 +226,7 @@ fn all_writes_one_image_per_frame_and_none_writes_no_folder() {
             );
         }
         bench.wait_finished(3, LONG);
-        stop(bench);
+        bench.stop();
     }
     assert!(!none.dir.path().join("fw-labels").exists());
 
@@ -264,7 +254,7 @@ fn an_image_that_cannot_be_written_is_logged_and_the_service_goes_on() {
     bench.write("B02.tif", &frame_bytes(51, 5, 0.0));
     let rows = bench.wait_finished(2, LONG);
     assert!(rows.iter().all(|r| r.status == "done"), "{rows:?}");
-    stop(&mut bench);
+    bench.stop();
     let logs = bench.logs();
     for name in ["B01.tif", "B02.tif"] {
         assert!(
@@ -296,7 +286,7 @@ fn a_crash_and_restart_duplicate_no_row_and_leave_only_whole_images() {
         bench.write(&format!("C{i:02}.tif"), &frame_bytes(60 + i, 8, 0.0));
     }
     let rows = bench.wait_finished(12, LONG);
-    stop(&mut bench);
+    bench.stop();
 
     let mut names: Vec<&str> = rows.iter().map(|r| r.path.as_str()).collect();
     names.sort_unstable();

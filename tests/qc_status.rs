@@ -237,8 +237,7 @@ fn status_shows_a_drift_alert_its_recovery_the_flags_and_failures() {
 
     // A restart in the middle of the run is an alert of its own, and the
     // rebuilt monitor does not raise the old drift again.
-    bench.signal("TERM");
-    assert_eq!(bench.wait_exit(Duration::from_secs(60)), Some(0));
+    bench.stop();
     bench.start();
     feed(&bench, &[frame(30, 1.0)], 32);
     let status = status_json(&bench);
@@ -248,8 +247,7 @@ fn status_shows_a_drift_alert_its_recovery_the_flags_and_failures() {
         "{status:#}"
     );
     assert_eq!(alerts_of(&status, "drift:background_level").len(), 1);
-    bench.signal("TERM");
-    assert_eq!(bench.wait_exit(Duration::from_secs(60)), Some(0));
+    bench.stop();
 }
 
 #[test]
@@ -291,8 +289,7 @@ fn low_free_space_on_a_watched_volume_raises_an_alert() {
     );
     assert!(low[0]["closed_at"].is_null());
     assert!(low[0]["message"].as_str().unwrap().contains("MiB free"));
-    bench.signal("TERM");
-    assert_eq!(bench.wait_exit(Duration::from_secs(60)), Some(0));
+    bench.stop();
 }
 
 #[test]
@@ -334,8 +331,7 @@ fn channels_of_one_well_are_judged_apart() {
         positions,
         [("A01 channel bright", 16), ("A01 channel dim", 16)]
     );
-    bench.signal("TERM");
-    assert_eq!(bench.wait_exit(Duration::from_secs(60)), Some(0));
+    bench.stop();
 }
 
 #[test]
@@ -388,8 +384,7 @@ fn a_run_with_every_expected_frame_is_complete_and_its_end_is_no_stall() {
         "{sent:?}"
     );
     for bench in [&mut knows, &mut guesses] {
-        bench.signal("TERM");
-        assert_eq!(bench.wait_exit(Duration::from_secs(60)), Some(0));
+        bench.stop();
     }
 }
 
@@ -528,11 +523,9 @@ fn every_well_dimming_together_is_one_alert_closed_by_the_complete_run() {
     assert_eq!(joined_sorted, wells, "each well joined once: {joined:?}");
 
     // A restart after the complete run is no restart in the middle of it.
-    bench.signal("TERM");
-    assert_eq!(bench.wait_exit(Duration::from_secs(60)), Some(0));
+    bench.stop();
     bench.start();
-    bench.signal("TERM");
-    assert_eq!(bench.wait_exit(Duration::from_secs(60)), Some(0));
+    bench.stop();
     let status = status_json(&bench);
     assert!(
         alerts_of(&status, "service_restarted").is_empty(),

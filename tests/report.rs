@@ -355,8 +355,7 @@ fn watch_rewrites_the_report_every_interval_and_when_it_stops() {
     assert!(std::fs::read_to_string(&report)
         .unwrap()
         .contains("<dd data-key=\"ended\">still being watched</dd>"));
-    bench.signal("TERM");
-    assert_eq!(bench.wait_exit(Duration::from_secs(60)), Some(0));
+    bench.stop();
     let html = std::fs::read_to_string(&report)
         .unwrap_or_else(|e| panic!("{}: {e}\n{}", report.display(), bench.logs()));
     assert!(
@@ -419,13 +418,7 @@ fn a_run_recorded_after_the_fact_plots_at_acquisition_times() {
     }
     bench.start();
     bench.wait_finished(minutes.len(), Duration::from_secs(120));
-    bench.signal("TERM");
-    assert_eq!(
-        bench.wait_exit(Duration::from_secs(60)),
-        Some(0),
-        "{}",
-        bench.logs()
-    );
+    bench.stop();
     let report = bench.dir.path().join("report.html");
     run_ok(
         Command::new(BIN)

@@ -314,8 +314,7 @@ fn a_rewritten_file_is_a_new_version_and_an_unchanged_one_is_never_redone() {
     let (second, truth2) = tiff_bytes(19, 128, 5);
     let path = bench.write("J09_t0001.tif", &first);
     bench.wait_finished(1, LONG);
-    bench.signal("TERM");
-    assert_eq!(bench.wait_exit(Duration::from_secs(60)), Some(0));
+    bench.stop();
     // Unchanged across a restart: the catch-up scan skips it.
     bench.start();
     std::fs::write(&path, &second).unwrap();
@@ -452,8 +451,7 @@ fn a_stuck_writer_starves_the_watchdog_and_nothing_is_lost_once_it_moves() {
         fed(&messages(Duration::from_secs(5))),
         "fed again once the pipeline moves"
     );
-    bench.signal("TERM");
-    assert_eq!(bench.wait_exit(Duration::from_secs(60)), Some(0));
+    bench.stop();
 }
 
 #[test]
@@ -490,8 +488,7 @@ fn a_stop_held_up_by_a_locked_database_keeps_its_bound_and_a_restart_loses_nothi
     let rows = bench.wait_finished(8, LONG);
     assert_each_done_once(&rows, 8);
     assert!(rows.iter().all(|r| r.object_count == Some(truth as i64)));
-    bench.signal("TERM");
-    assert_eq!(bench.wait_exit(Duration::from_secs(60)), Some(0));
+    bench.stop();
 }
 
 #[test]
@@ -558,11 +555,9 @@ fn a_second_service_on_the_same_database_is_refused() {
     bench.write("P01_t0000.tif", &bytes);
     let rows = bench.wait_finished(1, LONG);
     assert_eq!(rows[0].object_count, Some(truth as i64));
-    bench.signal("TERM");
-    assert_eq!(bench.wait_exit(Duration::from_secs(60)), Some(0));
+    bench.stop();
     bench.start();
-    bench.signal("TERM");
-    assert_eq!(bench.wait_exit(Duration::from_secs(60)), Some(0));
+    bench.stop();
 }
 
 #[test]
@@ -623,8 +618,7 @@ fn control_characters_in_file_names_are_escaped_in_the_log() {
     let (bytes, _) = tiff_bytes(34, 96, 3);
     bench.write("P02\n\u{1b}[31mred.tif", &bytes);
     bench.wait_finished(1, LONG);
-    bench.signal("TERM");
-    assert_eq!(bench.wait_exit(Duration::from_secs(60)), Some(0));
+    bench.stop();
     let logs = bench.logs();
     assert!(!logs.contains('\u{1b}'), "{logs:?}");
     // The frame's log line names the file, escaped, on one line.

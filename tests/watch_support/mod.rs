@@ -155,6 +155,18 @@ impl Bench {
         }
     }
 
+    /// SIGTERM, and the clean exit (code 0) within a minute that a stop must
+    /// give; the logs when it does not.
+    pub fn stop(&mut self) {
+        self.signal("TERM");
+        assert_eq!(
+            self.wait_exit(Duration::from_secs(60)),
+            Some(0),
+            "{}",
+            self.logs()
+        );
+    }
+
     /// SIGKILL: no chance to flush anything.
     pub fn kill_hard(&mut self) {
         let mut child = self.child.take().expect("running");
