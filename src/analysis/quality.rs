@@ -163,63 +163,72 @@ struct FocusEnergies {
 }
 
 multiversion! {
-    /// One pass over the rows for [`focus`], keeping the last three rows of
-    /// `16·B` (the binomial smoothing, integer) to take their Laplacian.
+    /// One pass over the rows for [`focus`]. Each row's horizontal `[1 2 1]`
+    /// and `[1 −2 1]` are made once, into rings of three rows; the vertical
+    /// halves of `16·B` and of the noise filter, and the Laplacian of `16·B`
+    /// (the last three rows of it kept), are slice-wise sums, so the loops
+    /// vectorise.
     fn focus_energies(raw: &Frame) -> FocusEnergies {
         let (w, h) = (raw.width, raw.height);
         let mut e = FocusEnergies::default();
         if w < 5 || h < 5 {
             return e;
         }
-        // 16·B of rows y - 2, y - 1, y (index y % 3), defined on x in 1..w-1.
-        let mut smooth = [vec![0i32; w], vec![0i32; w], vec![0i32; w]];
-        for y in 1..h - 1 {
-            let (up, row, down) = (raw.row(y - 1), raw.row(y), raw.row(y + 1));
-            let out = &mut smooth[y % 3];
-            let (mut b_sum, mut b_sq, mut n_sum, mut n_sq) = (0i64, 0f64, 0i64, 0f64);
-            for (x, slot) in out.iter_mut().enumerate().take(w - 1).skip(1) {
-                let c = |r: &[u16], i: usize| i32::from(r[i]);
-                // Horizontal [1 2 1] and [1 -2 1] of the three rows.
-                let (su, sr, sd) = (
-                    c(up, x - 1) + 2 * c(up, x) + c(up, x + 1),
-                    c(row, x - 1) + 2 * c(row, x) + c(row, x + 1),
-                    c(down, x - 1) + 2 * c(down, x) + c(down, x + 1),
-                );
-                let (du, dr, dd) = (
-                    c(up, x - 1) - 2 * c(up, x) + c(up, x + 1),
-                    c(row, x - 1) - 2 * c(row, x) + c(row, x + 1),
-                    c(down, x - 1) - 2 * c(down, x) + c(down, x + 1),
-                );
-                let b = su + 2 * sr + sd;
-                let noise = du - 2 * dr + dd;
-                *slot = b;
-                b_sum += i64::from(b);
-                b_sq += f64::from(b) * f64::from(b);
-                n_sum += i64::from(noise);
-                n_sq += f64::from(noise) * f64::from(noise);
+        // Columns 1..w-1 of each row, at index x - 1; rings indexed by y % 3.
+        let n = w - 2;
+        let ring = || [vec![0i32; n], vec![0i32; n], vec![0i32; n]];
+        let (mut flat, mut curve, mut smooth) = (ring(), ring(), ring());
+        let mut values = vec![0i32; n];
+        let horizontal = |row: &[u16], flat: &mut [i32], curve: &mut [i32]| {
+            for ((f, c), x) in flat.iter_mut().zip(curve.iter_mut()).zip(row.windows(3)) {
+                let (l, m, r) = (i32::from(x[0]), i32::from(x[1]), i32::from(x[2]));
+                *f = l + 2 * m + r;
+                *c = l - 2 * m + r;
             }
-            e.b_sum += b_sum as f64;
-            e.b_sq += b_sq;
-            e.b_n += (w - 2) as u64;
-            e.n_sum += n_sum as f64;
-            e.n_sq += n_sq;
-            e.n_n += (w - 2) as u64;
+        };
+        for y in 0..2 {
+            horizontal(raw.row(y), &mut flat[y], &mut curve[y]);
+        }
+        for y in 1..h - 1 {
+            let (above, here, below) = ((y - 1) % 3, y % 3, (y + 1) % 3);
+            horizontal(raw.row(y + 1), &mut flat[below], &mut curve[below]);
+            for (((b, u), m), d) in smooth[here].iter_mut().zip(&flat[above]).zip(&flat[here]).zip(&flat[below]) {
+                *b = u + 2 * m + d;
+            }
+            add_row(&smooth[here], &mut e.b_sum, &mut e.b_sq, &mut e.b_n);
+            for (((v, u), m), d) in values.iter_mut().zip(&curve[above]).zip(&curve[here]).zip(&curve[below]) {
+                *v = u - 2 * m + d;
+            }
+            add_row(&values, &mut e.n_sum, &mut e.n_sq, &mut e.n_n);
             // The Laplacian of row y - 1 of B, for x in 2..w-2.
             if y >= 3 {
-                let (above, mid, below) = (&smooth[(y - 2) % 3], &smooth[(y - 1) % 3], &smooth[y % 3]);
-                let (mut l_sum, mut l_sq) = (0i64, 0f64);
-                for x in 2..w - 2 {
-                    let l = above[x] + below[x] + mid[x - 1] + mid[x + 1] - 4 * mid[x];
-                    l_sum += i64::from(l);
-                    l_sq += f64::from(l) * f64::from(l);
+                let (up, mid, down) = (&smooth[(y - 2) % 3], &smooth[(y - 1) % 3], &smooth[here]);
+                let lap = &mut values[..n - 2];
+                for (((v, m), u), d) in lap.iter_mut().zip(mid.windows(3)).zip(&up[1..]).zip(&down[1..]) {
+                    *v = u + d + m[0] + m[2] - 4 * m[1];
                 }
-                e.l_sum += l_sum as f64;
-                e.l_sq += l_sq;
-                e.l_n += (w - 4) as u64;
+                add_row(lap, &mut e.l_sum, &mut e.l_sq, &mut e.l_n);
             }
         }
         e
     }
+}
+
+/// Adds `values`' sum, sum of squares and count to the running totals,
+/// exactly per chunk: 4096 squares of values under 2^24 stay within i64.
+/// Always inlined, like [`masked_sum`].
+#[inline(always)]
+fn add_row(values: &[i32], sum: &mut f64, squares: &mut f64, count: &mut u64) {
+    for chunk in values.chunks(4096) {
+        let (mut s, mut q) = (0i64, 0i64);
+        for &v in chunk {
+            s += i64::from(v);
+            q += i64::from(v) * i64::from(v);
+        }
+        *sum += s as f64;
+        *squares += q as f64;
+    }
+    *count += values.len() as u64;
 }
 
 multiversion! {
