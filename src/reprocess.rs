@@ -18,7 +18,7 @@ use rusqlite::{params, params_from_iter, Connection, OptionalExtension};
 
 use crate::analyze::in_order;
 use crate::pipeline::{analyze_file, analyze_stack_page, FileAnalysis};
-use crate::qc::alerts::AlertState;
+use crate::qc::alerts::{AlertEvent, AlertState};
 use crate::qc::monitor::RunMonitor;
 use crate::settings::{ConfigError, Settings};
 use crate::store::writer::{
@@ -209,22 +209,12 @@ pub fn reprocess(request: &Request) -> Result<Comparison, ReprocessError> {
                             f.message
                         ])?;
                     }
-                    would_open.extend(
-                        verdict
-                            .events
-                            .into_iter()
-                            .filter(|e| e.state == AlertState::Opened)
-                            .map(|e| (e.condition, e.message)),
-                    );
+                    would_open.extend(openings(verdict.events));
                 }
                 Err(cause) => {
-                    let events = monitor.observe_failure(&frame.key.path, frame.at_ms);
-                    would_open.extend(
-                        events
-                            .into_iter()
-                            .filter(|e| e.state == AlertState::Opened)
-                            .map(|e| (e.condition, e.message)),
-                    );
+                    would_open.extend(openings(
+                        monitor.observe_failure(&frame.key.path, frame.at_ms),
+                    ));
                     conn.prepare_cached(
                         "INSERT INTO analysis_frames (analysis_id, frame_id, status, error, analyzed_at_ms)
                          VALUES (?1, ?2, 'failed', ?3, ?4)",
@@ -251,6 +241,14 @@ pub fn reprocess(request: &Request) -> Result<Comparison, ReprocessError> {
     let mut comparison = compare(db, run_id, number)?;
     comparison.would_open = would_open;
     Ok(comparison)
+}
+
+/// The alerts among `events` that open: (condition, message).
+fn openings(events: Vec<AlertEvent>) -> impl Iterator<Item = (String, String)> {
+    events
+        .into_iter()
+        .filter(|e| e.state == AlertState::Opened)
+        .map(|e| (e.condition, e.message))
 }
 
 /// The run's stored settings with the `--with` file's `[segment]`,

@@ -33,6 +33,18 @@ struct Run {
     resegmented: (i64, PathBuf),
 }
 
+/// `framewarden report --db DB -o OUT`, which must succeed.
+fn write_report(db: &Path, out: &Path) {
+    run_ok(
+        Command::new(BIN)
+            .arg("report")
+            .arg("--db")
+            .arg(db)
+            .arg("-o")
+            .arg(out),
+    );
+}
+
 fn run_ok(cmd: &mut Command) -> String {
     let out = cmd.output().expect("the framewarden binary starts");
     let stdout = String::from_utf8_lossy(&out.stdout).into_owned();
@@ -105,14 +117,7 @@ fn run() -> &'static Run {
         let aside = dir.path().join("moved-aside.tif");
         std::fs::rename(image, &aside).unwrap();
         let report = dir.path().join("report.html");
-        run_ok(
-            Command::new(BIN)
-                .arg("report")
-                .arg("--db")
-                .arg(&db)
-                .arg("-o")
-                .arg(&report),
-        );
+        write_report(&db, &report);
         Run {
             _dir: dir,
             db,
@@ -231,14 +236,7 @@ fn a_missing_frame_file_is_said_and_the_report_still_written() {
         .unwrap();
     drop(conn);
     let report = dir.path().join("r.html");
-    run_ok(
-        Command::new(BIN)
-            .arg("report")
-            .arg("--db")
-            .arg(&db)
-            .arg("-o")
-            .arg(&report),
-    );
+    write_report(&db, &report);
     let html = std::fs::read_to_string(&report).unwrap();
     assert!(html.contains("the file is gone: no picture"));
     assert!(!html.contains("data:image/png"));
@@ -420,14 +418,7 @@ fn a_run_recorded_after_the_fact_plots_at_acquisition_times() {
     bench.wait_finished(minutes.len(), Duration::from_secs(120));
     bench.stop();
     let report = bench.dir.path().join("report.html");
-    run_ok(
-        Command::new(BIN)
-            .arg("report")
-            .arg("--db")
-            .arg(&bench.db)
-            .arg("-o")
-            .arg(&report),
-    );
+    write_report(&bench.db, &report);
     let html = std::fs::read_to_string(&report).unwrap();
 
     // The line's points are where the mtimes put them: the same fractions

@@ -47,23 +47,24 @@ pub fn assess(
     let saturation_fraction = raw_hist.counts[usize::from(raw.max_value())] as f64 / n;
     let (w, h) = (raw.width, raw.height);
     let (gx, gy) = (GRID.min(w).max(1), GRID.min(h).max(1));
-    let sums = row_sums(raw, segmented, t, gx, gy);
     let RowSums {
         block_sum,
         block_n,
         bg_hist,
-        ..
-    } = &sums;
-    let background_level = match &bg_hist {
-        Some(counts) => Histogram {
-            total: counts.iter().sum(),
-            counts: counts.clone(),
+    } = row_sums(raw, segmented, t, gx, gy);
+    let background_level = match bg_hist {
+        Some(counts) => {
+            let top = counts.len() - 1;
+            Histogram {
+                total: counts.iter().sum(),
+                counts,
+            }
+            .median_upto(top)
         }
-        .median_upto(counts.len() - 1),
         None => raw_hist.median_upto(usize::from(t)),
     }
     .unwrap_or(0.0);
-    let illumination_change = illumination(block_sum, block_n, gx, gy, w * h / (gx * gy));
+    let illumination_change = illumination(&block_sum, &block_n, gx, gy, w * h / (gx * gy));
     let focus = focus(raw, background_level);
     FrameQuality {
         background_level,

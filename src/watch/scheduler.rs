@@ -304,16 +304,8 @@ impl Scheduler {
                 stack.waiting.pop_front();
                 continue;
             }
-            let recorded = match lookup(&self.reader, &key) {
-                Ok(status) => status,
-                Err(e) => {
-                    tracing::warn!(
-                        "store look-up for {} failed ({e}); trying again",
-                        shown_path(path)
-                    );
-                    c.due = now + Duration::from_millis(500);
-                    return Some(Look::Again);
-                }
+            let Ok(recorded) = self.recorded(path, &key, c, now) else {
+                return Some(Look::Again);
             };
             if !matches!(recorded, Some(FrameStatus::Done | FrameStatus::Failed)) {
                 if self.work_tx.is_full() {
@@ -376,21 +368,8 @@ impl Scheduler {
         if in_flight.contains(&key) {
             return Look::Drop;
         }
-        let recorded = match lookup(&self.reader, &key) {
-            Ok(status) => status,
-            Err(e) => {
-                // A damaged database stops the service (the writer sees it).
-                self.health.report(&e);
-                self.repeats.warn(
-                    "store look-up failed",
-                    format_args!(
-                        "store look-up for {} failed ({e}); trying again",
-                        shown_path(path)
-                    ),
-                );
-                c.due = now + Duration::from_millis(500);
-                return Look::Again;
-            }
+        let Ok(recorded) = self.recorded(path, &key, c, now) else {
+            return Look::Again;
         };
         if let Some(previous) = c.previous.take().filter(|p| *p != key) {
             // The file changed since a worker read it short: that version never
@@ -409,6 +388,29 @@ impl Scheduler {
         let names = self.watch.name_pattern.parts(path);
         self.enqueue(path, key, names, recorded.is_none(), c, in_flight);
         Look::Drop
+    }
+
+    /// What the store holds for `key`; on a failed look-up, `Err` with the
+    /// candidate due again shortly (the error reported to the database's
+    /// health, since a damaged database stops the service, and logged).
+    fn recorded(
+        &self,
+        path: &Path,
+        key: &FrameKey,
+        c: &mut Candidate,
+        now: Instant,
+    ) -> Result<Option<FrameStatus>, ()> {
+        lookup(&self.reader, key).map_err(|e| {
+            self.health.report(&e);
+            self.repeats.warn(
+                "store look-up failed",
+                format_args!(
+                    "store look-up for {} failed ({e}); trying again",
+                    shown_path(path)
+                ),
+            );
+            c.due = now + Duration::from_millis(500);
+        })
     }
 
     /// Hands a complete frame to the workers (the queue has room), after
