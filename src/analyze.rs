@@ -280,7 +280,7 @@ fn table_line(file: &str, result: &Outcome, flags: &[FlagRow]) -> String {
             let mark = if a.recount.is_some() { "*" } else { "" };
             let objects = format!("{}{mark}", a.count_used());
             format!(
-                "{:<40} {:>7} {:>9} {:>6.3} {:>7.2} {:>10.1} {:>6.2} {:>10.1} {:>7.1}  {}",
+                "{:<40} {:>7} {:>9} {:>6.3} {:>7.2} {:>10.1} {:>6.2} {:>10.4} {:>7.1}  {}",
                 name,
                 objects,
                 r.threshold,

@@ -174,6 +174,8 @@ fn layout(table: Table) -> (Vec<Column>, &'static str) {
                 col("bimodality", Real, "f.bimodality"),
                 col("foreground_fraction", Real, "f.foreground_fraction"),
                 col("merged_fraction", Real, "f.merged_fraction"),
+                col("dim_objects", Int, "f.dim_objects"),
+                col("dim_level", Real, "f.dim_level"),
                 col("background_level", Real, "f.background_level"),
                 col("saturation_fraction", Real, "f.saturation_fraction"),
                 col("focus", Real, "f.focus"),

@@ -129,14 +129,8 @@ pub fn measure(
         .map(|s| {
             let touches =
                 s.x_min == 0 || s.y_min == 0 || s.x_max as usize == w || s.y_max as usize == h;
-            let um2_ok = area_um2(s.n).is_none_or(|a| {
-                a >= filter.min_area_um2 && (filter.max_area_um2 == 0.0 || a <= filter.max_area_um2)
-            });
-            let size_ok = s.n >= filter.min_area_px
-                && (filter.max_area_px == 0 || s.n <= filter.max_area_px)
-                && um2_ok;
-            size_filtered += usize::from(!size_ok);
-            size_ok && !(filter.exclude_border && touches)
+            size_filtered += usize::from(!filter.keeps_size(s.n, pixel_size_um));
+            filter.keeps(s.n, touches, pixel_size_um)
         })
         .collect();
     // Final labels, 1-based, in component (raster) order.

@@ -7,10 +7,11 @@
 //! Files from the bottom up: [`params`] (the core's own parameter types),
 //! [`result`], [`threshold`], [`correct`], [`label`], [`distance`] (the
 //! Euclidean distance transform), [`split`] (touching objects cut apart),
-//! [`measure`], [`quality`], [`segment`] (the whole frame) and [`recount`]
+//! [`measure`], [`dim_objects`] (objects a threshold leaves out), [`quality`], [`segment`] (the whole frame) and [`recount`]
 //! (the second segmentation of an unevenly lit frame). No file imports one above it.
 
 pub mod correct;
+pub mod dim_objects;
 pub mod distance;
 pub mod label;
 pub mod measure;

@@ -170,6 +170,25 @@ impl ObjectFilter {
         max_area_um2: 0.0,
         exclude_border: false,
     };
+
+    /// True when an object of `area_px` pixels passes the size limits: the
+    /// pixel limits, and the µm² limits when `pixel_size_um` is known.
+    pub fn keeps_size(&self, area_px: u64, pixel_size_um: Option<f64>) -> bool {
+        let um2_ok = pixel_size_um
+            .map(|p| area_px as f64 * p * p)
+            .is_none_or(|a| {
+                a >= self.min_area_um2 && (self.max_area_um2 == 0.0 || a <= self.max_area_um2)
+            });
+        area_px >= self.min_area_px
+            && (self.max_area_px == 0 || area_px <= self.max_area_px)
+            && um2_ok
+    }
+
+    /// True when the filter keeps an object of `area_px` pixels that touches
+    /// the frame's edge or not: its size limits and the edge rule.
+    pub fn keeps(&self, area_px: u64, touches_edge: bool, pixel_size_um: Option<f64>) -> bool {
+        self.keeps_size(area_px, pixel_size_um) && !(self.exclude_border && touches_edge)
+    }
 }
 
 impl Default for ObjectFilter {

@@ -34,13 +34,21 @@ pub struct FrameResult {
     /// Share of the objects that look like several touching ones merged
     /// (low solidity, large area; see [`crate::analysis::measure::merged_fraction`]).
     pub merged_fraction: f64,
+    /// Objects the threshold leaves out: components above [`Self::dim_level`]
+    /// with no pixel above the threshold that the object filter would keep
+    /// (see [`crate::analysis::dim_objects`]); 0 when there is no `dim_level`.
+    pub dim_objects: usize,
+    /// The level separating a second, dimmer population from the background
+    /// below the threshold, when the background class holds one.
+    pub dim_level: Option<f64>,
     /// Fraction of the frame covered by kept objects (after fill and filters).
     pub foreground_fraction: f64,
     /// Median raw intensity of the pixels the threshold calls background.
     pub background_level: f64,
     /// Fraction of raw pixels at the top of the bit depth (255 or 65535).
     pub saturation_fraction: f64,
-    /// Variance of the 4-neighbour Laplacian of the raw frame (interior pixels).
+    /// Sharpness of the raw frame, independent of its brightness: see
+    /// [`crate::analysis::quality`] (the published measure it follows is named there).
     pub focus: f64,
     /// Relative brightness change of the fitted background field across the
     /// frame: (max - min) / mean of the fitted surface; 0 for a flat field.

@@ -6,7 +6,7 @@
 
 use crate::analysis::params::{Background, Method, SegmentParams, Split};
 use crate::analysis::result::{AnalysisError, FrameResult};
-use crate::analysis::{correct, label, measure, quality, split, threshold};
+use crate::analysis::{correct, dim_objects, label, measure, quality, split, threshold};
 use crate::frame::Frame;
 
 /// Runs the whole per-frame analysis: correct, threshold, fill, label, split
@@ -162,6 +162,16 @@ fn run(
     let labels = want_labels
         .then(|| components.label_image(frame.width, frame.height, |k| component_labels[k] != 0));
     let q = quality::assess(frame, &raw_hist, corrected.as_ref(), t);
+    let dim = dim_objects::dim_objects(
+        &segmented.pixels,
+        frame.width,
+        frame.height,
+        &seg_hist,
+        t,
+        params.connectivity,
+        &params.filter,
+        pixel_size_um,
+    );
     let kept_area: u64 = objects.iter().map(|o| o.area_px).sum();
     let result = FrameResult {
         width: frame.width,
@@ -174,6 +184,8 @@ fn run(
         object_count: objects.len(),
         size_filtered,
         merged_fraction: measure::merged_fraction(&objects),
+        dim_objects: dim.map_or(0, |d| d.count),
+        dim_level: dim.map(|d| f64::from(d.level)),
         foreground_fraction: kept_area as f64 / frame.len().max(1) as f64,
         background_level: q.background_level,
         saturation_fraction: q.saturation_fraction,

@@ -28,6 +28,10 @@ pub enum FlagKind {
     UnevenIllumination,
     /// Many objects look like touching ones merged into one.
     MergedObjects,
+    /// More than `max_dim_object_share` of the objects lie below the threshold
+    /// as a second, dimmer population: the frame holds objects of several
+    /// intensities.
+    DimObjectsMissed,
     /// More than `max_saturation_fraction` of the pixels are at the top of the bit
     /// depth.
     Saturated,
@@ -53,6 +57,7 @@ impl FlagKind {
             FlagKind::SmallForeground => "small_foreground",
             FlagKind::UnevenIllumination => "uneven_illumination",
             FlagKind::MergedObjects => "merged_objects",
+            FlagKind::DimObjectsMissed => "dim_objects_missed",
             FlagKind::Saturated => "saturated",
             FlagKind::OutOfFocus => "out_of_focus",
             FlagKind::EmptyFrame => "empty_frame",
@@ -87,6 +92,11 @@ pub struct PositionContext {
     /// Median count of the last `count_window` frames there, once that many exist.
     pub recent_median_count: Option<f64>,
 }
+
+/// The dim-objects flag needs at least this many dim objects: one or two
+/// specks of debris below the threshold say nothing about the sample. Our
+/// judgement.
+pub const MIN_DIM_OBJECTS: usize = 3;
 
 /// Judges one frame. A flag is raised only when a value is strictly beyond its
 /// limit, so a value exactly at the limit passes.
@@ -160,6 +170,31 @@ pub fn frame_flags(m: &FrameMetrics, limits: &FlagLimits, ctx: &PositionContext)
                 crate::analysis::measure::MERGED_MAX_SOLIDITY,
                 crate::analysis::measure::MERGED_MIN_AREA_RATIO,
                 100.0 * limits.max_merged_fraction
+            ),
+        );
+    }
+    let all = m.object_count + m.dim_objects;
+    let dim_share = if all == 0 {
+        0.0
+    } else {
+        m.dim_objects as f64 / all as f64
+    };
+    if let Some(level) = m
+        .dim_level
+        .filter(|_| m.dim_objects >= MIN_DIM_OBJECTS && dim_share > limits.max_dim_object_share)
+    {
+        flag(
+            FlagKind::DimObjectsMissed,
+            dim_share,
+            limits.max_dim_object_share,
+            format!(
+                "{} dim objects lie below the threshold {} against {} counted above it ({:.0}% of all, limit {:.0}%; they stand out from the background above {}): the frame holds objects of several intensities and the threshold keeps only the brighter; consider method = \"li\", or method = \"multi-otsu\" with classes = 3 and boundary = 1",
+                m.dim_objects,
+                num(m.threshold),
+                m.object_count,
+                100.0 * dim_share,
+                100.0 * limits.max_dim_object_share,
+                num(level),
             ),
         );
     }
@@ -360,6 +395,50 @@ mod tests {
             assert_eq!(flags[0].value, Some(limit + beyond));
             assert!((flags[0].limit.unwrap() - limit).abs() < 1e-12);
         }
+    }
+
+    /// The dim-objects share is a ratio of counts, so its two sides are
+    /// counts: with 40 counted and the 10% limit, 4 dim objects are 4/44 =
+    /// 9.1% (passes) and 5 are 5/45 = 11.1% (flags); fewer than
+    /// MIN_DIM_OBJECTS never flag, nor does a frame with no second population.
+    #[test]
+    fn dim_objects_flag_past_their_share_and_name_the_remedies() {
+        let l = QualitySettings::default().flags;
+        assert_eq!(l.max_dim_object_share, 0.1);
+        let ctx = context();
+        let with = |dim: usize, level: Option<f64>| FrameMetrics {
+            dim_objects: dim,
+            dim_level: level,
+            ..good()
+        };
+        assert_eq!(kinds(&with(4, Some(900.0)), &ctx), vec![]);
+        let flags = frame_flags(&with(5, Some(900.0)), &l, &ctx);
+        assert_eq!(flags.len(), 1, "{flags:?}");
+        assert_eq!(flags[0].kind, FlagKind::DimObjectsMissed);
+        assert_eq!(flags[0].value, Some(5.0 / 45.0));
+        assert_eq!(flags[0].limit, Some(0.1));
+        assert!(flags[0]
+            .message
+            .starts_with("5 dim objects lie below the threshold 8000 against 40 counted"));
+        assert!(
+            flags[0].message.contains("method = \"li\""),
+            "{}",
+            flags[0].message
+        );
+        assert_eq!(kinds(&with(5, None), &ctx), vec![]);
+        let few = FrameMetrics {
+            object_count: 1,
+            ..with(MIN_DIM_OBJECTS - 1, Some(900.0))
+        };
+        assert_eq!(kinds(&few, &PositionContext::default()), vec![]);
+        let three = FrameMetrics {
+            object_count: 1,
+            ..with(MIN_DIM_OBJECTS, Some(900.0))
+        };
+        assert_eq!(
+            kinds(&three, &PositionContext::default()),
+            vec![FlagKind::DimObjectsMissed]
+        );
     }
 
     #[test]

@@ -25,13 +25,18 @@ pub struct FrameMetrics {
     pub object_count: usize,
     /// Share of objects that look merged; NaN when unknown (never flags).
     pub merged_fraction: f64,
+    /// Objects left out below the threshold (a second, dimmer population).
+    pub dim_objects: usize,
+    /// The level that separates them from the background, when there is one.
+    pub dim_level: Option<f64>,
     /// Fraction (0..1) of the frame covered by kept objects.
     pub foreground_fraction: f64,
     /// Median raw intensity of the background pixels.
     pub background_level: f64,
     /// Fraction (0..1) of pixels at the top of the bit depth.
     pub saturation_fraction: f64,
-    /// Variance of the 4-neighbour Laplacian (larger is sharper).
+    /// Sharpness, independent of brightness (larger is sharper; see
+    /// [`crate::analysis::quality`]).
     pub focus: f64,
     /// (max − min) / mean of the fitted background surface; 0 for an even field.
     pub illumination_change: f64,
@@ -46,6 +51,8 @@ impl From<&FrameResult> for FrameMetrics {
             bimodality: r.bimodality,
             object_count: r.object_count,
             merged_fraction: r.merged_fraction,
+            dim_objects: r.dim_objects,
+            dim_level: r.dim_level,
             foreground_fraction: r.foreground_fraction,
             background_level: r.background_level,
             saturation_fraction: r.saturation_fraction,
@@ -172,6 +179,8 @@ impl FrameMetrics {
             bimodality: 0.9,
             object_count: 40,
             merged_fraction: 0.0,
+            dim_objects: 0,
+            dim_level: None,
             foreground_fraction: 0.05,
             background_level: 6500.0,
             saturation_fraction: 0.0,

@@ -43,6 +43,9 @@ pub struct FlagLimits {
     pub max_merged_fraction: f64,
     /// The merged-objects flag needs at least this many objects in the frame.
     pub min_objects_for_merged: usize,
+    /// Largest share of all objects (counted and dim) that may lie below the
+    /// threshold as a second, dimmer population.
+    pub max_dim_object_share: f64,
 }
 
 /// Parameters of the drift charts (see [`crate::qc::drift`]).
@@ -169,6 +172,7 @@ impl Default for QualitySettings {
                 max_count_jump: 0.5,
                 max_merged_fraction: 0.1,
                 min_objects_for_merged: 10,
+                max_dim_object_share: 0.1,
             },
             charts: ChartParams {
                 baseline_frames: 20,

@@ -511,7 +511,7 @@ impl QcRecorder {
             "SELECT file, {POSITION_SQL}, analyzed_at_ms, status,
                     method, threshold, separability, object_count, foreground_fraction,
                     background_level, saturation_fraction, focus, illumination_change, bimodality,
-                    merged_fraction
+                    merged_fraction, dim_objects, dim_level
              FROM frames WHERE run_id = ?1 AND status IN ('done', 'failed') AND same_pixels_as IS NULL
                AND NOT EXISTS (SELECT 1 FROM frames AS earlier WHERE earlier.superseded_by = frames.id)
              ORDER BY {ACQUISITION_ORDER_SQL}"
@@ -536,6 +536,9 @@ impl QcRecorder {
                     bimodality: r.get::<_, Option<f64>>(13)?.unwrap_or(f64::NAN),
                     // Rows from before schema 6 have none: unknown, never flags.
                     merged_fraction: r.get::<_, Option<f64>>(14)?.unwrap_or(f64::NAN),
+                    // Rows from before schema 9 have none: none found, never flags.
+                    dim_objects: r.get::<_, Option<i64>>(15)?.unwrap_or(0).max(0) as usize,
+                    dim_level: r.get(16)?,
                     object_count: r.get::<_, Option<i64>>(7)?.unwrap_or(0).max(0) as usize,
                     foreground_fraction: num(8)?,
                     background_level: num(9)?,

@@ -540,6 +540,7 @@ count_window = 7
 max_count_jump = 0.6
 max_merged_fraction = 0.2
 min_objects_for_merged = 25
+max_dim_object_share = 0.3
 baseline_frames = 12
 ewma_lambda = 0.3
 ewma_width = 2.8

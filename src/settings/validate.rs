@@ -397,6 +397,7 @@ pub fn quality(q: QualitySection) -> Result<(QualitySettings, Option<Recount>), 
         max_count_jump: positive_f64("quality.max_count_jump", q.max_count_jump)?,
         max_merged_fraction: fraction("quality.max_merged_fraction", q.max_merged_fraction)?,
         min_objects_for_merged: q.min_objects_for_merged,
+        max_dim_object_share: fraction("quality.max_dim_object_share", q.max_dim_object_share)?,
     };
     let charted = q
         .charted_metrics

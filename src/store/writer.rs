@@ -892,7 +892,8 @@ fn set_in_hand(tx: &Transaction<'_>, key: &FrameKey, in_hand: bool) -> rusqlite:
 pub const RESULT_COLUMNS: &str = "width, height, bit_depth, method, threshold, separability, \
      object_count, foreground_fraction, background_level, saturation_fraction, focus, \
      illumination_change, pixel_size_um, pixel_size_source, bimodality, size_filtered, \
-     merged_fraction, pixel_hash, recount_threshold, recount_object_count, count_source";
+     merged_fraction, pixel_hash, recount_threshold, recount_object_count, count_source, \
+     dim_objects, dim_level";
 
 /// The values of [`RESULT_COLUMNS`] for one file's analysis; the recount's
 /// threshold, count and `count_source = 'recount'` where it ran, else NULL.
@@ -925,6 +926,8 @@ pub fn result_values(analysis: &FileAnalysis) -> Vec<Value> {
         recount.map_or(Value::Null, |c| real(c.threshold)),
         recount.map_or(Value::Null, |c| int(c.object_count)),
         recount.map_or(Value::Null, |_| Value::Text("recount".into())),
+        int(r.dim_objects),
+        r.dim_level.map_or(Value::Null, real),
     ]
 }
 
@@ -1219,6 +1222,8 @@ mod tests {
                 object_count: objects.len(),
                 size_filtered: 0,
                 merged_fraction: 0.0,
+                dim_objects: 0,
+                dim_level: None,
                 foreground_fraction: 0.25,
                 background_level: 1.0,
                 saturation_fraction: 0.0,

@@ -66,7 +66,8 @@ def frames(run):
             "method": f["method"],
         })
         for name in ["threshold", "recount_threshold", "separability", "bimodality",
-                     "foreground_fraction", "merged_fraction", "background_level",
+                     "foreground_fraction", "merged_fraction", "dim_objects", "dim_level",
+                     "background_level",
                      "saturation_fraction", "focus", "illumination_change"]:
             row[name] = f[name]
         row.update({
