@@ -10,7 +10,7 @@ use std::process::Command;
 use std::time::Instant;
 
 use framewarden::analysis::{
-    label, measure, quality, split, threshold, Connectivity, ObjectFilter, Split,
+    dim_objects, label, measure, quality, split, threshold, Connectivity, ObjectFilter, Split,
 };
 use framewarden::decode::{self, DecodeLimits};
 use framewarden::pipeline::analyze_file;
@@ -180,7 +180,7 @@ fn time_ours(files: &[PathBuf], reps: usize, params: &PipelineParams) -> (f64, V
     (median(times), summaries)
 }
 
-const STAGES: [&str; 7] = [
+const STAGES: [&str; 8] = [
     "decode",
     "histogram",
     "Otsu + separability",
@@ -188,14 +188,15 @@ const STAGES: [&str; 7] = [
     "measure",
     "frame QC",
     "split (when on)",
+    "dim objects",
 ];
 
 /// Median ms of each stage, called one by one through the public modules the
 /// pipeline is built from.
-fn time_stages(files: &[PathBuf], reps: usize) -> [f64; 7] {
+fn time_stages(files: &[PathBuf], reps: usize) -> [f64; 8] {
     let limits = DecodeLimits::default();
     let filter = ObjectFilter::default();
-    let mut times: [Vec<f64>; 7] = Default::default();
+    let mut times: [Vec<f64>; 8] = Default::default();
     for _ in 0..reps {
         for f in files {
             let t = Instant::now();
@@ -236,6 +237,18 @@ fn time_stages(files: &[PathBuf], reps: usize) -> [f64; 7] {
             let t = Instant::now();
             std::hint::black_box(quality::assess(&frame, &hist, None, level));
             times[5].push(ms(t));
+            let t = Instant::now();
+            std::hint::black_box(dim_objects::dim_objects(
+                &frame.pixels,
+                frame.width,
+                frame.height,
+                &hist,
+                level,
+                Connectivity::Eight,
+                &filter,
+                None,
+            ));
+            times[7].push(ms(t));
         }
     }
     times.map(median)
@@ -361,7 +374,7 @@ fn main() {
     };
 
     println!(
-        "\nmedian ms/frame (full pipeline: decode + Otsu + fill + label + measure + frame QC)"
+        "\nmedian ms/frame (full pipeline: decode + Otsu + fill + label + measure + dim objects + frame QC)"
     );
     println!("  framewarden   {ours_ms:9.1}");
     println!(
